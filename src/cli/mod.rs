@@ -1,0 +1,67 @@
+//! Command-line stage: argument structs, help text and the dispatch to each
+//! subcommand. Input: parsed arguments. Output: data on stdout (text, or one JSON
+//! document with `--json`), logs and progress on stderr. Never computes statistics
+//! or touches tensors itself; it calls the stage modules.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+pub mod errors;
+pub mod model;
+
+pub use errors::{exit_code_for, render_error, GateFailed};
+
+/// Grade open-ended answers with a small local judge model on a CPU, and check
+/// whether that judge can be trusted.
+///
+/// assize reads the judge's token probabilities at each score slot instead of one
+/// sampled word, vets the judge against human labels, and reports quality with
+/// confidence intervals. Everything runs locally; nothing leaves the machine.
+#[derive(Debug, Parser)]
+#[command(name = "assize", version, propagate_version = true, max_term_width = 100)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// The subcommands.
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Inspect, fetch, tokenise with and benchmark judge model files
+    #[command(subcommand)]
+    Model(model::ModelCommand),
+}
+
+/// Options shared by every command that prints results.
+#[derive(Debug, Clone, clap::Args)]
+pub struct OutputArgs {
+    /// Print one JSON document on stdout instead of text
+    #[arg(long)]
+    pub json: bool,
+    /// Hide progress bars and informational messages on stderr
+    #[arg(long, short = 'q')]
+    pub quiet: bool,
+}
+
+/// Run one parsed command line.
+pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    match cli.command {
+        Command::Model(cmd) => model::run(cmd),
+    }
+}
+
+/// Print a serialisable value as pretty JSON on stdout.
+pub fn print_json<T: serde::Serialize>(value: &T) -> anyhow::Result<()> {
+    let text = serde_json::to_string_pretty(value)?;
+    println!("{text}");
+    Ok(())
+}
+
+/// Folder holding the fetched judge models: `$ASSIZE_MODELS_DIR`, else `./models`.
+pub fn models_dir() -> PathBuf {
+    std::env::var_os("ASSIZE_MODELS_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| PathBuf::from("models"))
+}

@@ -1,0 +1,223 @@
+//! `assize model …`: inspect a GGUF judge file, fetch one from a model hub (or its
+//! offline cache), show how the judge tokenises text and what it would say next,
+//! and measure its speed. Never grades anything.
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::Context as _;
+use clap::{Args, Subcommand};
+
+use super::{errors::usage, print_json, OutputArgs};
+use crate::engine::{GgufFile, ModelInfo};
+
+/// `assize model` subcommands.
+#[derive(Debug, Subcommand)]
+pub enum ModelCommand {
+    /// Describe a GGUF model file: architecture, sizes, tokenizer, quantisation, hash
+    Info(InfoArgs),
+    /// Fetch a GGUF file from a model hub repository, or find it in the local hub cache
+    ///
+    /// Uses the usual hub cache layout (`models--OWNER--NAME/snapshots/REV/FILE`).
+    /// The cache folder is `--cache-dir`, else `$HF_HUB_CACHE`, else `$HF_HOME/hub`,
+    /// else `~/.cache/huggingface/hub`. With `--offline` or `HF_HUB_OFFLINE=1`
+    /// nothing is downloaded and a file missing from the cache is an error.
+    Pull(PullArgs),
+}
+
+/// Arguments of `assize model info`.
+#[derive(Debug, Args)]
+pub struct InfoArgs {
+    /// GGUF model file
+    #[arg(value_name = "FILE")]
+    pub file: PathBuf,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Arguments of `assize model pull`.
+#[derive(Debug, Args)]
+pub struct PullArgs {
+    /// Hub repository, `OWNER/NAME`
+    #[arg(value_name = "REPO")]
+    pub repo: String,
+    /// File inside the repository, e.g. `model-q4_k_m.gguf`
+    #[arg(value_name = "FILE")]
+    pub file: String,
+    /// Branch, tag or commit
+    #[arg(long, value_name = "REV", default_value = "main")]
+    pub revision: String,
+    /// Hub cache folder (default: `$HF_HUB_CACHE`, `$HF_HOME/hub`, `~/.cache/huggingface/hub`)
+    #[arg(long, value_name = "DIR")]
+    pub cache_dir: Option<PathBuf>,
+    /// Never download; only look in the cache (also set by `HF_HUB_OFFLINE=1`)
+    #[arg(long)]
+    pub offline: bool,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Run one `assize model` subcommand.
+pub fn run(cmd: ModelCommand) -> anyhow::Result<ExitCode> {
+    match cmd {
+        ModelCommand::Info(args) => info(&args),
+        ModelCommand::Pull(args) => pull(&args),
+    }
+}
+
+fn info(args: &InfoArgs) -> anyhow::Result<ExitCode> {
+    let gguf = GgufFile::open(&args.file)?;
+    let info = ModelInfo::from_file(&gguf)?;
+    if args.output.json {
+        print_json(&info)?;
+    } else {
+        print!("{}", info_text(&info));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn opt<T: std::fmt::Display>(v: &Option<T>) -> String {
+    v.as_ref().map_or_else(|| "-".to_string(), |v| v.to_string())
+}
+
+fn info_text(i: &ModelInfo) -> String {
+    let mut s = String::new();
+    let mut line = |k: &str, v: String| s.push_str(&format!("{k:<16}{v}\n"));
+    line("file", i.path.clone());
+    line("name", opt(&i.name));
+    line(
+        "architecture",
+        format!(
+            "{}{}",
+            i.architecture,
+            if i.supported { "" } else { " (not supported by assize)" }
+        ),
+    );
+    line(
+        "parameters",
+        format!("{} ({:.2} B)", i.parameters, i.parameters as f64 / 1e9),
+    );
+    line("layers", opt(&i.layers));
+    line("hidden size", opt(&i.hidden_size));
+    line("feed-forward", opt(&i.feed_forward));
+    line("heads", opt(&i.heads));
+    line("kv heads", opt(&i.kv_heads));
+    line("context", opt(&i.context_length));
+    line("vocabulary", opt(&i.vocab_size));
+    line(
+        "tokenizer",
+        format!(
+            "{}{}",
+            opt(&i.tokenizer),
+            i.tokenizer_pre
+                .as_ref()
+                .map(|p| format!(" (pre: {p})"))
+                .unwrap_or_default()
+        ),
+    );
+    line(
+        "chat template",
+        if i.chat_template { "yes" } else { "no (plain fallback format)" }.into(),
+    );
+    let types: Vec<String> = i
+        .tensor_types
+        .iter()
+        .map(|(k, v)| format!("{k} {v}"))
+        .collect();
+    line("tensors", format!("{} ({})", i.tensor_count, types.join(", ")));
+    line(
+        "file size",
+        format!("{} bytes ({:.1} MiB)", i.file_size, i.file_size as f64 / 1048576.0),
+    );
+    line("sha256", i.sha256.clone());
+    s
+}
+
+/// Result of `assize model pull`.
+#[derive(Debug, serde::Serialize)]
+pub struct PullResult {
+    /// Repository the file belongs to.
+    pub repo: String,
+    /// File name inside the repository.
+    pub file: String,
+    /// Revision asked for.
+    pub revision: String,
+    /// Local path of the file in the cache.
+    pub path: String,
+    /// Whether the file came from the cache without any download.
+    pub from_cache: bool,
+}
+
+/// The hub cache folder: flag, `HF_HUB_CACHE`, `HF_HOME/hub`, or the crate default.
+pub fn hub_cache_dir(flag: Option<&Path>) -> hf_hub::Cache {
+    if let Some(dir) = flag {
+        return hf_hub::Cache::new(dir.to_path_buf());
+    }
+    if let Some(dir) = std::env::var_os("HF_HUB_CACHE") {
+        return hf_hub::Cache::new(PathBuf::from(dir));
+    }
+    hf_hub::Cache::from_env()
+}
+
+fn offline_from_env() -> bool {
+    std::env::var("HF_HUB_OFFLINE")
+        .map(|v| matches!(v.trim(), "1" | "true" | "TRUE" | "yes" | "on"))
+        .unwrap_or(false)
+}
+
+fn pull(args: &PullArgs) -> anyhow::Result<ExitCode> {
+    if !args.repo.contains('/') {
+        return Err(usage(
+            format!("repository `{}` is not of the form `OWNER/NAME`", args.repo),
+            "name the repository as `OWNER/NAME`",
+        ));
+    }
+    let cache = hub_cache_dir(args.cache_dir.as_deref());
+    let repo = hf_hub::Repo::with_revision(
+        args.repo.clone(),
+        hf_hub::RepoType::Model,
+        args.revision.clone(),
+    );
+    let cached = cache.repo(repo.clone()).get(&args.file);
+    let offline = args.offline || offline_from_env();
+    let (path, from_cache) = match cached {
+        Some(p) => (p, true),
+        None if offline => {
+            return Err(usage(
+                format!(
+                    "`{}` of `{}` (revision `{}`) is not in the hub cache `{}` and offline mode is on",
+                    args.file,
+                    args.repo,
+                    args.revision,
+                    cache.path().display()
+                ),
+                "fetch it once while online, point `--cache-dir` (or `HF_HUB_CACHE`) at the cache that holds it, or check the file name",
+            ))
+        }
+        None => {
+            let api = hf_hub::api::sync::ApiBuilder::from_cache(cache.clone())
+                .with_progress(!args.output.quiet)
+                .build()
+                .context("cannot set up the hub client")?;
+            let p = api.repo(repo).get(&args.file).with_context(|| {
+                format!("cannot download `{}` from `{}`", args.file, args.repo)
+            })?;
+            (p, false)
+        }
+    };
+    // A pulled file is only useful if it is a readable model.
+    GgufFile::open(&path)?;
+    let result = PullResult {
+        repo: args.repo.clone(),
+        file: args.file.clone(),
+        revision: args.revision.clone(),
+        path: path.display().to_string(),
+        from_cache,
+    };
+    if args.output.json {
+        print_json(&result)?;
+    } else {
+        println!("{}", result.path);
+    }
+    Ok(ExitCode::SUCCESS)
+}

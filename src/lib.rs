@@ -1,0 +1,12 @@
+//! assize: grade open-ended answers with a small local judge model on a CPU, vet the
+//! judge against human labels, and estimate quality with honest intervals.
+//!
+//! The flow, one module per stage:
+//! `data` + `rubric` -> forms -> `engine` (token probabilities) -> `judge` (verdicts)
+//! -> `stats` / `probes` -> `report`. See ARCHITECTURE.md.
+
+pub mod cli;
+pub mod data;
+pub mod engine;
+pub mod rubric;
+pub mod stats;
