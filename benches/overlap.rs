@@ -2,7 +2,7 @@
 //! `score_pair` on invented 50-word answer pairs.
 //!
 //! Input: none (pairs are generated from a fixed word list and a fixed-seed
-//! generator). Output: pairs per second per metric on stderr-free stdout. Must never
+//! generator). Output: pairs per second per metric on stdout. Must never
 //! read files or assert on time; numbers are compared as ratios between runs.
 
 use std::hint::black_box;
@@ -14,62 +14,14 @@ use assize::overlap::{
 };
 
 /// Invented vocabulary for a made-up garden-club help desk.
+#[rustfmt::skip]
 const WORDS: &[&str] = &[
-    "the",
-    "a",
-    "of",
-    "to",
-    "and",
-    "in",
-    "is",
-    "it",
-    "that",
-    "for",
-    "seed",
-    "tray",
-    "soil",
-    "water",
-    "compost",
-    "sunlight",
-    "shade",
-    "tomato",
-    "basil",
-    "pot",
-    "roots",
-    "leaves",
-    "weekly",
-    "daily",
-    "gently",
-    "prune",
-    "stem",
-    "mulch",
-    "frost",
-    "spring",
-    "autumn",
-    "drainage",
-    "fertiliser",
-    "seedlings",
-    "should",
-    "be",
-    "kept",
-    "moist",
-    "but",
-    "not",
-    "soaked",
-    "until",
-    "they",
-    "sprout",
-    "move",
-    "outdoors",
-    "after",
-    "last",
-    "warm",
-    "nights",
-    "wilting",
-    "means",
-    "too",
-    "much",
-    "little",
+    "the", "a", "of", "to", "and", "in", "is", "it", "that", "for", "seed", "tray", "soil",
+    "water", "compost", "sunlight", "shade", "tomato", "basil", "pot", "roots", "leaves",
+    "weekly", "daily", "gently", "prune", "stem", "mulch", "frost", "spring", "autumn",
+    "drainage", "fertiliser", "seedlings", "should", "be", "kept", "moist", "but", "not",
+    "soaked", "until", "they", "sprout", "move", "outdoors", "after", "last", "warm", "nights",
+    "wilting", "means", "too", "much", "little",
 ];
 
 /// A tiny linear congruential generator so the bench needs no extra crate.

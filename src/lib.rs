@@ -8,5 +8,9 @@
 pub mod cli;
 pub mod data;
 pub mod engine;
+pub mod judge;
+pub mod overlap;
+pub mod probes;
 pub mod rubric;
 pub mod stats;
+pub mod store;

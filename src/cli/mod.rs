@@ -8,7 +8,10 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
+pub mod common;
+pub mod compare;
 pub mod errors;
+pub mod grade;
 pub mod model;
 
 pub use errors::{exit_code_for, render_error, GateFailed};
@@ -32,6 +35,10 @@ pub enum Command {
     /// Inspect, fetch, tokenise with and benchmark judge model files
     #[command(subcommand)]
     Model(model::ModelCommand),
+    /// Grade answers criterion by criterion with the local judge (resumable)
+    Grade(grade::GradeArgs),
+    /// Compare systems pairwise, both answer orders, with bias probes and a ranking
+    Compare(compare::CompareArgs),
 }
 
 /// Options shared by every command that prints results.
@@ -49,6 +56,8 @@ pub struct OutputArgs {
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Command::Model(cmd) => model::run(cmd),
+        Command::Grade(args) => grade::run(args),
+        Command::Compare(args) => compare::run(args),
     }
 }
 

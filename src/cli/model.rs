@@ -9,7 +9,10 @@ use anyhow::Context as _;
 use clap::{Args, Subcommand};
 
 use super::{errors::usage, print_json, OutputArgs};
-use crate::engine::{GgufFile, ModelInfo};
+use super::common::resolve_model;
+use crate::engine::decoder::LoadOptions;
+use crate::engine::tokenizer::JudgeTokenizer;
+use crate::engine::{GgufFile, JudgeModel, ModelInfo};
 
 /// `assize model` subcommands.
 #[derive(Debug, Subcommand)]
@@ -23,6 +26,75 @@ pub enum ModelCommand {
     /// else `~/.cache/huggingface/hub`. With `--offline` or `HF_HUB_OFFLINE=1`
     /// nothing is downloaded and a file missing from the cache is an error.
     Pull(PullArgs),
+    /// Show how the judge's tokenizer splits a text: ids and pieces
+    Tokens(TokensArgs),
+    /// Show the judge's most likely next tokens after a prompt, with probabilities
+    Next(NextArgs),
+    /// Measure load time, prompt and generation speed, and peak memory of a judge
+    ///
+    /// Uses a fixed pseudo-random token sequence, so runs are comparable across
+    /// machines and versions. Compare results as ratios; nothing here is a test.
+    Bench(BenchArgs),
+}
+
+/// Arguments of `assize model tokens`.
+#[derive(Debug, Args)]
+pub struct TokensArgs {
+    /// Judge model (GGUF path or `default`, `small`, `gemma`)
+    #[arg(value_name = "MODEL")]
+    pub model: String,
+    /// Text to tokenise, as plain text (control strings stay plain text)
+    #[arg(value_name = "TEXT")]
+    pub text: String,
+    /// Parse control-token strings in the text (as template text is), instead of plain text
+    #[arg(long)]
+    pub trusted: bool,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Arguments of `assize model next`.
+#[derive(Debug, Args)]
+pub struct NextArgs {
+    /// Judge model (GGUF path or `default`, `small`, `gemma`)
+    #[arg(value_name = "MODEL")]
+    pub model: String,
+    /// The prompt
+    #[arg(value_name = "PROMPT")]
+    pub prompt: String,
+    /// Wrap the prompt as a user turn in the model's chat template
+    #[arg(long)]
+    pub chat: bool,
+    /// Assistant text placed after the chat template's generation prompt (with `--chat`)
+    #[arg(long, value_name = "TEXT", default_value = "")]
+    pub prefill: String,
+    /// How many tokens to show
+    #[arg(long, short = 'k', value_name = "K", default_value_t = 10)]
+    pub top: usize,
+    /// Kernel threads (0 = all cores)
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Arguments of `assize model bench`.
+#[derive(Debug, Args)]
+pub struct BenchArgs {
+    /// Judge model (GGUF path or `default`, `small`, `gemma`)
+    #[arg(value_name = "MODEL")]
+    pub model: String,
+    /// Prompt length in tokens
+    #[arg(long, value_name = "N", default_value_t = 256)]
+    pub prompt_tokens: usize,
+    /// Tokens to generate after the prompt
+    #[arg(long, value_name = "N", default_value_t = 64)]
+    pub gen_tokens: usize,
+    /// Kernel threads (0 = all cores)
+    #[arg(long, value_name = "N", default_value_t = 2)]
+    pub threads: usize,
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 /// Arguments of `assize model info`.
@@ -62,6 +134,9 @@ pub fn run(cmd: ModelCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         ModelCommand::Info(args) => info(&args),
         ModelCommand::Pull(args) => pull(&args),
+        ModelCommand::Tokens(args) => tokens(&args),
+        ModelCommand::Next(args) => next(&args),
+        ModelCommand::Bench(args) => bench(&args),
     }
 }
 
@@ -218,6 +293,110 @@ fn pull(args: &PullArgs) -> anyhow::Result<ExitCode> {
         print_json(&result)?;
     } else {
         println!("{}", result.path);
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// One token of `assize model tokens`.
+#[derive(Debug, serde::Serialize)]
+pub struct TokenRow {
+    /// Token id.
+    pub id: u32,
+    /// The piece as text.
+    pub piece: String,
+}
+
+fn tokens(args: &TokensArgs) -> anyhow::Result<ExitCode> {
+    let path = resolve_model(&args.model)?;
+    let gguf = GgufFile::open(&path)?;
+    let tok = JudgeTokenizer::from_gguf(&gguf)?;
+    let ids = if args.trusted {
+        tok.encode_trusted(&args.text)?
+    } else {
+        tok.encode_plain(&args.text)?
+    };
+    let rows: Vec<TokenRow> = ids
+        .iter()
+        .map(|&id| TokenRow {
+            id,
+            piece: tok.piece(id),
+        })
+        .collect();
+    if args.output.json {
+        print_json(&rows)?;
+    } else {
+        for r in &rows {
+            println!("{:>8}  {:?}", r.id, r.piece);
+        }
+        eprintln!("{} tokens", rows.len());
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// One candidate of `assize model next`.
+#[derive(Debug, serde::Serialize)]
+pub struct NextRow {
+    /// Token id.
+    pub id: u32,
+    /// The piece as text.
+    pub piece: String,
+    /// Probability of this token next.
+    pub probability: f64,
+}
+
+fn next(args: &NextArgs) -> anyhow::Result<ExitCode> {
+    let path = resolve_model(&args.model)?;
+    let model = JudgeModel::load(
+        &path,
+        &LoadOptions {
+            threads: args.threads,
+            context_cap: None,
+        },
+    )?;
+    let ids = if args.chat {
+        model.encode_chat("", &args.prompt, &args.prefill)?
+    } else {
+        let mut v: Vec<u32> = Vec::new();
+        if model.tokenizer.add_bos() {
+            v.extend(model.tokenizer.bos());
+        }
+        v.extend(model.tokenizer.encode_plain(&args.prompt)?);
+        v
+    };
+    let rows: Vec<NextRow> = model
+        .top_next(&ids, args.top)?
+        .into_iter()
+        .map(|(id, piece, probability)| NextRow { id, piece, probability })
+        .collect();
+    if args.output.json {
+        print_json(&rows)?;
+    } else {
+        for r in &rows {
+            println!("{:>8.4}  {:>8}  {:?}", r.probability, r.id, r.piece);
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn bench(args: &BenchArgs) -> anyhow::Result<ExitCode> {
+    let path = resolve_model(&args.model)?;
+    let report = crate::engine::bench::run_bench(&path, args.prompt_tokens, args.gen_tokens, args.threads)?;
+    if args.output.json {
+        print_json(&report)?;
+    } else {
+        println!("model           {}", report.model);
+        println!("sha256          {}", report.sha256);
+        println!("architecture    {} ({})", report.arch, report.quantisation);
+        println!("threads         {}", report.threads);
+        println!("load            {:.2} s", report.load_seconds);
+        println!("prompt          {:.1} tokens/s ({} tokens)", report.prompt_tokens_per_second, report.prompt_tokens);
+        println!("generation      {:.1} tokens/s ({} tokens)", report.gen_tokens_per_second, report.gen_tokens);
+        if let Some(b) = report.peak_rss_bytes {
+            println!("peak memory     {:.0} MiB", b as f64 / 1048576.0);
+        }
+        if let Some(c) = &report.cpu {
+            println!("cpu             {c}");
+        }
     }
     Ok(ExitCode::SUCCESS)
 }

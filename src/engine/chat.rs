@@ -76,16 +76,17 @@ impl ChatFormat {
         let token_text = |key: &str| -> String {
             let id = gguf.uint(key).ok();
             match (id, gguf.value("tokenizer.ggml.tokens")) {
-                (Some(id), Some(Value::Array(tokens))) => {
-                    match tokens.get(id as usize) {
-                        Some(Value::String(s)) => s.clone(),
-                        _ => String::new(),
-                    }
-                }
+                (Some(id), Some(Value::Array(tokens))) => match tokens.get(id as usize) {
+                    Some(Value::String(s)) => s.clone(),
+                    _ => String::new(),
+                },
                 _ => String::new(),
             }
         };
-        let default_add_bos = gguf.string("tokenizer.ggml.model").map(|m| m == "llama").unwrap_or(false);
+        let default_add_bos = gguf
+            .string("tokenizer.ggml.model")
+            .map(|m| m == "llama")
+            .unwrap_or(false);
         let env = match gguf.string("tokenizer.chat_template") {
             Ok(source) => Some(compile(source).map_err(|source| EngineError::Template {
                 path: gguf.path.clone(),
@@ -98,7 +99,9 @@ impl ChatFormat {
             env,
             bos_token: token_text("tokenizer.ggml.bos_token_id"),
             eos_token: token_text("tokenizer.ggml.eos_token_id"),
-            tokenizer_adds_bos: gguf.boolean("tokenizer.ggml.add_bos_token").unwrap_or(default_add_bos)
+            tokenizer_adds_bos: gguf
+                .boolean("tokenizer.ggml.add_bos_token")
+                .unwrap_or(default_add_bos)
                 && gguf.uint("tokenizer.ggml.bos_token_id").is_ok(),
         })
     }
@@ -109,7 +112,11 @@ impl ChatFormat {
     }
 
     /// The prompt string, exactly as jinja2 renders the template (or the plain format).
-    pub fn render(&self, msgs: &[ChatMessage], add_generation_prompt: bool) -> Result<String, EngineError> {
+    pub fn render(
+        &self,
+        msgs: &[ChatMessage],
+        add_generation_prompt: bool,
+    ) -> Result<String, EngineError> {
         match &self.env {
             Some(env) => self.render_template(env, msgs, add_generation_prompt),
             None => Ok(plain_segments(msgs, add_generation_prompt)
@@ -123,7 +130,11 @@ impl ChatFormat {
 
     /// The prompt cut into template text and message contents, without a leading BOS
     /// string when the tokenizer adds BOS itself.
-    pub fn render_segments(&self, msgs: &[ChatMessage], add_generation_prompt: bool) -> Result<Vec<Segment>, EngineError> {
+    pub fn render_segments(
+        &self,
+        msgs: &[ChatMessage],
+        add_generation_prompt: bool,
+    ) -> Result<Vec<Segment>, EngineError> {
         let Some(env) = &self.env else {
             return Ok(plain_segments(msgs, add_generation_prompt));
         };
@@ -131,16 +142,22 @@ impl ChatFormat {
         let stand_ins: Vec<ChatMessage> = msgs
             .iter()
             .enumerate()
-            .map(|(i, m)| ChatMessage { role: m.role, content: sentinel(i) })
+            .map(|(i, m)| ChatMessage {
+                role: m.role,
+                content: sentinel(i),
+            })
             .collect();
         let skeleton = self.render_template(env, &stand_ins, add_generation_prompt)?;
         // A template may trim contents (`| trim`); try verbatim contents first, then trimmed.
         let mut segments = None;
         for trimmed in [false, true] {
             let candidate = fill(&skeleton, msgs, trimmed).map_err(|e| self.error(e))?;
-            let joined: String = candidate.iter().map(|s| match s {
-                Segment::Control(t) | Segment::Content(t) => t.as_str(),
-            }).collect();
+            let joined: String = candidate
+                .iter()
+                .map(|s| match s {
+                    Segment::Control(t) | Segment::Content(t) => t.as_str(),
+                })
+                .collect();
             if joined == expected {
                 segments = Some(candidate);
                 break;
@@ -160,8 +177,15 @@ impl ChatFormat {
         Ok(segments)
     }
 
-    fn render_template(&self, env: &Environment<'static>, msgs: &[ChatMessage], add_generation_prompt: bool) -> Result<String, EngineError> {
-        let template = env.get_template(TEMPLATE_NAME).map_err(|e| self.template_error(e))?;
+    fn render_template(
+        &self,
+        env: &Environment<'static>,
+        msgs: &[ChatMessage],
+        add_generation_prompt: bool,
+    ) -> Result<String, EngineError> {
+        let template = env
+            .get_template(TEMPLATE_NAME)
+            .map_err(|e| self.template_error(e))?;
         template
             .render(context! {
                 messages => msgs,
@@ -173,7 +197,10 @@ impl ChatFormat {
     }
 
     fn template_error(&self, source: Error) -> EngineError {
-        EngineError::Template { path: self.path.clone(), source }
+        EngineError::Template {
+            path: self.path.clone(),
+            source,
+        }
     }
 
     fn error(&self, reason: String) -> EngineError {
@@ -203,7 +230,11 @@ fn fill(skeleton: &str, msgs: &[ChatMessage], trimmed: bool) -> Result<Vec<Segme
         let mark = sentinel(i);
         let hits: Vec<usize> = skeleton.match_indices(&mark).map(|(at, _)| at).collect();
         if hits.len() != 1 {
-            return Err(format!("message {} appears {} times in the rendered template, expected once", i + 1, hits.len()));
+            return Err(format!(
+                "message {} appears {} times in the rendered template, expected once",
+                i + 1,
+                hits.len()
+            ));
         }
         found.push((hits[0], i));
     }
@@ -215,7 +246,11 @@ fn fill(skeleton: &str, msgs: &[ChatMessage], trimmed: bool) -> Result<Vec<Segme
             segments.push(Segment::Control(skeleton[at..start].to_string()));
         }
         let content = &msgs[i].content;
-        let content = if trimmed { content.trim() } else { content.as_str() };
+        let content = if trimmed {
+            content.trim()
+        } else {
+            content.as_str()
+        };
         if !content.is_empty() {
             segments.push(Segment::Content(content.to_string()));
         }

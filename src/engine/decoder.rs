@@ -9,15 +9,14 @@
 //! first load in a process fixes the count, and `DecoderConfig::threads` reports the
 //! count in effect.
 
-use std::fs::File;
-use std::io::BufReader;
-use std::sync::{Arc, OnceLock};
+use std::sync::OnceLock;
 
-use candle_core::quantized::QTensor;
-use candle_core::{DType, Device};
 
 use super::gguf::GgufFile;
-use super::linear::{Embedding, Linear, MatmulPolicy};
+use super::linear::{
+    activate, add_bias, add_into, attention, rms_norm, rope, rope_freqs, AttnShape, Embedding,
+    Linear, Loader, MatmulPolicy,
+};
 use super::EngineError;
 
 /// Shape and numerics of a loaded decoder, read from the GGUF metadata.
@@ -244,8 +243,9 @@ impl Decoder {
         let embed = Embedding::new(token_embd.clone()).map_err(loader.err("token_embd.weight"))?;
         let tied_output = !gguf.content.tensor_infos.contains_key("output.weight");
         let out_q = if tied_output { token_embd } else { loader.qtensor("output.weight")? };
-        // The output projection runs on one row per prompt; its quantised kernel suffices.
-        let output = Linear::new(out_q, MatmulPolicy::Reference, DType::F16, true)
+        // The output projection runs on one row per prompt and may share the embedding
+        // table, so it stays quantised (no dense or padded copy).
+        let output = Linear::output(out_q, numerics.matmul)
             .map_err(loader.err("output.weight"))?;
         let vocab = output.n;
         let ffn = metadata_u(gguf, a, "feed_forward_length")?;
@@ -276,7 +276,7 @@ impl Decoder {
         };
         let mut layers = Vec::with_capacity(cfg.layers);
         for i in 0..cfg.layers {
-            layers.push(loader.layer(&cfg, i, numerics.matmul)?);
+            layers.push(read_layer(&mut loader, &cfg, i, numerics.matmul)?);
         }
         let out_norm = loader.vector("output_norm.weight", hidden)?;
         let decoder = Decoder { cfg, embed, layers, out_norm, output };
@@ -388,97 +388,35 @@ impl Decoder {
     }
 }
 
-/// Reads tensors of one GGUF file.
-struct Loader<'a> {
-    gguf: &'a GgufFile,
-    reader: BufReader<File>,
+/// Read block `i`: its weights with the kernels `policy` picks, norms and biases.
+fn read_layer(ld: &mut Loader, c: &DecoderConfig, i: usize, policy: MatmulPolicy) -> Result<Layer, EngineError> {
+    let p = |s: &str| format!("blk.{i}.{s}");
+    let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
+    let gemma = c.gemma_norms;
+    // Gemma 3: every `sliding_pattern`-th layer (1-based) attends globally.
+    let local = c.sliding_window.is_some() && (i + 1) % c.sliding_pattern != 0;
+    Ok(Layer {
+        attn_norm: ld.vector(&p("attn_norm.weight"), c.hidden)?,
+        wq: ld.linear(&p("attn_q.weight"), policy)?,
+        wk: ld.linear(&p("attn_k.weight"), policy)?,
+        wv: ld.linear(&p("attn_v.weight"), policy)?,
+        wo: ld.linear(&p("attn_output.weight"), policy)?,
+        bq: ld.optional(&p("attn_q.bias"), q_dim)?,
+        bk: ld.optional(&p("attn_k.bias"), kv_dim)?,
+        bv: ld.optional(&p("attn_v.bias"), kv_dim)?,
+        q_norm: if gemma { Some(ld.vector(&p("attn_q_norm.weight"), c.head_dim)?) } else { None },
+        k_norm: if gemma { Some(ld.vector(&p("attn_k_norm.weight"), c.head_dim)?) } else { None },
+        post_attn_norm: if gemma { Some(ld.vector(&p("post_attention_norm.weight"), c.hidden)?) } else { None },
+        ffn_norm: ld.vector(&p("ffn_norm.weight"), c.hidden)?,
+        gate: ld.linear(&p("ffn_gate.weight"), policy)?,
+        up: ld.linear(&p("ffn_up.weight"), policy)?,
+        down: ld.linear(&p("ffn_down.weight"), policy)?,
+        post_ffn_norm: if gemma { Some(ld.vector(&p("post_ffw_norm.weight"), c.hidden)?) } else { None },
+        window: if local { c.sliding_window } else { None },
+        rope_base: if local { c.rope_base_local } else { c.rope_base },
+    })
 }
 
-impl<'a> Loader<'a> {
-    fn open(gguf: &'a GgufFile) -> Result<Self, EngineError> {
-        let file = File::open(&gguf.path).map_err(|source| EngineError::Io {
-            path: gguf.path.clone(),
-            source,
-        })?;
-        Ok(Loader { gguf, reader: BufReader::new(file) })
-    }
-
-    fn err(&self, tensor: &str) -> impl FnOnce(candle_core::Error) -> EngineError {
-        let path = self.gguf.path.clone();
-        let tensor = tensor.to_string();
-        move |e| EngineError::Tensor { path, tensor, reason: e.to_string() }
-    }
-
-    fn has(&self, name: &str) -> bool {
-        self.gguf.content.tensor_infos.contains_key(name)
-    }
-
-    fn qtensor(&mut self, name: &str) -> Result<Arc<QTensor>, EngineError> {
-        if !self.has(name) {
-            return Err(EngineError::Tensor {
-                path: self.gguf.path.clone(),
-                tensor: name.into(),
-                reason: "missing".into(),
-            });
-        }
-        let t = self.gguf.content.tensor(&mut self.reader, name, &Device::Cpu);
-        Ok(Arc::new(t.map_err(self.err(name))?))
-    }
-
-    fn vector(&mut self, name: &str, len: usize) -> Result<Vec<f32>, EngineError> {
-        let t = self.qtensor(name)?;
-        let v = t
-            .dequantize(&Device::Cpu)
-            .and_then(|t| t.flatten_all())
-            .and_then(|t| t.to_vec1::<f32>())
-            .map_err(self.err(name))?;
-        if v.len() != len {
-            return Err(EngineError::Tensor {
-                path: self.gguf.path.clone(),
-                tensor: name.into(),
-                reason: format!("{} values, expected {len}", v.len()),
-            });
-        }
-        Ok(v)
-    }
-
-    fn optional(&mut self, name: &str, len: usize) -> Result<Option<Vec<f32>>, EngineError> {
-        if self.has(name) { self.vector(name, len).map(Some) } else { Ok(None) }
-    }
-
-    fn linear(&mut self, name: &str, policy: MatmulPolicy) -> Result<Linear, EngineError> {
-        let t = self.qtensor(name)?;
-        Linear::new(t, policy, DType::F16, true).map_err(self.err(name))
-    }
-
-    fn layer(&mut self, c: &DecoderConfig, i: usize, policy: MatmulPolicy) -> Result<Layer, EngineError> {
-        let p = |s: &str| format!("blk.{i}.{s}");
-        let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
-        let gemma = c.gemma_norms;
-        // Gemma 3: every `sliding_pattern`-th layer (1-based) attends globally.
-        let local = c.sliding_window.is_some() && (i + 1) % c.sliding_pattern != 0;
-        Ok(Layer {
-            attn_norm: self.vector(&p("attn_norm.weight"), c.hidden)?,
-            wq: self.linear(&p("attn_q.weight"), policy)?,
-            wk: self.linear(&p("attn_k.weight"), policy)?,
-            wv: self.linear(&p("attn_v.weight"), policy)?,
-            wo: self.linear(&p("attn_output.weight"), policy)?,
-            bq: self.optional(&p("attn_q.bias"), q_dim)?,
-            bk: self.optional(&p("attn_k.bias"), kv_dim)?,
-            bv: self.optional(&p("attn_v.bias"), kv_dim)?,
-            q_norm: if gemma { Some(self.vector(&p("attn_q_norm.weight"), c.head_dim)?) } else { None },
-            k_norm: if gemma { Some(self.vector(&p("attn_k_norm.weight"), c.head_dim)?) } else { None },
-            post_attn_norm: if gemma { Some(self.vector(&p("post_attention_norm.weight"), c.hidden)?) } else { None },
-            ffn_norm: self.vector(&p("ffn_norm.weight"), c.hidden)?,
-            gate: self.linear(&p("ffn_gate.weight"), policy)?,
-            up: self.linear(&p("ffn_up.weight"), policy)?,
-            down: self.linear(&p("ffn_down.weight"), policy)?,
-            post_ffn_norm: if gemma { Some(self.vector(&p("post_ffw_norm.weight"), c.hidden)?) } else { None },
-            window: if local { c.sliding_window } else { None },
-            rope_base: if local { c.rope_base_local } else { c.rope_base },
-        })
-    }
-}
 
 /// Log-softmax of `logits`, computed in f64 for stability.
 pub fn log_softmax(logits: &[f32]) -> Vec<f32> {
@@ -493,6 +431,12 @@ impl Decoder {
     fn run(&self, cache: &mut KvCache, tokens: &[u32], all: bool) -> Result<Vec<Vec<f32>>, EngineError> {
         let c = &self.cfg;
         let (m, pos0, eps) = (tokens.len(), cache.len, c.rms_eps);
+        let shape = AttnShape {
+            heads: c.heads,
+            kv_heads: c.kv_heads,
+            head_dim: c.head_dim,
+            scale: c.attn_scale,
+        };
         let mut x = self.embed.lookup(tokens)?;
         if let Some(s) = c.embed_scale {
             x.iter_mut().for_each(|v| *v *= s);
@@ -515,7 +459,7 @@ impl Decoder {
             rope(&mut k, kv_dim, c.head_dim, pos0, &freqs, c.rope_interleaved);
             cache.k[li].extend_from_slice(&k);
             cache.v[li].extend_from_slice(&v);
-            let att = attention(&q, &cache.k[li], &cache.v[li], c, pos0, m, l.window);
+            let att = attention(&q, &cache.k[li], &cache.v[li], &shape, pos0, m, l.window);
             let mut o = l.wo.forward(&att, m)?;
             if let Some(w) = &l.post_attn_norm {
                 o = rms_norm(&o, w, eps);
@@ -538,146 +482,4 @@ impl Decoder {
         let logits = self.output.forward(&last, m - first)?;
         Ok(logits.chunks(c.vocab).map(<[f32]>::to_vec).collect())
     }
-}
-
-/// RMS norm of each `w.len()`-wide row of `x` (Zhang & Sennrich 2019), as
-/// candle's `rms_norm`: x / sqrt(mean(x²) + eps) · w.
-fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
-    let dim = w.len();
-    let mut out = Vec::with_capacity(x.len());
-    for row in x.chunks_exact(dim) {
-        let sum2: f32 = row.iter().map(|v| v * v).sum();
-        let scale = (sum2 / dim as f32 + eps).sqrt();
-        out.extend(row.iter().zip(w).map(|(v, w)| v / scale * w));
-    }
-    out
-}
-
-fn add_bias(x: &mut [f32], bias: Option<&[f32]>) {
-    if let Some(b) = bias {
-        for row in x.chunks_exact_mut(b.len()) {
-            row.iter_mut().zip(b).for_each(|(v, b)| *v += b);
-        }
-    }
-}
-
-fn add_into(x: &mut [f32], y: &[f32]) {
-    x.iter_mut().zip(y).for_each(|(a, b)| *a += b);
-}
-
-fn activate(act: Activation, x: f32) -> f32 {
-    match act {
-        Activation::Silu => x / (1.0 + (-x).exp()),
-        // Hendrycks & Gimpel (2016), tanh approximation.
-        Activation::GeluTanh => {
-            let c = (2.0f32 / std::f32::consts::PI).sqrt();
-            0.5 * x * (1.0 + (c * (x + 0.044_715 * x * x * x)).tanh())
-        }
-    }
-}
-
-/// Inverse frequencies of rotary embeddings (Su et al. 2021): base^(-2i/d).
-fn rope_freqs(head_dim: usize, base: f32) -> Vec<f32> {
-    (0..head_dim).step_by(2).map(|i| 1.0 / base.powf(i as f32 / head_dim as f32)).collect()
-}
-
-/// Rotate every head of each `width`-wide row of `x` in place; row `r` sits at
-/// position `pos0 + r`. Interleaved pairs (2i, 2i+1) as in the original Llama layout,
-/// otherwise pairs (i, i + d/2) as in GPT-NeoX; angles in f32 as candle computes them.
-fn rope(x: &mut [f32], width: usize, d: usize, pos0: usize, freqs: &[f32], interleaved: bool) {
-    let half = d / 2;
-    let (mut cos, mut sin) = (vec![0f32; half], vec![0f32; half]);
-    for (r, row) in x.chunks_exact_mut(width).enumerate() {
-        let pos = (pos0 + r) as f32;
-        for i in 0..half {
-            let angle = pos * freqs[i];
-            cos[i] = angle.cos();
-            sin[i] = angle.sin();
-        }
-        for head in row.chunks_exact_mut(d) {
-            for i in 0..half {
-                let (a, b) = if interleaved { (2 * i, 2 * i + 1) } else { (i, i + half) };
-                let (x0, x1) = (head[a], head[b]);
-                head[a] = x0 * cos[i] - x1 * sin[i];
-                head[b] = x0 * sin[i] + x1 * cos[i];
-            }
-        }
-    }
-}
-
-/// Output buffer shared by attention workers; each work unit writes a disjoint slice.
-struct SharedOut(*mut f32);
-// SAFETY: workers write only to the disjoint `head_dim`-wide slice of their own unit.
-unsafe impl Sync for SharedOut {}
-impl SharedOut {
-    fn ptr(&self) -> *mut f32 {
-        self.0
-    }
-}
-
-/// Causal scaled dot-product attention (Vaswani et al. 2017) of `m` query rows starting
-/// at position `pos0` over the cached keys/values, with grouped key/value heads and an
-/// optional sliding window of `w` tokens (the current one included, as llama.cpp and
-/// Hugging Face Gemma 3 count it). Each (row, head) unit runs on one worker in a fixed
-/// order, so results do not depend on scheduling.
-fn attention(
-    q: &[f32],
-    kc: &[f32],
-    vc: &[f32],
-    c: &DecoderConfig,
-    pos0: usize,
-    m: usize,
-    window: Option<usize>,
-) -> Vec<f32> {
-    let (heads, d) = (c.heads, c.head_dim);
-    let group = heads / c.kv_heads;
-    let (q_dim, kv_dim) = (heads * d, c.kv_heads * d);
-    let mut out = vec![0f32; m * q_dim];
-    let shared = SharedOut(out.as_mut_ptr());
-    let scale = c.attn_scale;
-    candle_core::utils::barrier_pool().execute_chunked(m * heads, |units| {
-        let mut scores = Vec::new();
-        for u in units {
-            let (r, h) = (u / heads, u % heads);
-            let g = h / group;
-            let p = pos0 + r;
-            let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-            let qv = &q[u * d..(u + 1) * d];
-            scores.clear();
-            let mut max = f32::NEG_INFINITY;
-            for j in lo..=p {
-                let s = dot(qv, &kc[j * kv_dim + g * d..][..d]) * scale;
-                max = max.max(s);
-                scores.push(s);
-            }
-            let mut sum = 0f32;
-            for s in scores.iter_mut() {
-                *s = (*s - max).exp();
-                sum += *s;
-            }
-            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
-            // `out` outlives the pool call and no other unit touches this range.
-            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
-            for (s, j) in scores.iter().zip(lo..=p) {
-                let wgt = s / sum;
-                let vr = &vc[j * kv_dim + g * d..][..d];
-                o.iter_mut().zip(vr).for_each(|(o, v)| *o += wgt * v);
-            }
-        }
-    });
-    debug_assert_eq!(out.len(), m * q_dim);
-    out
-}
-
-/// Dot product with eight independent lanes (vectorises; fixed order, deterministic).
-fn dot(a: &[f32], b: &[f32]) -> f32 {
-    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
-    let tail: f32 = ca.remainder().iter().zip(cb.remainder()).map(|(x, y)| x * y).sum();
-    let mut acc = [0f32; 8];
-    for (x, y) in ca.zip(cb) {
-        for i in 0..8 {
-            acc[i] += x[i] * y[i];
-        }
-    }
-    acc.iter().sum::<f32>() + tail
 }

@@ -1,7 +1,9 @@
-//! Matrix-multiply paths of the decoder. Input: a GGUF weight tensor, chosen once at
-//! load, and activation rows (`m × k`, f32). Output: `m × n` f32 rows, and embedding
-//! rows dequantised on demand. Never changes numerics between two calls with the same
-//! input and thread count, and never holds more than two copies of one weight.
+//! Weights and kernels of the decoder: reading tensors from the GGUF file, the
+//! matrix-multiply path chosen per tensor at load, embedding rows dequantised on
+//! demand, and the row-wise kernels (RMS norm, RoPE, attention, activations). Input:
+//! weight tensors and f32 activation rows. Output: f32 rows. Never changes numerics
+//! between two calls with the same input and thread count, and never holds more than
+//! two copies of one weight.
 //!
 //! Why several paths: candle's repacked int8 kernels only take Q4_K, Q6_K (several rows)
 //! and Q8_0 weights whose inner dimension is a multiple of 256. Every other weight
@@ -11,11 +13,15 @@
 //! fewer bytes.
 
 use std::borrow::Cow;
+use std::fs::File;
+use std::io::BufReader;
 use std::sync::Arc;
 
 use candle_core::quantized::{GgmlDType, QMatMul, QStorage, QTensor};
 use candle_core::{DType, Device, Module, Tensor};
 
+use super::gguf::GgufFile;
+use super::decoder::Activation;
 use super::EngineError;
 
 /// How weights are multiplied.
@@ -33,56 +39,102 @@ const DENSE_MIN_ROWS: usize = 4;
 
 /// One weight matrix `n × k` (GGUF stores it as out-features by in-features).
 pub struct Linear {
-    /// Quantised kernel; `None` when the dense copy serves every row count.
+    /// Quantised kernel; serves every row count unless `dense` is set.
     quant: Option<QMatMul>,
-    /// Dequantised copy (f16 or f32) used for prompts of `DENSE_MIN_ROWS` rows or more.
+    /// Dequantised f16 copy for prompts of `DENSE_MIN_ROWS` rows or more; only for
+    /// weight types that can be neither packed nor requantised exactly.
     dense: Option<Tensor>,
+    /// Inner width the quantised kernel expects (`k` zero-padded to a multiple of 256
+    /// for requantised weights).
+    k_pad: usize,
+    /// Rows go through the AVX-512 VNNI Q8_0 kernel of this module.
+    vnni: bool,
     /// Output features.
     pub n: usize,
     /// Input features.
     pub k: usize,
 }
 
-/// Whether candle's repacked int8 kernel takes this weight for `m` rows.
-fn packed_kernel(dtype: GgmlDType, n: usize, k: usize, many_rows: bool) -> bool {
-    let shape_ok = k % 256 == 0 && n % 16 == 0;
-    shape_ok
-        && match dtype {
-            GgmlDType::Q4K | GgmlDType::Q8_0 => true,
-            GgmlDType::Q6K => many_rows,
-            _ => false,
+/// Whether candle's repacked int8 kernel takes this weight for several rows.
+fn packed_kernel(dtype: GgmlDType, n: usize, k: usize) -> bool {
+    k % 256 == 0 && n % 16 == 0 && matches!(dtype, GgmlDType::Q4K | GgmlDType::Q6K | GgmlDType::Q8_0)
+}
+
+/// Rewrite a Q4_0 / Q5_0 / Q8_0 weight as Q8_0 with rows zero-padded to a multiple of
+/// 256, so candle's packed int8 kernel takes it. Exact: each source block is `d · q`
+/// with an integer `|q| <= 127`, kept with the same f16 scale `d`.
+fn requantise_q8_0(qt: &QTensor, n: usize, k: usize) -> candle_core::Result<(QTensor, usize)> {
+    let k_pad = k.div_ceil(256) * 256;
+    let src = qt.data()?;
+    let block_bytes = qt.dtype().type_size();
+    let blocks = n * k / 32;
+    // The f16 scale opens every Q4_0 / Q5_0 / Q8_0 block.
+    let mut scale_bytes = Vec::with_capacity(blocks * 2);
+    for b in 0..blocks {
+        scale_bytes.extend_from_slice(&src[b * block_bytes..b * block_bytes + 2]);
+    }
+    let scales = Tensor::from_raw_buffer(&scale_bytes, DType::F16, &[blocks], &Device::Cpu)?
+        .to_dtype(DType::F32)?
+        .to_vec1::<f32>()?;
+    let values = qt.dequantize(&Device::Cpu)?.flatten_all()?.to_vec1::<f32>()?;
+    let mut out = Vec::with_capacity(n * k_pad / 32 * 34);
+    for r in 0..n {
+        for b in 0..k_pad / 32 {
+            if b * 32 >= k {
+                out.extend_from_slice(&[0u8; 34]);
+                continue;
+            }
+            let blk = r * (k / 32) + b;
+            out.extend_from_slice(&scale_bytes[blk * 2..blk * 2 + 2]);
+            let d = scales[blk];
+            for &y in &values[r * k + b * 32..r * k + b * 32 + 32] {
+                let q = if d == 0.0 { 0.0 } else { (y / d).round() };
+                out.push(q as i8 as u8);
+            }
         }
+    }
+    let storage = QStorage::from_data(Cow::Owned(out), &Device::Cpu, GgmlDType::Q8_0)?;
+    Ok((QTensor::new(storage, (n, k_pad))?, k_pad))
 }
 
 impl Linear {
-    /// Choose the kernels for `qt` under `policy`; `dense_dtype` is the dtype of the
-    /// dequantised prompt copy (f16 halves its memory, f32 is exact).
-    pub fn new(
-        qt: Arc<QTensor>,
-        policy: MatmulPolicy,
-        dense_dtype: DType,
-        keep_quant: bool,
-    ) -> candle_core::Result<Self> {
+    /// Choose the kernel for `qt` under `policy`.
+    pub fn new(qt: Arc<QTensor>, policy: MatmulPolicy) -> candle_core::Result<Self> {
         let (n, k) = qt.shape().dims2()?;
         let dtype = qt.dtype();
         let float = matches!(dtype, GgmlDType::F32 | GgmlDType::F16 | GgmlDType::BF16);
-        if policy == MatmulPolicy::Reference || float || packed_kernel(dtype, n, k, true) {
-            let quant = QMatMul::from_arc(qt)?;
-            return Ok(Linear { quant: Some(quant), dense: None, n, k });
+        let quant = |qt| -> candle_core::Result<Self> {
+            Ok(Linear { quant: Some(QMatMul::from_arc(qt)?), dense: None, k_pad: k, vnni: false, n, k })
+        };
+        if policy == MatmulPolicy::Reference || float || packed_kernel(dtype, n, k) {
+            return quant(qt);
         }
-        let dense = match dense_dtype {
-            DType::F16 => qt.dequantize_f16(&Device::Cpu)?,
-            _ => qt.dequantize(&Device::Cpu)?,
-        };
-        let quant = if keep_quant {
-            Some(QMatMul::from_arc(qt)?)
-        } else {
-            None
-        };
-        Ok(Linear { quant, dense: Some(dense), n, k })
+        if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0) && n % 16 == 0 {
+            let (q8, k_pad) = requantise_q8_0(&qt, n, k)?;
+            let quant = Some(QMatMul::from_qtensor(q8)?);
+            return Ok(Linear { quant, dense: None, k_pad, vnni: false, n, k });
+        }
+        let dense = Some(qt.dequantize_f16(&Device::Cpu)?);
+        Ok(Linear { dense, ..quant(qt)? })
     }
 
-    /// Bytes held by this weight's copies (quantised plus dense).
+    /// Kernel for the output projection, which shares its table with the embedding and
+    /// must not be copied: a Q8_0 table candle cannot pack goes through this module's
+    /// VNNI kernel, anything else through candle's `QMatMul`.
+    pub fn output(qt: Arc<QTensor>, policy: MatmulPolicy) -> candle_core::Result<Self> {
+        let (n, k) = qt.shape().dims2()?;
+        #[cfg(target_arch = "x86_64")]
+        let vnni = policy == MatmulPolicy::Fast
+            && qt.dtype() == GgmlDType::Q8_0
+            && !packed_kernel(qt.dtype(), n, k)
+            && q8_0_vnni::available();
+        #[cfg(not(target_arch = "x86_64"))]
+        let vnni = false;
+        let quant = Some(QMatMul::from_arc(qt)?);
+        Ok(Linear { quant, dense: None, k_pad: k, vnni, n, k })
+    }
+
+    /// Bytes held by this weight's own copies (candle's packed tiles not counted).
     pub fn bytes(&self) -> usize {
         let q = match &self.quant {
             Some(QMatMul::QTensor(t)) => t.storage_size_in_bytes(),
@@ -98,8 +150,25 @@ impl Linear {
     /// Multiply `m` rows of `x` (`m × k`, row-major) by the weight: `m × n`.
     pub fn forward(&self, x: &[f32], m: usize) -> Result<Vec<f32>, EngineError> {
         let ctx = "matrix multiply";
-        let xt = Tensor::from_slice(x, (m, self.k), &Device::Cpu)
-            .map_err(EngineError::candle(ctx))?;
+        #[cfg(target_arch = "x86_64")]
+        if let (true, Some(QMatMul::QTensor(t))) = (self.vnni, &self.quant) {
+            let data = t.data().map_err(EngineError::candle(ctx))?;
+            let mut out = Vec::with_capacity(m * self.n);
+            for row in x.chunks_exact(self.k) {
+                out.extend(q8_0_vnni::gemv(&data, self.n, self.k, row));
+            }
+            return Ok(out);
+        }
+        let xt = if self.k_pad == self.k {
+            Tensor::from_slice(x, (m, self.k), &Device::Cpu)
+        } else {
+            let mut padded = vec![0f32; m * self.k_pad];
+            for (dst, src) in padded.chunks_exact_mut(self.k_pad).zip(x.chunks_exact(self.k)) {
+                dst[..self.k].copy_from_slice(src);
+            }
+            Tensor::from_vec(padded, (m, self.k_pad), &Device::Cpu)
+        }
+        .map_err(EngineError::candle(ctx))?;
         let out = match (&self.dense, &self.quant) {
             (Some(w), q) if m >= DENSE_MIN_ROWS || q.is_none() => {
                 let xs = xt.to_dtype(w.dtype()).map_err(EngineError::candle(ctx))?;
@@ -109,7 +178,7 @@ impl Linear {
                     .map_err(EngineError::candle(ctx))?
             }
             (_, Some(q)) => q.forward(&xt).map_err(EngineError::candle(ctx))?,
-            (None, None) => return Err(EngineError::Invalid("weight without a kernel".into())),
+            _ => return Err(EngineError::Invalid("weight without a kernel".into())),
         };
         out.flatten_all()
             .and_then(|t| t.to_vec1::<f32>())
@@ -170,4 +239,322 @@ impl Embedding {
         }
         Ok(out)
     }
+}
+
+/// Reads tensors of one GGUF file.
+pub(crate) struct Loader<'a> {
+    gguf: &'a GgufFile,
+    reader: BufReader<File>,
+}
+
+impl<'a> Loader<'a> {
+    pub(crate) fn open(gguf: &'a GgufFile) -> Result<Self, EngineError> {
+        let file = File::open(&gguf.path).map_err(|source| EngineError::Io {
+            path: gguf.path.clone(),
+            source,
+        })?;
+        Ok(Loader { gguf, reader: BufReader::new(file) })
+    }
+
+    pub(crate) fn err(&self, tensor: &str) -> impl FnOnce(candle_core::Error) -> EngineError {
+        let path = self.gguf.path.clone();
+        let tensor = tensor.to_string();
+        move |e| EngineError::Tensor { path, tensor, reason: e.to_string() }
+    }
+
+    pub(crate) fn has(&self, name: &str) -> bool {
+        self.gguf.content.tensor_infos.contains_key(name)
+    }
+
+    pub(crate) fn qtensor(&mut self, name: &str) -> Result<Arc<QTensor>, EngineError> {
+        if !self.has(name) {
+            return Err(EngineError::Tensor {
+                path: self.gguf.path.clone(),
+                tensor: name.into(),
+                reason: "missing".into(),
+            });
+        }
+        let t = self.gguf.content.tensor(&mut self.reader, name, &Device::Cpu);
+        Ok(Arc::new(t.map_err(self.err(name))?))
+    }
+
+    pub(crate) fn vector(&mut self, name: &str, len: usize) -> Result<Vec<f32>, EngineError> {
+        let t = self.qtensor(name)?;
+        let v = t
+            .dequantize(&Device::Cpu)
+            .and_then(|t| t.flatten_all())
+            .and_then(|t| t.to_vec1::<f32>())
+            .map_err(self.err(name))?;
+        if v.len() != len {
+            return Err(EngineError::Tensor {
+                path: self.gguf.path.clone(),
+                tensor: name.into(),
+                reason: format!("{} values, expected {len}", v.len()),
+            });
+        }
+        Ok(v)
+    }
+
+    pub(crate) fn optional(&mut self, name: &str, len: usize) -> Result<Option<Vec<f32>>, EngineError> {
+        if self.has(name) { self.vector(name, len).map(Some) } else { Ok(None) }
+    }
+
+    pub(crate) fn linear(&mut self, name: &str, policy: MatmulPolicy) -> Result<Linear, EngineError> {
+        let t = self.qtensor(name)?;
+        Linear::new(t, policy).map_err(self.err(name))
+    }
+}
+
+/// Head layout of one attention call.
+pub(crate) struct AttnShape {
+    pub heads: usize,
+    pub kv_heads: usize,
+    pub head_dim: usize,
+    pub scale: f32,
+}
+
+/// RMS norm of each `w.len()`-wide row of `x` (Zhang & Sennrich 2019), as
+/// candle's `rms_norm`: x / sqrt(mean(x²) + eps) · w.
+pub(crate) fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+    let dim = w.len();
+    let mut out = Vec::with_capacity(x.len());
+    for row in x.chunks_exact(dim) {
+        let sum2: f32 = row.iter().map(|v| v * v).sum();
+        let scale = (sum2 / dim as f32 + eps).sqrt();
+        out.extend(row.iter().zip(w).map(|(v, w)| v / scale * w));
+    }
+    out
+}
+
+pub(crate) fn add_bias(x: &mut [f32], bias: Option<&[f32]>) {
+    if let Some(b) = bias {
+        for row in x.chunks_exact_mut(b.len()) {
+            row.iter_mut().zip(b).for_each(|(v, b)| *v += b);
+        }
+    }
+}
+
+pub(crate) fn add_into(x: &mut [f32], y: &[f32]) {
+    x.iter_mut().zip(y).for_each(|(a, b)| *a += b);
+}
+
+pub(crate) fn activate(act: Activation, x: f32) -> f32 {
+    match act {
+        Activation::Silu => x / (1.0 + (-x).exp()),
+        // Hendrycks & Gimpel (2016), tanh approximation.
+        Activation::GeluTanh => {
+            let c = (2.0f32 / std::f32::consts::PI).sqrt();
+            0.5 * x * (1.0 + (c * (x + 0.044_715 * x * x * x)).tanh())
+        }
+    }
+}
+
+/// Inverse frequencies of rotary embeddings (Su et al. 2021): base^(-2i/d).
+pub(crate) fn rope_freqs(head_dim: usize, base: f32) -> Vec<f32> {
+    (0..head_dim).step_by(2).map(|i| 1.0 / base.powf(i as f32 / head_dim as f32)).collect()
+}
+
+/// Rotate every head of each `width`-wide row of `x` in place; row `r` sits at
+/// position `pos0 + r`. Interleaved pairs (2i, 2i+1) as in the original Llama layout,
+/// otherwise pairs (i, i + d/2) as in GPT-NeoX; angles in f32 as candle computes them.
+pub(crate) fn rope(x: &mut [f32], width: usize, d: usize, pos0: usize, freqs: &[f32], interleaved: bool) {
+    let half = d / 2;
+    let (mut cos, mut sin) = (vec![0f32; half], vec![0f32; half]);
+    for (r, row) in x.chunks_exact_mut(width).enumerate() {
+        let pos = (pos0 + r) as f32;
+        for i in 0..half {
+            let angle = pos * freqs[i];
+            cos[i] = angle.cos();
+            sin[i] = angle.sin();
+        }
+        for head in row.chunks_exact_mut(d) {
+            for i in 0..half {
+                let (a, b) = if interleaved { (2 * i, 2 * i + 1) } else { (i, i + half) };
+                let (x0, x1) = (head[a], head[b]);
+                head[a] = x0 * cos[i] - x1 * sin[i];
+                head[b] = x0 * sin[i] + x1 * cos[i];
+            }
+        }
+    }
+}
+
+/// Output buffer shared by attention workers; each work unit writes a disjoint slice.
+struct SharedOut(*mut f32);
+// SAFETY: workers write only to the disjoint `head_dim`-wide slice of their own unit.
+unsafe impl Sync for SharedOut {}
+impl SharedOut {
+    fn ptr(&self) -> *mut f32 {
+        self.0
+    }
+}
+
+/// Causal scaled dot-product attention (Vaswani et al. 2017) of `m` query rows starting
+/// at position `pos0` over the cached keys/values, with grouped key/value heads and an
+/// optional sliding window of `w` tokens (the current one included, as llama.cpp and
+/// Hugging Face Gemma 3 count it). Each (row, head) unit runs on one worker in a fixed
+/// order, so results do not depend on scheduling.
+pub(crate) fn attention(
+    q: &[f32],
+    kc: &[f32],
+    vc: &[f32],
+    c: &AttnShape,
+    pos0: usize,
+    m: usize,
+    window: Option<usize>,
+) -> Vec<f32> {
+    let (heads, d) = (c.heads, c.head_dim);
+    let group = heads / c.kv_heads;
+    let (q_dim, kv_dim) = (heads * d, c.kv_heads * d);
+    let mut out = vec![0f32; m * q_dim];
+    let shared = SharedOut(out.as_mut_ptr());
+    let scale = c.scale;
+    candle_core::utils::barrier_pool().execute_chunked(m * heads, |units| {
+        let mut scores = Vec::new();
+        for u in units {
+            let (r, h) = (u / heads, u % heads);
+            let g = h / group;
+            let p = pos0 + r;
+            let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
+            let qv = &q[u * d..(u + 1) * d];
+            scores.clear();
+            let mut max = f32::NEG_INFINITY;
+            for j in lo..=p {
+                let s = dot(qv, &kc[j * kv_dim + g * d..][..d]) * scale;
+                max = max.max(s);
+                scores.push(s);
+            }
+            let mut sum = 0f32;
+            for s in scores.iter_mut() {
+                *s = (*s - max).exp();
+                sum += *s;
+            }
+            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
+            // `out` outlives the pool call and no other unit touches this range.
+            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
+            for (s, j) in scores.iter().zip(lo..=p) {
+                let wgt = s / sum;
+                let vr = &vc[j * kv_dim + g * d..][..d];
+                o.iter_mut().zip(vr).for_each(|(o, v)| *o += wgt * v);
+            }
+        }
+    });
+    debug_assert_eq!(out.len(), m * q_dim);
+    out
+}
+
+/// Dot product with eight independent lanes (vectorises; fixed order, deterministic).
+pub(crate) fn dot(a: &[f32], b: &[f32]) -> f32 {
+    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
+    let tail: f32 = ca.remainder().iter().zip(cb.remainder()).map(|(x, y)| x * y).sum();
+    let mut acc = [0f32; 8];
+    for (x, y) in ca.zip(cb) {
+        for i in 0..8 {
+            acc[i] += x[i] * y[i];
+        }
+    }
+    acc.iter().sum::<f32>() + tail
+}
+
+/// Matrix-vector products of a Q8_0 weight whose rows candle cannot pack (inner width
+/// not a multiple of 256, e.g. Gemma 3's 640-wide output projection), with AVX-512
+/// VNNI: per 32-value block, `d_w · d_x · Σ q_w q_x` as in ggml's Q8_0 dot product,
+/// the activation quantised to Q8_0 the way candle quantises it.
+#[cfg(target_arch = "x86_64")]
+pub(crate) mod q8_0_vnni {
+    use super::SharedOut;
+    use std::arch::x86_64::*;
+
+    const BLOCK_BYTES: usize = 34;
+
+    /// Whether this processor runs the kernel.
+    pub fn available() -> bool {
+        is_x86_feature_detected!("avx512f")
+            && is_x86_feature_detected!("avx512bw")
+            && is_x86_feature_detected!("avx512vnni")
+            && is_x86_feature_detected!("f16c")
+    }
+
+    /// Q8_0 quantisation of `x` (ggml's rule: d = max|x| / 127, q = round(x / d)), with
+    /// q stored offset by +128 so it can be the unsigned operand of `vpdpbusd`.
+    fn quantise(x: &[f32]) -> (Vec<u8>, Vec<f32>) {
+        let mut qs = Vec::with_capacity(x.len());
+        let mut ds = Vec::with_capacity(x.len() / 32);
+        for block in x.chunks_exact(32) {
+            let amax = block.iter().fold(0f32, |m, v| m.max(v.abs()));
+            let d = amax / 127.0;
+            let id = if d != 0.0 { 1.0 / d } else { 0.0 };
+            // candle stores d as f16; round-trip so products use the same scale.
+            let d16 = f16_round(d);
+            ds.push(d16);
+            qs.extend(block.iter().map(|v| ((v * id).round() as i32 + 128) as u8));
+        }
+        (qs, ds)
+    }
+
+    fn f16_round(v: f32) -> f32 {
+        // SAFETY: `available()` checked F16C before any call reaches here.
+        unsafe { _mm_cvtss_f32(_mm_cvtph_ps(_mm_cvtps_ph::<_MM_FROUND_TO_NEAREST_INT>(_mm_set_ss(v)))) }
+    }
+
+    /// `out[r] = Σ_k w[r, k] · x[k]` for all `n` rows of the Q8_0 bytes `w` (`k / 32`
+    /// blocks per row). Rows are split over candle's worker pool; each row is summed by
+    /// one worker in a fixed order, so results are deterministic.
+    pub fn gemv(w: &[u8], n: usize, k: usize, x: &[f32]) -> Vec<f32> {
+        let (xq, dx) = quantise(x);
+        let mut out = vec![0f32; n];
+        let shared = SharedOut(out.as_mut_ptr());
+        let nb = k / 32;
+        candle_core::utils::barrier_pool().execute_chunked(n, |rows| {
+            for r in rows {
+                let row = &w[r * nb * BLOCK_BYTES..(r + 1) * nb * BLOCK_BYTES];
+                // SAFETY: features checked by the caller via `available()`; row r of
+                // `out` is written by this unit only.
+                unsafe { *shared.ptr().add(r) = row_dot(row, nb, &xq, &dx) };
+            }
+        });
+        out
+    }
+
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni,f16c")]
+    unsafe fn row_dot(row: &[u8], nb: usize, xq: &[u8], dx: &[f32]) -> f32 {
+        let offset = _mm512_set1_epi8(-128i8); // bytes 0x80 = 128 as unsigned
+        let mut acc = _mm512_setzero_ps();
+        let mut b = 0;
+        while b + 2 <= nb {
+            let pa = row.as_ptr().add(b * BLOCK_BYTES);
+            let pb = pa.add(BLOCK_BYTES);
+            let wa = _mm256_loadu_si256(pa.add(2) as *const __m256i);
+            let wb = _mm256_loadu_si256(pb.add(2) as *const __m256i);
+            let wv = _mm512_inserti64x4::<1>(_mm512_castsi256_si512(wa), wb);
+            let xv = _mm512_loadu_si512(xq.as_ptr().add(b * 32) as *const __m512i);
+            // Σ (q_x + 128) q_w − 128 Σ q_w = Σ q_x q_w, four products per lane.
+            let dot = _mm512_dpbusd_epi32(_mm512_setzero_si512(), xv, wv);
+            let corr = _mm512_dpbusd_epi32(_mm512_setzero_si512(), offset, wv);
+            let sumi = _mm512_sub_epi32(dot, corr);
+            let da = f16_at(pa) * dx[b];
+            let db = f16_at(pb) * dx[b + 1];
+            let scale = _mm512_castps256_ps512(_mm256_set1_ps(da));
+            let scale = _mm512_insertf32x8::<1>(scale, _mm256_set1_ps(db));
+            acc = _mm512_fmadd_ps(_mm512_cvtepi32_ps(sumi), scale, acc);
+            b += 2;
+        }
+        let mut sum = _mm512_reduce_add_ps(acc);
+        if b < nb {
+            let p = row.as_ptr().add(b * BLOCK_BYTES);
+            let mut s = 0i32;
+            for i in 0..32 {
+                s += (*p.add(2 + i) as i8 as i32) * (xq[b * 32 + i] as i32 - 128);
+            }
+            sum += s as f32 * f16_at(p) * dx[b];
+        }
+        sum
+    }
+
+    #[target_feature(enable = "f16c")]
+    unsafe fn f16_at(p: *const u8) -> f32 {
+        let bits = u16::from_le_bytes([*p, *p.add(1)]);
+        _mm_cvtss_f32(_mm_cvtph_ps(_mm_cvtsi32_si128(bits as i32)))
+    }
+
+    pub(crate) const _ASSERT_BLOCK: () = assert!(BLOCK_BYTES == 2 + 32);
 }

@@ -2,8 +2,15 @@
 //! and token sequences. Output: token ids, log-probabilities, generated text.
 //! Never reads answers files or rubrics, never prints.
 
+pub mod bench;
+pub mod chat;
+pub mod decoder;
 pub mod error;
 pub mod gguf;
+pub mod linear;
+pub mod session;
+pub mod tokenizer;
 
 pub use error::EngineError;
 pub use gguf::{GgufFile, ModelInfo};
+pub use session::{JudgeModel, SlotRequest};

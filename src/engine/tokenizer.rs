@@ -14,8 +14,8 @@ use tokenizers::pre_tokenizers::byte_level::ByteLevel;
 use tokenizers::pre_tokenizers::sequence::Sequence;
 use tokenizers::pre_tokenizers::split::{Split, SplitPattern};
 use tokenizers::{
-    Model, OffsetReferential, OffsetType, PreTokenizedString, PreTokenizer,
-    PreTokenizerWrapper, SplitDelimiterBehavior,
+    Model, OffsetReferential, OffsetType, PreTokenizedString, PreTokenizer, PreTokenizerWrapper,
+    SplitDelimiterBehavior,
 };
 
 use super::chat::Segment;
@@ -61,7 +61,10 @@ const END_OF_TURN: &[&str] = &[
 /// How raw text between special tokens becomes tokens.
 enum Family {
     /// Byte-level BPE (`gpt2`): regex split, bytes mapped to printable characters.
-    ByteLevel { pre: PreTokenizerWrapper, byte_of: HashMap<char, u8> },
+    ByteLevel {
+        pre: PreTokenizerWrapper,
+        byte_of: HashMap<char, u8>,
+    },
     /// SentencePiece (`llama`): spaces become U+2581, merges by piece score, unknown
     /// characters fall back to `<0xXX>` byte tokens.
     SentencePiece { add_space_prefix: bool },
@@ -113,15 +116,21 @@ impl JudgeTokenizer {
         .filter(|t| t.len() == tokens.len())
         .ok_or_else(|| err("`tokenizer.ggml.token_type` is not one integer per token".into()))?;
         // llama.cpp's `token_to_id` map: a repeated text keeps its last id.
-        let vocab: Vocab = tokens.iter().enumerate().map(|(i, t)| (t.clone(), i as u32)).collect();
+        let vocab: Vocab = tokens
+            .iter()
+            .enumerate()
+            .map(|(i, t)| (t.clone(), i as u32))
+            .collect();
         let (model, family, default_bos) = match kind.as_str() {
             "gpt2" => {
-                let pre_name = gguf.string("tokenizer.ggml.pre").unwrap_or_else(|_| "default".into());
-                let (patterns, ignore_merges, default_bos): (&[&str], bool, bool) = match pre_name.as_str() {
-                    "qwen2" | "deepseek-r1-qwen" => (&[QWEN2_PATTERN], false, false),
-                    "llama3" | "llama-v3" | "llama-bpe" => (&[LLAMA3_PATTERN], true, true),
-                    "gpt-2" => (&[GPT2_PATTERN], false, false),
-                    "default" => (DEFAULT_PATTERNS, false, false),
+                let pre_name = gguf
+                    .string("tokenizer.ggml.pre")
+                    .unwrap_or_else(|_| "default".into());
+                let (patterns, ignore_merges, default_bos) = match pre_name.as_str() {
+                    "qwen2" | "deepseek-r1-qwen" => (vec![QWEN2_PATTERN], false, false),
+                    "llama3" | "llama-v3" | "llama-bpe" => (vec![LLAMA3_PATTERN], true, true),
+                    "gpt-2" => (vec![GPT2_PATTERN], false, false),
+                    "default" => (DEFAULT_PATTERNS.to_vec(), false, false),
                     other => {
                         return Err(err(format!(
                             "pre-tokenizer `{other}` (`tokenizer.ggml.pre`) is not supported (supported: {SUPPORTED_PRE})"
@@ -132,9 +141,12 @@ impl JudgeTokenizer {
                     .iter()
                     .map(|m| split_merge(m).ok_or_else(|| err(format!("merge `{m}` has no space"))))
                     .collect::<Result<Vec<_>, _>>()?;
-                let byte_of: HashMap<char, u8> = byte_chars().into_iter().map(|(b, c)| (c, b)).collect();
+                let byte_of: HashMap<char, u8> =
+                    byte_chars().into_iter().map(|(b, c)| (c, b)).collect();
                 if let Some(c) = byte_of.keys().find(|c| !vocab.contains_key(&c.to_string())) {
-                    return Err(err(format!("byte-level vocabulary lacks the byte character `{c}`")));
+                    return Err(err(format!(
+                        "byte-level vocabulary lacks the byte character `{c}`"
+                    )));
                 }
                 let model = BPE::builder()
                     .vocab_and_merges(vocab, merges)
@@ -143,11 +155,17 @@ impl JudgeTokenizer {
                     .map_err(|e| err(format!("cannot build the BPE model: {e}")))?;
                 let mut splits = Vec::new();
                 for p in patterns {
-                    let split = Split::new(SplitPattern::Regex((*p).into()), SplitDelimiterBehavior::Isolated, false)
-                        .map_err(|e| err(format!("bad pre-tokenizer pattern: {e}")))?;
+                    let split = Split::new(
+                        SplitPattern::Regex(p.into()),
+                        SplitDelimiterBehavior::Isolated,
+                        false,
+                    )
+                    .map_err(|e| err(format!("bad pre-tokenizer pattern: {e}")))?;
                     splits.push(PreTokenizerWrapper::Split(split));
                 }
-                splits.push(PreTokenizerWrapper::ByteLevel(ByteLevel::new(false, false, false)));
+                splits.push(PreTokenizerWrapper::ByteLevel(ByteLevel::new(
+                    false, false, false,
+                )));
                 let pre = PreTokenizerWrapper::Sequence(Sequence::new(splits));
                 (model, Family::ByteLevel { pre, byte_of }, default_bos)
             }
@@ -159,7 +177,10 @@ impl JudgeTokenizer {
                 .filter(|s| s.len() == tokens.len())
                 .ok_or_else(|| err("`tokenizer.ggml.scores` is not one float per token".into()))?;
                 if let Some(b) = (0..=255u8).find(|b| !vocab.contains_key(&byte_token(*b))) {
-                    return Err(err(format!("vocabulary lacks the byte token `{}`", byte_token(b))));
+                    return Err(err(format!(
+                        "vocabulary lacks the byte token `{}`",
+                        byte_token(b)
+                    )));
                 }
                 let merges = score_merges(&tokens, &types, &scores, &vocab);
                 let model = BPE::builder()
@@ -167,18 +188,32 @@ impl JudgeTokenizer {
                     .byte_fallback(true)
                     .build()
                     .map_err(|e| err(format!("cannot build the SentencePiece model: {e}")))?;
-                let add_space_prefix = gguf.boolean("tokenizer.ggml.add_space_prefix").unwrap_or(true);
+                let add_space_prefix = gguf
+                    .boolean("tokenizer.ggml.add_space_prefix")
+                    .unwrap_or(true);
                 (model, Family::SentencePiece { add_space_prefix }, true)
             }
-            other => return Err(err(format!("tokenizer model `{other}` is not supported (supported: gpt2, llama)"))),
+            other => {
+                return Err(err(format!(
+                    "tokenizer model `{other}` is not supported (supported: gpt2, llama)"
+                )))
+            }
         };
-        let id = |key: &str| gguf.uint(key).ok().map(|v| v as u32).filter(|v| (*v as usize) < tokens.len());
+        let id = |key: &str| {
+            gguf.uint(key)
+                .ok()
+                .map(|v| v as u32)
+                .filter(|v| (*v as usize) < tokens.len())
+        };
         let mut eos: Vec<u32> = ["tokenizer.ggml.eos_token_id", "tokenizer.ggml.eot_token_id"]
             .iter()
             .filter_map(|k| id(k))
             .collect();
         for (i, t) in tokens.iter().enumerate() {
-            if types[i] == CONTROL && END_OF_TURN.contains(&t.as_str()) && !eos.contains(&(i as u32)) {
+            if types[i] == CONTROL
+                && END_OF_TURN.contains(&t.as_str())
+                && !eos.contains(&(i as u32))
+            {
                 eos.push(i as u32);
             }
         }
@@ -186,7 +221,9 @@ impl JudgeTokenizer {
         Ok(JudgeTokenizer {
             path: gguf.path.clone(),
             bos: id("tokenizer.ggml.bos_token_id"),
-            add_bos: gguf.boolean("tokenizer.ggml.add_bos_token").unwrap_or(default_bos),
+            add_bos: gguf
+                .boolean("tokenizer.ggml.add_bos_token")
+                .unwrap_or(default_bos),
             eos,
             plain: special(&[USER_DEFINED]),
             trusted: special(&[CONTROL, USER_DEFINED, UNKNOWN]),
@@ -212,7 +249,11 @@ impl JudgeTokenizer {
     /// Encode a rendered prompt: `Control` spans as trusted, `Content` spans as plain.
     /// Each segment boundary is also a token boundary. BOS first when `add_bos` and the
     /// model asks for one.
-    pub fn encode_segments(&self, segments: &[Segment], add_bos: bool) -> Result<Vec<u32>, EngineError> {
+    pub fn encode_segments(
+        &self,
+        segments: &[Segment],
+        add_bos: bool,
+    ) -> Result<Vec<u32>, EngineError> {
         let mut ids = Vec::new();
         if add_bos && self.add_bos {
             ids.extend(self.bos);
@@ -245,7 +286,12 @@ impl JudgeTokenizer {
         Ok(ids)
     }
 
-    fn encode_raw(&self, raw: &str, after_special: bool, ids: &mut Vec<u32>) -> Result<(), EngineError> {
+    fn encode_raw(
+        &self,
+        raw: &str,
+        after_special: bool,
+        ids: &mut Vec<u32>,
+    ) -> Result<(), EngineError> {
         let fail = |e: tokenizers::Error| EngineError::Tokenizer {
             path: self.path.clone(),
             reason: format!("cannot encode text: {e}"),
@@ -254,14 +300,31 @@ impl JudgeTokenizer {
             Family::ByteLevel { pre, .. } => {
                 let mut pretok = PreTokenizedString::from(raw);
                 pre.pre_tokenize(&mut pretok).map_err(fail)?;
-                for (word, _, _) in pretok.get_splits(OffsetReferential::Original, OffsetType::Byte) {
-                    ids.extend(self.model.tokenize(word).map_err(fail)?.iter().map(|t| t.id));
+                for (word, _, _) in pretok.get_splits(OffsetReferential::Original, OffsetType::Byte)
+                {
+                    ids.extend(
+                        self.model
+                            .tokenize(word)
+                            .map_err(fail)?
+                            .iter()
+                            .map(|t| t.id),
+                    );
                 }
             }
             Family::SentencePiece { add_space_prefix } => {
-                let prefix = if *add_space_prefix && after_special { " " } else { "" };
+                let prefix = if *add_space_prefix && after_special {
+                    " "
+                } else {
+                    ""
+                };
                 let escaped = format!("{prefix}{raw}").replace(' ', "\u{2581}");
-                ids.extend(self.model.tokenize(&escaped).map_err(fail)?.iter().map(|t| t.id));
+                ids.extend(
+                    self.model
+                        .tokenize(&escaped)
+                        .map_err(fail)?
+                        .iter()
+                        .map(|t| t.id),
+                );
             }
         }
         Ok(())
@@ -274,7 +337,10 @@ impl JudgeTokenizer {
         for &id in ids {
             let i = id as usize;
             let text = self.tokens.get(i).ok_or_else(|| {
-                EngineError::Invalid(format!("token id {id} is outside the vocabulary of {} tokens", self.tokens.len()))
+                EngineError::Invalid(format!(
+                    "token id {id} is outside the vocabulary of {} tokens",
+                    self.tokens.len()
+                ))
             })?;
             bytes.extend(self.piece_bytes(i, text));
         }
@@ -285,7 +351,10 @@ impl JudgeTokenizer {
     fn piece_bytes(&self, i: usize, text: &str) -> Vec<u8> {
         match (self.types[i], &self.family) {
             (USER_DEFINED, _) => text.as_bytes().to_vec(),
-            (NORMAL, Family::ByteLevel { byte_of, .. }) => text.chars().filter_map(|c| byte_of.get(&c).copied()).collect(),
+            (NORMAL, Family::ByteLevel { byte_of, .. }) => text
+                .chars()
+                .filter_map(|c| byte_of.get(&c).copied())
+                .collect(),
             (NORMAL, Family::SentencePiece { .. }) => text.replace('\u{2581}', " ").into_bytes(),
             (BYTE, _) => parse_byte_token(text).map(|b| vec![b]).unwrap_or_default(),
             _ => Vec::new(),
@@ -397,7 +466,12 @@ impl SpecialMatcher {
 /// (`llm_tokenizer_spm_session`) merges the adjacent pair whose concatenation is the
 /// best-scoring piece, so these ranks reproduce it. Control pieces are never targets,
 /// so plain text cannot merge into a control token.
-fn score_merges(tokens: &[String], types: &[i32], scores: &[f32], vocab: &Vocab) -> Vec<(String, String)> {
+fn score_merges(
+    tokens: &[String],
+    types: &[i32],
+    scores: &[f32],
+    vocab: &Vocab,
+) -> Vec<(String, String)> {
     let mut ranked: Vec<(f32, usize, &str, &str)> = Vec::new();
     for (i, t) in tokens.iter().enumerate() {
         if !matches!(types[i], NORMAL | USER_DEFINED) || vocab.get(t) != Some(&(i as u32)) {
@@ -411,7 +485,10 @@ fn score_merges(tokens: &[String], types: &[i32], scores: &[f32], vocab: &Vocab)
         }
     }
     ranked.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
-    ranked.into_iter().map(|(_, _, l, r)| (l.to_string(), r.to_string())).collect()
+    ranked
+        .into_iter()
+        .map(|(_, _, l, r)| (l.to_string(), r.to_string()))
+        .collect()
 }
 
 /// GPT-2's byte-to-character table (Radford et al., 2019): printable bytes map to
@@ -427,7 +504,10 @@ fn byte_chars() -> Vec<(u8, char)> {
             next += 1;
             255 + next
         };
-        out.push((b, char::from_u32(c).expect("code points below U+0200 are valid")));
+        out.push((
+            b,
+            char::from_u32(c).expect("code points below U+0200 are valid"),
+        ));
     }
     out
 }
@@ -443,7 +523,8 @@ fn parse_byte_token(text: &str) -> Option<u8> {
 
 /// llama.cpp splits a merge line at the first space after its first byte.
 fn split_merge(line: &str) -> Option<(String, String)> {
-    let at = line.get(1..)?.find(' ')? + 1;
+    let first = line.chars().next()?.len_utf8();
+    let at = line[first..].find(' ')? + first;
     Some((line[..at].to_string(), line[at + 1..].to_string()))
 }
 

@@ -9,7 +9,8 @@ fn run(f: fn(&mut Vec<u8>, bool), word: &str, nltk: bool) -> String {
     String::from_utf8(w).expect("ascii")
 }
 
-/// Porter (1980), worked examples printed beside steps 1a and 1b of the paper.
+/// Porter (1980), worked examples printed beside steps 1a to 1c of the paper (as
+/// quoted in the docstrings of NLTK's porter module).
 #[test]
 fn step1_matches_porter_1980_examples() {
     for (word, want) in [
@@ -45,7 +46,8 @@ fn step1_matches_porter_1980_examples() {
     assert_eq!(run(|w, n| step1c(w, n), "sky", false), "sky");
 }
 
-/// Porter (1980), worked examples printed beside steps 2 to 5 of the paper.
+/// Porter (1980), worked examples printed beside steps 2 to 5 of the paper (as
+/// quoted in the docstrings of NLTK's porter module).
 #[test]
 fn steps_2_to_5_match_porter_1980_examples() {
     for (word, want) in [
@@ -130,8 +132,9 @@ fn killed_and_kill_share_a_stem() {
     }
 }
 
-/// Porter (1980) measure examples: m=0 TR, EE, TREE, Y, BY; m=1 TROUBLE, OATS,
-/// TREES, IVY; m=2 TROUBLES, PRIVATE, OATEN, ORRERY.
+/// Porter (1980) measure examples (as quoted in NLTK's porter module): m=0 TR,
+/// EE, TREE, Y, BY; m=1 TROUBLE, OATS, TREES, IVY; m=2 TROUBLES, PRIVATE, OATEN,
+/// ORRERY.
 #[test]
 fn measure_matches_porter_1980_examples() {
     for (word, m) in [

@@ -86,7 +86,8 @@ fn reordered_sentence_matches_rouge_score_and_lin_2004() {
     );
 }
 
-/// Lin (2004) section 3.2 worked example of summary-level LCS: reference sentence
+/// Lin (2004) section 3.2 worked example of summary-level LCS (recalled from
+/// memory, not in METHODS.md; the numbers also follow by hand): reference sentence
 /// w1 w2 w3 w4 w5, candidate sentences w1 w2 w6 w7 w8 and w1 w3 w8 w9 w5; the union
 /// LCS is w1 w2 w3 w5, so 4 hits: R = 4/5, P = 4/10.
 #[test]

@@ -1,0 +1,126 @@
+//! Helpers shared by the subcommands: model resolution and loading, progress bars,
+//! file hashes, run-folder naming. Never computes results.
+
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use anyhow::Context as _;
+use clap::Args;
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use sha2::{Digest, Sha256};
+
+use super::errors::usage;
+use super::models_dir;
+use crate::engine::decoder::LoadOptions;
+use crate::engine::JudgeModel;
+
+/// File name of the default judge inside the models folder.
+pub const DEFAULT_JUDGE: &str = "qwen2.5-coder-1.5b-instruct-q4_k_m.gguf";
+
+/// Short names for the bundled judges.
+pub const ALIASES: &[(&str, &str)] = &[
+    ("default", DEFAULT_JUDGE),
+    ("small", "qwen2.5-coder-0.5b-instruct-q5_0.gguf"),
+    ("gemma", "gemma-3-270m-q4_k_m.gguf"),
+];
+
+/// Options that choose and load the judge model.
+#[derive(Debug, Clone, Args)]
+pub struct ModelArgs {
+    /// Judge model: a GGUF path, or `default`, `small`, `gemma` for the fetched judges
+    #[arg(long, short = 'm', value_name = "MODEL", default_value = "default")]
+    pub model: String,
+    /// Kernel threads (0 = all cores); results are identical for the same count
+    #[arg(long, value_name = "N", default_value_t = 0)]
+    pub threads: usize,
+    /// Cap on prompt length in tokens, below the model's trained context
+    #[arg(long, value_name = "TOKENS")]
+    pub context: Option<usize>,
+}
+
+/// Resolve `--model` to a file path.
+pub fn resolve_model(name: &str) -> anyhow::Result<PathBuf> {
+    let dir = models_dir();
+    for (alias, file) in ALIASES {
+        if name == *alias {
+            let p = dir.join(file);
+            if !p.exists() {
+                return Err(usage(
+                    format!("judge `{alias}` is not fetched yet (looked for `{}`)", p.display()),
+                    "run `scripts/fetch-models --all`, or set `ASSIZE_MODELS_DIR` to the folder that holds it",
+                ));
+            }
+            return Ok(p);
+        }
+    }
+    let p = PathBuf::from(name);
+    if p.exists() {
+        return Ok(p);
+    }
+    let in_dir = dir.join(name);
+    if in_dir.exists() {
+        return Ok(in_dir);
+    }
+    Err(usage(
+        format!("model `{name}` is neither a file nor a known judge name"),
+        "pass a GGUF path, or one of `default`, `small`, `gemma` (fetch them with `scripts/fetch-models --all`)",
+    ))
+}
+
+/// Load the judge named by the arguments, telling stderr what happens.
+pub fn load_judge(args: &ModelArgs, quiet: bool) -> anyhow::Result<JudgeModel> {
+    let path = resolve_model(&args.model)?;
+    if !quiet {
+        eprintln!("loading judge `{}`", path.display());
+    }
+    let start = std::time::Instant::now();
+    let opts = LoadOptions {
+        threads: args.threads,
+        context_cap: args.context,
+    };
+    let model = JudgeModel::load(&path, &opts)
+        .with_context(|| format!("cannot load judge `{}`", path.display()))?;
+    if !quiet {
+        eprintln!(
+            "loaded {} judge in {:.1} s",
+            model.arch,
+            start.elapsed().as_secs_f64()
+        );
+    }
+    Ok(model)
+}
+
+/// A progress bar on stderr, hidden when stderr is not a terminal or with `--quiet`.
+pub fn progress(len: u64, what: &str, quiet: bool) -> ProgressBar {
+    let bar = ProgressBar::new(len);
+    if quiet || !std::io::stderr().is_terminal() {
+        bar.set_draw_target(ProgressDrawTarget::hidden());
+    }
+    let style = ProgressStyle::with_template(
+        "{msg} {bar:30} {pos}/{len} items, {per_sec}, eta {eta}",
+    )
+    .expect("static progress template");
+    bar.set_style(if std::env::var_os("NO_COLOR").is_some() {
+        style
+    } else {
+        style.progress_chars("=> ")
+    });
+    bar.set_message(what.to_string());
+    bar.enable_steady_tick(Duration::from_millis(500));
+    bar
+}
+
+/// SHA-256 of a file's bytes, lowercase hex.
+pub fn file_sha256(path: &Path) -> anyhow::Result<String> {
+    let bytes =
+        std::fs::read(path).with_context(|| format!("cannot read `{}`", path.display()))?;
+    Ok(format!("{:x}", Sha256::digest(&bytes)))
+}
+
+/// A run folder name derived from what the run depends on, so the same command
+/// resumes and any change of model, rubric, data or options starts a fresh run.
+pub fn default_run_dir(kind: &str, manifest_json: &str) -> PathBuf {
+    let h = format!("{:x}", Sha256::digest(manifest_json.as_bytes()));
+    PathBuf::from("runs").join(format!("{kind}-{}", &h[..12]))
+}

@@ -1,0 +1,78 @@
+//! Judge stage: plans the forward passes for grading forms and turns the judge's
+//! label probabilities into verdicts. Input: forms from `rubric`, a `Backend` (the
+//! local model, or a scripted judge in tests). Output: `GradeRecord`s and
+//! `PairRecord`s. Never reads files and never touches tensors.
+
+pub mod anchors;
+pub mod grade;
+pub mod pairwise;
+pub mod records;
+pub mod scripted;
+
+pub use records::{GradeRecord, PairRecord};
+
+use crate::engine::{EngineError, JudgeModel};
+use crate::rubric::forms::Form;
+
+/// What the judge stage needs from a model.
+pub trait Backend {
+    /// Model file as given (for manifests and reports).
+    fn model_path(&self) -> String;
+    /// SHA-256 of the model file.
+    fn model_sha256(&self) -> String;
+    /// Unnormalised log-probability of each label at the slot after each form's
+    /// prefill. Forms of one item are passed together so their shared prefix is
+    /// computed once.
+    fn score_forms(
+        &self,
+        item: &str,
+        forms: &[Form],
+        labels: &[Vec<String>],
+    ) -> Result<Vec<Vec<f64>>, EngineError>;
+    /// Text the judge writes after a form's prefill (reasoning-first mode).
+    fn continue_form(
+        &self,
+        item: &str,
+        form: &Form,
+        max_tokens: usize,
+        stops: &[&str],
+        seed: u64,
+    ) -> Result<String, EngineError>;
+}
+
+impl Backend for JudgeModel {
+    fn model_path(&self) -> String {
+        self.path.display().to_string()
+    }
+
+    fn model_sha256(&self) -> String {
+        self.sha256.clone()
+    }
+
+    fn score_forms(
+        &self,
+        item: &str,
+        forms: &[Form],
+        labels: &[Vec<String>],
+    ) -> Result<Vec<Vec<f64>>, EngineError> {
+        let requests = forms
+            .iter()
+            .zip(labels)
+            .map(|(f, l)| self.slot_request(&f.system, &f.user, &f.prefill, l))
+            .collect::<Result<Vec<_>, _>>()?;
+        self.label_logprobs(item, &requests)
+    }
+
+    fn continue_form(
+        &self,
+        item: &str,
+        form: &Form,
+        max_tokens: usize,
+        stops: &[&str],
+        seed: u64,
+    ) -> Result<String, EngineError> {
+        let prompt = self.encode_chat(&form.system, &form.user, &form.prefill)?;
+        Ok(self.generate(item, &prompt, max_tokens, stops, 0.0, seed)?.text)
+    }
+}
+

@@ -1,0 +1,140 @@
+//! Rankings of systems from debiased pairwise verdicts: Bradley-Terry maximum
+//! likelihood (Hunter 2004, MM algorithm; ties as half wins) on the Elo scale, with
+//! seeded bootstrap intervals over questions, and the win/tie/loss matrix. Input:
+//! `PairOutcome`s. Output: `Ranking`. Never hides a disconnected comparison graph:
+//! it says which systems cannot be placed.
+
+use std::collections::BTreeSet;
+
+use serde::Serialize;
+
+use super::PairOutcome;
+use crate::stats::bootstrap::{percentile_interval, bootstrap_replicates};
+use crate::stats::pairwise::Winner;
+use crate::stats::ranking::bradley_terry;
+use crate::stats::StatsError;
+
+/// One system's place.
+#[derive(Debug, Clone, Serialize)]
+pub struct RankingRow {
+    /// System name.
+    pub system: String,
+    /// Debiased wins against any other system.
+    pub wins: usize,
+    /// Debiased ties.
+    pub ties: usize,
+    /// Debiased losses.
+    pub losses: usize,
+    /// Bradley-Terry strength (all strengths sum to 1).
+    pub strength: f64,
+    /// Rating on the Elo scale: 400·log10(strength), shifted to mean 1000.
+    pub rating: f64,
+    /// Lower end of the 95% bootstrap percentile interval of the rating.
+    pub rating_low: f64,
+    /// Upper end of that interval.
+    pub rating_high: f64,
+}
+
+/// The ranking of all systems.
+#[derive(Debug, Clone, Serialize)]
+pub struct Ranking {
+    /// Systems, strongest first.
+    pub rows: Vec<RankingRow>,
+    /// `matrix[i][j]` = [wins, ties, losses] of system i against j (order of `systems`).
+    pub matrix: Vec<Vec<[usize; 3]>>,
+    /// System names in matrix order.
+    pub systems: Vec<String>,
+    /// Bootstrap resamples, and how many had no finite estimate.
+    pub resamples: usize,
+    /// Resamples skipped because the resampled graph had no finite estimate.
+    pub skipped: usize,
+}
+
+fn wins_matrix(outcomes: &[&PairOutcome], systems: &[String]) -> Vec<Vec<f64>> {
+    let idx = |s: &str| systems.iter().position(|x| x == s).expect("system listed");
+    let mut w = vec![vec![0.0; systems.len()]; systems.len()];
+    for o in outcomes {
+        let (a, b) = (idx(&o.a), idx(&o.b));
+        match o.debiased_winner {
+            Winner::A => w[a][b] += 1.0,
+            Winner::B => w[b][a] += 1.0,
+            Winner::Tie => {
+                w[a][b] += 0.5;
+                w[b][a] += 0.5;
+            }
+        }
+    }
+    w
+}
+
+/// Rank systems; `Err` names the systems when no finite estimate exists.
+pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ranking, StatsError> {
+    let systems: Vec<String> = outcomes
+        .iter()
+        .flat_map(|o| [o.a.clone(), o.b.clone()])
+        .collect::<BTreeSet<_>>()
+        .into_iter()
+        .collect();
+    let all: Vec<&PairOutcome> = outcomes.iter().collect();
+    let bt = bradley_terry(&wins_matrix(&all, &systems), 1e-10, 10_000)?;
+    let n = systems.len();
+    let mut matrix = vec![vec![[0usize; 3]; n]; n];
+    for o in outcomes {
+        let a = systems.iter().position(|x| *x == o.a).expect("listed");
+        let b = systems.iter().position(|x| *x == o.b).expect("listed");
+        let (ra, rb) = match o.debiased_winner {
+            Winner::A => (0, 2),
+            Winner::B => (2, 0),
+            Winner::Tie => (1, 1),
+        };
+        matrix[a][b][ra] += 1;
+        matrix[b][a][rb] += 1;
+    }
+    // Resample questions, keeping all pairs of a question together.
+    let questions: Vec<String> = outcomes
+        .iter()
+        .map(|o| o.question_id.clone())
+        .collect::<BTreeSet<_>>()
+        .into_iter()
+        .collect();
+    let questions = &questions;
+    let mut rows = Vec::new();
+    let mut skipped = 0;
+    for (i, system) in systems.iter().enumerate() {
+        let reps = bootstrap_replicates(questions.len(), resamples, seed, |idx| {
+            let chosen: Vec<&PairOutcome> = idx
+                .iter()
+                .flat_map(|&q| outcomes.iter().filter(move |o| o.question_id == questions[q]))
+                .collect();
+            bradley_terry(&wins_matrix(&chosen, &systems), 1e-8, 10_000)
+                .ok()
+                .map(|b| b.elo_scale[i])
+        })?;
+        skipped = skipped.max(reps.skipped);
+        let (lo, hi) = if reps.values.len() >= 2 {
+            let ci = percentile_interval(&reps, bt.elo_scale[i], 0.95)?;
+            (ci.lower, ci.upper)
+        } else {
+            (f64::NAN, f64::NAN)
+        };
+        let sum = |k: usize| matrix[i].iter().map(|c| c[k]).sum::<usize>();
+        rows.push(RankingRow {
+            system: system.clone(),
+            wins: sum(0),
+            ties: sum(1),
+            losses: sum(2),
+            strength: bt.pi[i],
+            rating: bt.elo_scale[i],
+            rating_low: lo,
+            rating_high: hi,
+        });
+    }
+    rows.sort_by(|x, y| y.rating.total_cmp(&x.rating));
+    Ok(Ranking {
+        rows,
+        matrix,
+        systems,
+        resamples,
+        skipped,
+    })
+}

@@ -1,0 +1,283 @@
+//! Vetting stage, output side: a `VetReport` (and optionally a `PairVetReport`) as
+//! plain text for a terminal: per criterion a side-by-side table of variants, the
+//! primary variant in detail, the human ceiling, the trust card and calibration, then
+//! the pairwise findings. Input: the reports. Output: one `String`. Never computes a
+//! statistic and never hides a caution: every warning of a card is printed, and a
+//! "yes" that rests on thin evidence says so in words.
+
+use std::fmt::Write;
+
+use super::agreement::IntervalPair;
+use super::card::Verdict;
+use super::{CriterionReport, PairVetReport, VetReport};
+use crate::stats::bootstrap::BootstrapInterval;
+
+fn num(v: Option<f64>) -> String {
+    v.map_or_else(|| "n/a".into(), |x| format!("{x:.3}"))
+}
+
+fn ci(i: Option<&BootstrapInterval>) -> String {
+    i.map_or_else(|| "[n/a]".into(), |c| format!("[{:.3}, {:.3}]", c.lower, c.upper))
+}
+
+fn both(p: &IntervalPair) -> String {
+    format!(
+        "percentile {}, BCa {}",
+        ci(p.percentile.as_ref()),
+        ci(p.bca.as_ref())
+    )
+}
+
+/// The human-readable vetting report: tables, trust cards and plain-words cautions.
+pub fn report_text(r: &VetReport, p: Option<&PairVetReport>) -> String {
+    let mut s = String::new();
+    let o = &r.options;
+    let _ = writeln!(
+        s,
+        "vetting against human labels: rubric `{}`, {} resamples, seed {}, {:.0}% intervals, margin {:.2}",
+        r.rubric,
+        o.resamples,
+        o.seed,
+        o.level * 100.0,
+        o.margin
+    );
+    for c in &r.criteria {
+        criterion(&mut s, c);
+    }
+    for k in &r.skipped {
+        let _ = writeln!(s, "\nnot vetted: `{}` ({})", k.criterion, k.reason);
+    }
+    let _ = writeln!(s, "\ntrust summary (primary variant `{}`)", r.variants.first().map_or("", |v| v.name.as_str()));
+    for c in &r.criteria {
+        let thin = if c.trust.thin_evidence { " (thin evidence)" } else { "" };
+        let _ = writeln!(s, "  {:<16} {}{thin}", c.criterion, c.trust.verdict.as_str());
+    }
+    if let Some(p) = p {
+        pairs(&mut s, p);
+    }
+    s
+}
+
+fn criterion(s: &mut String, c: &CriterionReport) {
+    let _ = writeln!(
+        s,
+        "\n== {} (scale {}, {} labelled items, raters: {})",
+        c.criterion,
+        c.scale.join("/"),
+        c.labelled_items,
+        c.raters.join(", ")
+    );
+    let _ = writeln!(s, "\n  variants against the human consensus");
+    let _ = writeln!(
+        s,
+        "  {:<20} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
+        "variant", "n", "kappa_q", "95% CI", "spearman", "MAE"
+    );
+    for v in &c.variants {
+        let kq = v.categorical.as_ref();
+        let _ = writeln!(
+            s,
+            "  {:<20} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
+            v.variant,
+            v.n_items,
+            num(kq.and_then(|k| k.kappa_quadratic)),
+            kq.map_or("(baseline)".into(), |k| ci(k.kappa_quadratic_ci.percentile.as_ref())),
+            num(v.correlation.spearman),
+            num(v.error.as_ref().map(|e| e.mae)),
+        );
+    }
+    if let Some(v) = c.variants.first() {
+        let _ = writeln!(s, "\n  `{}` in detail ({} items)", v.variant, v.n_items);
+        if let Some(k) = &v.categorical {
+            let _ = writeln!(s, "    exact {:.3}, within one {:.3}", k.exact, k.within_one);
+            let _ = writeln!(
+                s,
+                "    kappa unweighted {} {}, linear {}, quadratic {}",
+                num(k.kappa_unweighted),
+                ci(k.kappa_unweighted_ci.percentile.as_ref()),
+                num(k.kappa_linear),
+                num(k.kappa_quadratic)
+            );
+            let _ = writeln!(s, "    quadratic kappa intervals: {}", both(&k.kappa_quadratic_ci));
+            let _ = writeln!(
+                s,
+                "    alpha nominal {}, ordinal {}, interval {}; Gwet AC1 {}, AC2 (quadratic) {}",
+                num(k.alpha_nominal),
+                num(k.alpha_ordinal),
+                num(k.alpha_interval),
+                num(k.gwet_ac1),
+                num(k.gwet_ac2_quadratic)
+            );
+            let per: Vec<String> = k
+                .per_rater
+                .iter()
+                .map(|r| format!("{} {} (n {})", r.rater, num(r.kappa_quadratic), r.n_items))
+                .collect();
+            let _ = writeln!(s, "    quadratic kappa against each rater: {}", per.join(", "));
+            let _ = writeln!(s, "    confusion (rows human consensus, columns judge)");
+            let _ = writeln!(s, "      {:>6} {}", "", c.scale.iter().map(|l| format!("{l:>5}")).collect::<String>());
+            for (label, row) in c.scale.iter().zip(&k.confusion) {
+                let _ = writeln!(s, "      {label:>6} {}", row.iter().map(|x| format!("{x:>5}")).collect::<String>());
+            }
+        }
+        let cr = &v.correlation;
+        let _ = writeln!(
+            s,
+            "    spearman {} ({}), kendall tau-b {}, pearson {}",
+            num(cr.spearman),
+            both(&cr.spearman_ci),
+            num(cr.kendall_tau_b),
+            num(cr.pearson)
+        );
+        if let Some(e) = &v.error {
+            let lean = if e.mean_signed_bias > 0.0 { "more lenient" } else { "harsher" };
+            let _ = writeln!(
+                s,
+                "    MAE {:.3} {}, bias {:+.3} (judge {lean} than humans on average)",
+                e.mae,
+                ci(e.mae_ci.percentile.as_ref()),
+                e.mean_signed_bias
+            );
+        }
+    }
+    let h = &c.ceiling;
+    let _ = writeln!(s, "\n  human ceiling (each rater against the consensus of the others)");
+    for r in &h.per_rater {
+        let _ = writeln!(
+            s,
+            "    {:<16} kappa_q {}, spearman {} (n {})",
+            r.rater,
+            num(r.kappa_quadratic),
+            num(r.spearman),
+            r.n_items
+        );
+    }
+    let _ = writeln!(
+        s,
+        "    typical rater: kappa_q {}, spearman {}; ordinal alpha among raters {}",
+        num(h.mean_kappa_quadratic),
+        num(h.mean_spearman),
+        num(h.alpha_ordinal)
+    );
+    if let Some(n) = &h.note {
+        let _ = writeln!(s, "    note: {n}");
+    }
+    card(s, c);
+    calibration(s, c);
+    for n in c.variants.iter().flat_map(|v| v.notes.iter().map(move |n| (v, n))) {
+        let _ = writeln!(s, "  note: {}: {}", n.0.variant, n.1);
+    }
+    for n in &c.notes {
+        let _ = writeln!(s, "  note: {n}");
+    }
+}
+
+fn card(s: &mut String, c: &CriterionReport) {
+    let t = &c.trust;
+    let _ = writeln!(
+        s,
+        "\n  trust card for `{}`: can `{}` stand in for a rater? {}",
+        c.criterion,
+        t.variant,
+        t.verdict.as_str().to_uppercase()
+    );
+    let _ = writeln!(
+        s,
+        "    judge kappa_q {} vs typical rater {} on {} items (judge against the raters' own leave-one-out references: {})",
+        num(t.judge_kappa_quadratic),
+        num(t.human_kappa_quadratic),
+        t.n_items,
+        num(t.judge_kappa_matched)
+    );
+    let _ = writeln!(s, "    why: {}", t.reason);
+    if let Some(a) = &t.advice {
+        let _ = writeln!(s, "    sample: {}", a.message);
+    }
+    for w in &t.warnings {
+        let _ = writeln!(s, "    warning: {w}");
+    }
+    if t.verdict == Verdict::Yes && t.thin_evidence {
+        let _ = writeln!(
+            s,
+            "    caution: this yes rests on thin evidence; treat it as provisional until more items are labelled"
+        );
+    }
+}
+
+fn calibration(s: &mut String, c: &CriterionReport) {
+    if c.calibration.is_empty() {
+        return;
+    }
+    let _ = writeln!(s, "\n  calibration (top probability vs argmax = consensus; 10 bins)");
+    let _ = writeln!(
+        s,
+        "    {:<20} {:>5} {:>6} {:>9} {:>8} {:>6} {:>6} {:>8} {:>6} {:>14}",
+        "variant", "acc", "conf", "ECE width", "ECE mass", "MCE", "Brier", "log loss", "T", "held-out ECE"
+    );
+    for k in &c.calibration {
+        let (t, after) = k.temperature.as_ref().map_or(("n/a".into(), "n/a".into()), |t| {
+            let cv = &t.cross_validated;
+            (
+                format!("{:.2}", t.fitted_on_all),
+                format!("{:.3} -> {:.3}", cv.ece_before, cv.ece_after),
+            )
+        });
+        let _ = writeln!(
+            s,
+            "    {:<20} {:>5.3} {:>6.3} {:>9.3} {:>8.3} {:>6.3} {:>6.3} {:>8.3} {:>6} {:>14}",
+            k.variant,
+            k.accuracy,
+            k.mean_confidence,
+            k.ece_equal_width,
+            k.ece_equal_mass,
+            k.mce_equal_width,
+            k.brier,
+            k.log_loss,
+            t,
+            after
+        );
+        if let Some(n) = &k.note {
+            let _ = writeln!(s, "      note: {n}");
+        }
+    }
+    if let Some(k) = c.calibration.first() {
+        let _ = writeln!(s, "    reliability of `{}` (confidence bin: items, accuracy, mean confidence)", k.variant);
+        for b in &k.reliability {
+            let _ = writeln!(
+                s,
+                "      ({:.1}, {:.1}]: {:>4}, {:.3}, {:.3}",
+                b.lo, b.hi, b.count, b.accuracy, b.mean_confidence
+            );
+        }
+    }
+}
+
+fn pairs(s: &mut String, p: &PairVetReport) {
+    let _ = writeln!(
+        s,
+        "\n== pairwise verdicts against the human majority ({} compared pairs, {} resamples, {:.0}% intervals)",
+        p.human_pairs,
+        p.resamples,
+        p.level * 100.0
+    );
+    for c in &p.criteria {
+        let _ = writeln!(
+            s,
+            "\n  `{}`: {} pairs judged in both orders ({} human ties); left out: {} judged in one order, {} without human preference",
+            c.criterion, c.n_pairs, c.human_ties, c.one_order_only, c.without_human
+        );
+        let _ = writeln!(s, "    position: {}", c.position_bias.verdict_line);
+        let _ = writeln!(s, "    {:<14} {:>8} {:<18} {:>7} {:<18}", "rule", "accuracy", "95% CI", "kappa", "95% CI");
+        for m in &c.methods {
+            let _ = writeln!(
+                s,
+                "    {:<14} {:>8.3} {:<18} {:>7} {:<18}",
+                m.method,
+                m.accuracy,
+                ci(m.accuracy_ci.as_ref()),
+                num(m.kappa),
+                ci(m.kappa_ci.as_ref())
+            );
+        }
+    }
+}

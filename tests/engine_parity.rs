@@ -1,0 +1,363 @@
+//! Engine stage, decoder: checks the GGUF decoder against candle-transformers' own
+//! implementations of the same architectures (reference), against itself (forked
+//! caches, repeated runs), and its error paths. Input: synthetic tiny GGUF files and
+//! the real judge models. Never asserts on speed.
+
+mod common;
+
+use std::fs::File;
+use std::io::BufReader;
+use std::path::Path;
+
+use assize::engine::decoder::{log_softmax, Activation, Decoder, LoadOptions, Numerics};
+use assize::engine::linear::MatmulPolicy;
+use assize::engine::{EngineError, GgufFile};
+use candle_core::{Device, Tensor};
+use candle_transformers::models::{quantized_gemma3, quantized_llama, quantized_qwen2};
+use common::tiny_gguf::{Tiny, VOCAB};
+
+const QWEN_1_5B: &str = "qwen2.5-coder-1.5b-instruct-q4_k_m.gguf";
+const QWEN_0_5B: &str = "qwen2.5-coder-0.5b-instruct-q5_0.gguf";
+const GEMMA_270M: &str = "gemma-3-270m-q4_k_m.gguf";
+
+/// Numerics of candle-transformers' stock models: the same `QMatMul` kernels, and for
+/// Gemma 3 the SiLU its quantized_gemma3 uses (the published model uses GELU).
+fn reference_numerics(arch: &str) -> Numerics {
+    Numerics {
+        matmul: MatmulPolicy::Reference,
+        activation: (arch == "gemma3").then_some(Activation::Silu),
+    }
+}
+
+/// Next-token logits of candle-transformers' stock model on a fresh cache.
+fn stock_logits(path: &Path, tokens: &[u32]) -> Vec<f32> {
+    let dev = Device::Cpu;
+    let mut reader = BufReader::new(File::open(path).expect("open model"));
+    let content = candle_core::quantized::gguf_file::Content::read(&mut reader).expect("header");
+    let arch = content.metadata["general.architecture"].to_string().expect("arch").clone();
+    let input = Tensor::new(tokens, &dev).and_then(|t| t.unsqueeze(0)).expect("input");
+    let out = match arch.as_str() {
+        "qwen2" => quantized_qwen2::ModelWeights::from_gguf(content, &mut reader, &dev)
+            .and_then(|mut m| m.forward(&input, 0)),
+        "llama" => quantized_llama::ModelWeights::from_gguf(content, &mut reader, &dev)
+            .and_then(|mut m| m.forward(&input, 0)),
+        "gemma3" => quantized_gemma3::ModelWeights::from_gguf(content, &mut reader, &dev)
+            .and_then(|mut m| m.forward(&input, 0)),
+        other => panic!("no stock model for {other}"),
+    };
+    out.and_then(|t| t.flatten_all()).and_then(|t| t.to_vec1::<f32>()).expect("stock forward")
+}
+
+fn max_abs_diff(a: &[f32], b: &[f32]) -> f32 {
+    assert_eq!(a.len(), b.len(), "logit vectors differ in length");
+    a.iter().zip(b).map(|(x, y)| (x - y).abs()).fold(0.0, f32::max)
+}
+
+fn load(path: &Path, numerics: Numerics, cap: Option<usize>) -> Decoder {
+    let gguf = GgufFile::open(path).expect("open gguf");
+    let opts = LoadOptions { threads: 2, context_cap: cap };
+    Decoder::load_with(&gguf, &opts, numerics).expect("load decoder")
+}
+
+/// Max |Δ log p| over the full vocabulary between our decoder and the stock model, per prompt.
+fn parity(path: &Path, prompts: &[Vec<u32>], numerics: Numerics) -> Vec<f32> {
+    let reference: Vec<Vec<f32>> =
+        prompts.iter().map(|p| log_softmax(&stock_logits(path, p))).collect();
+    let dec = load(path, numerics, None);
+    prompts
+        .iter()
+        .zip(&reference)
+        .map(|(p, r)| {
+            let mut cache = dec.new_cache();
+            let ours = log_softmax(&dec.forward_last(&mut cache, p).expect("forward"));
+            max_abs_diff(&ours, r)
+        })
+        .collect()
+}
+
+/// A fixed pseudo-random prompt of `n` ids below `vocab`, from `seed`.
+fn prompt(seed: u64, n: usize, vocab: usize) -> Vec<u32> {
+    let mut s = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
+    (0..n)
+        .map(|_| {
+            s ^= s << 13;
+            s ^= s >> 7;
+            s ^= s << 17;
+            (s % vocab as u64) as u32
+        })
+        .collect()
+}
+
+/// Ids of exact vocabulary strings (`tokenizer.ggml.tokens`); panics when one is absent.
+fn vocab_ids(gguf: &GgufFile, words: &[&str]) -> Vec<u32> {
+    let Some(candle_core::quantized::gguf_file::Value::Array(tokens)) =
+        gguf.value("tokenizer.ggml.tokens")
+    else {
+        panic!("model has no vocabulary");
+    };
+    words
+        .iter()
+        .map(|w| {
+            tokens
+                .iter()
+                .position(|t| t.to_string().map(|s| s == w).unwrap_or(false))
+                .unwrap_or_else(|| panic!("token `{w}` not in vocabulary")) as u32
+        })
+        .collect()
+}
+
+fn tiny_prompts() -> Vec<Vec<u32>> {
+    vec![prompt(1, 7, VOCAB), prompt(2, 3, VOCAB), vec![5], prompt(3, 8, VOCAB)]
+}
+
+fn tiny_parity(arch: &str) {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let path = Tiny::new(arch).write(dir.path());
+    let diffs = parity(&path, &tiny_prompts(), reference_numerics(arch));
+    assert!(diffs.iter().all(|d| *d < 1e-3), "{arch}: max |Δ log p| per prompt {diffs:?}");
+    let fast = Numerics { matmul: MatmulPolicy::Fast, ..reference_numerics(arch) };
+    let diffs = parity(&path, &tiny_prompts(), fast);
+    eprintln!("{arch} tiny, fast kernels: max |Δ log p| per prompt {diffs:?}");
+    assert!(diffs.iter().all(|d| *d < 0.25), "{arch} fast: {diffs:?}");
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_llama::ModelWeights` on the same
+/// tiny file (interleaved RoPE, output tied to the embedding table).
+#[test]
+fn tiny_llama_matches_candle_quantized_llama() {
+    tiny_parity("llama");
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_qwen2::ModelWeights` on the same
+/// tiny file (q/k/v biases, separate output projection).
+#[test]
+fn tiny_qwen2_matches_candle_quantized_qwen2() {
+    tiny_parity("qwen2");
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_gemma3::ModelWeights` on the same
+/// tiny file (one local layer, one global layer, prompts within the window), run with
+/// that model's SiLU activation.
+#[test]
+fn tiny_gemma3_matches_candle_quantized_gemma3() {
+    tiny_parity("gemma3");
+}
+
+/// Shapes read from the metadata; logits have one entry per vocabulary row.
+#[test]
+fn tiny_models_load_with_expected_shapes() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    for (arch, hidden, heads, kv, hd, tied) in
+        [("llama", 256, 4, 2, 64, true), ("qwen2", 256, 4, 2, 64, false), ("gemma3", 320, 2, 1, 128, true)]
+    {
+        let dec = load(&Tiny::new(arch).write(dir.path()), Numerics::default(), None);
+        let c = dec.config();
+        assert_eq!(
+            (c.arch.as_str(), c.layers, c.hidden, c.heads, c.kv_heads, c.head_dim, c.vocab),
+            (arch, 2, hidden, heads, kv, hd, VOCAB)
+        );
+        assert_eq!((c.context_length, c.tied_output), (64, tied));
+        assert_eq!(c.sliding_window, (arch == "gemma3").then_some(8));
+        let mut cache = dec.new_cache();
+        let rows = dec.forward_all(&mut cache, &[1, 2, 3]).expect("forward");
+        assert_eq!(rows.len(), 3);
+        assert!(rows.iter().all(|r| r.len() == VOCAB && r.iter().all(|v| v.is_finite())));
+        assert_eq!(cache.len(), 3);
+    }
+}
+
+/// A file whose `general.architecture` is not implemented is refused by name.
+#[test]
+fn unsupported_architecture_is_rejected() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let path = Tiny::new("mamba").write(dir.path());
+    let gguf = GgufFile::open(&path).expect("open");
+    match Decoder::load(&gguf, &LoadOptions::default()) {
+        Err(EngineError::UnsupportedArch { arch, .. }) => assert_eq!(arch, "mamba"),
+        other => panic!("expected UnsupportedArch, got {:?}", other.err()),
+    }
+}
+
+/// Appending past min(context_length, context_cap) fails and leaves the cache as it was.
+#[test]
+fn appending_past_context_limit_is_context_overflow() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let path = Tiny::new("qwen2").write(dir.path());
+    for (cap, limit) in [(None, 64), (Some(10), 10), (Some(1000), 64)] {
+        let dec = load(&path, Numerics::default(), cap);
+        let mut cache = dec.new_cache();
+        dec.forward_last(&mut cache, &prompt(4, limit - 1, VOCAB)).expect("fits");
+        let err = dec.forward_last(&mut cache, &[1, 2]).expect_err("overflow");
+        match err {
+            EngineError::ContextOverflow { item, tokens, limit: l } => {
+                assert_eq!((item.as_str(), tokens, l), ("prompt", limit + 1, limit))
+            }
+            other => panic!("expected ContextOverflow, got {other:?}"),
+        }
+        assert_eq!(cache.len(), limit - 1);
+        dec.forward_last(&mut cache, &[1]).expect("the last slot still fits");
+    }
+}
+
+/// Positions further back than the window do not reach a local layer: with only local
+/// layers, changing the token `window` places back leaves the last logits unchanged,
+/// changing the one `window - 1` back does not (window counts the current token, as in
+/// Hugging Face's Gemma 3 and llama.cpp).
+#[test]
+fn sliding_window_hides_tokens_beyond_the_window() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = Tiny { sliding_window_type: 100, layers: 1, ..Tiny::new("gemma3") };
+    let dec = load(&spec.write(dir.path()), Numerics::default(), None);
+    let base = prompt(5, 12, VOCAB);
+    let run = |p: &[u32]| dec.forward_last(&mut dec.new_cache(), p).expect("forward");
+    let last = base.len() - 1;
+    let mut outside = base.clone();
+    outside[last - 8] = (base[last - 8] + 1) % VOCAB as u32;
+    let mut inside = base.clone();
+    inside[last - 7] = (base[last - 7] + 1) % VOCAB as u32;
+    assert_eq!(run(&base), run(&outside));
+    assert!(max_abs_diff(&run(&base), &run(&inside)) > 1e-4);
+}
+
+fn fork_matches_recompute(dec: &Decoder, prefix: &[u32], suffixes: &[Vec<u32>]) {
+    let mut shared = dec.new_cache();
+    dec.forward_last(&mut shared, prefix).expect("prefix");
+    for s in suffixes {
+        let mut fork = shared.clone();
+        let forked = dec.forward_all(&mut fork, s).expect("suffix");
+        let full: Vec<u32> = prefix.iter().chain(s).copied().collect();
+        let mut fresh = dec.new_cache();
+        let all = dec.forward_all(&mut fresh, &full).expect("full");
+        for (a, b) in forked.iter().zip(&all[prefix.len()..]) {
+            let d = max_abs_diff(&log_softmax(a), &log_softmax(b));
+            assert!(d < 1e-4, "fork differs from recompute by {d}");
+        }
+        assert_eq!(fork.len(), full.len());
+    }
+    assert_eq!(shared.len(), prefix.len(), "forks must not change the shared cache");
+}
+
+/// Forking after prefix P and running S1, S2 equals a fresh pass over P+S1, P+S2; a
+/// truncated cache behaves as if the dropped tokens had never been run.
+#[test]
+fn tiny_forked_prefix_equals_full_recompute() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    for arch in ["llama", "qwen2", "gemma3"] {
+        let dec = load(&Tiny::new(arch).write(dir.path()), Numerics::default(), None);
+        fork_matches_recompute(&dec, &prompt(6, 9, VOCAB), &[prompt(7, 5, VOCAB), vec![3]]);
+        let mut cache = dec.new_cache();
+        dec.forward_last(&mut cache, &prompt(8, 6, VOCAB)).expect("run");
+        cache.truncate(2);
+        let again = dec.forward_last(&mut cache, &[9, 10]).expect("rerun");
+        let p = prompt(8, 6, VOCAB);
+        let fresh = dec.forward_last(&mut dec.new_cache(), &[p[0], p[1], 9, 10]).expect("fresh");
+        assert!(max_abs_diff(&again, &fresh) < 1e-4);
+    }
+}
+
+/// log-softmax of [1, 2, 3]: log(e + e² + e³) = 3.4076059644443806, so the values are
+/// [-2.4076059644, -1.4076059644, -0.4076059644] (direct computation).
+#[test]
+fn log_softmax_matches_direct_computation() {
+    let got = log_softmax(&[1.0, 2.0, 3.0]);
+    let want = [-2.407_606, -1.407_606, -0.407_606];
+    assert!(got.iter().zip(want).all(|(g, w)| (g - w).abs() < 1e-6), "{got:?}");
+    let big = log_softmax(&[1000.0, 1000.0]);
+    assert!(big.iter().all(|v| (v + std::f32::consts::LN_2).abs() < 1e-6), "{big:?}");
+}
+
+fn real_prompts(gguf: &GgufFile, vocab: usize) -> Vec<Vec<u32>> {
+    let words: &[&str] = if gguf.arch().expect("arch") == "gemma3" {
+        &["<bos>", "The", "▁capital", "▁of", "▁France", "▁is"]
+    } else {
+        &["The", "Ġcapital", "Ġof", "ĠFrance", "Ġis"]
+    };
+    let sentence = vocab_ids(gguf, words);
+    let long: Vec<u32> = sentence.iter().cycle().take(90).copied().collect();
+    vec![sentence, prompt(11, 40, vocab.min(150_000)), long]
+}
+
+fn real_parity(file: &str) {
+    let path = common::real_model(file);
+    let gguf = GgufFile::open(&path).expect("open");
+    let arch = gguf.arch().expect("arch");
+    let prompts = real_prompts(&gguf, 150_000);
+    let diffs = parity(&path, &prompts, reference_numerics(&arch));
+    eprintln!("{file}: reference kernels, max |Δ log p| per prompt {diffs:?}");
+    assert!(diffs.iter().all(|d| *d < 1e-3), "{file}: {diffs:?}");
+    let fast = Numerics { matmul: MatmulPolicy::Fast, ..reference_numerics(&arch) };
+    let diffs = parity(&path, &prompts, fast);
+    eprintln!("{file}: fast kernels, max |Δ log p| per prompt {diffs:?}");
+    assert!(diffs.iter().all(|d| *d < 0.1), "{file} fast: {diffs:?}");
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_qwen2::ModelWeights` on the same
+/// file, three prompts, full-vocabulary log-softmax within 1e-3.
+#[test]
+fn qwen2_1_5b_matches_candle_quantized_qwen2() {
+    real_parity(QWEN_1_5B);
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_qwen2::ModelWeights` (Q5_0 file).
+#[test]
+fn qwen2_0_5b_matches_candle_quantized_qwen2() {
+    real_parity(QWEN_0_5B);
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_gemma3::ModelWeights`, with its SiLU.
+#[test]
+fn gemma3_270m_matches_candle_quantized_gemma3() {
+    real_parity(GEMMA_270M);
+}
+
+/// Gemma 3 is trained with GELU (tanh approximation; Gemma Team 2025, model config
+/// `gelu_pytorch_tanh`): on an English counting sequence it must predict the next words
+/// better (lower mean negative log-likelihood) than the same weights run with SiLU.
+#[test]
+fn gemma3_gelu_predicts_text_better_than_silu() {
+    let path = common::real_model(GEMMA_270M);
+    let gguf = GgufFile::open(&path).expect("open");
+    let words = ["<bos>", "one", ",", "▁two", ",", "▁three", ",", "▁four", ",", "▁five", ",", "▁six"];
+    let ids = vocab_ids(&gguf, &words);
+    let nll = |act: Activation| {
+        let n = Numerics { matmul: MatmulPolicy::Fast, activation: Some(act) };
+        let dec = load(&path, n, None);
+        let rows = dec.forward_all(&mut dec.new_cache(), &ids).expect("forward");
+        let total: f32 = rows[..ids.len() - 1]
+            .iter()
+            .zip(&ids[1..])
+            .map(|(r, &t)| -log_softmax(r)[t as usize])
+            .sum();
+        total / (ids.len() - 1) as f32
+    };
+    let (gelu, silu) = (nll(Activation::GeluTanh), nll(Activation::Silu));
+    eprintln!("gemma3 270m mean NLL: gelu {gelu}, silu {silu}");
+    assert!(gelu < silu, "gelu {gelu} vs silu {silu}");
+    assert!(gelu < 2.0, "a counting sequence should be easy: mean NLL {gelu}");
+}
+
+/// Same inputs and thread count give bit-identical logits, for a prompt and a step.
+#[test]
+fn repeated_runs_are_bit_identical() {
+    let path = common::real_model(QWEN_0_5B);
+    let dec = load(&path, Numerics::default(), None);
+    let p = prompt(12, 64, 150_000);
+    let run = || {
+        let mut c = dec.new_cache();
+        let a = dec.forward_last(&mut c, &p).expect("prompt");
+        let b = dec.forward_last(&mut c, &[42]).expect("step");
+        (a, b)
+    };
+    let (first, second) = (run(), run());
+    assert!(first.0.iter().zip(&second.0).all(|(x, y)| x.to_bits() == y.to_bits()));
+    assert!(first.1.iter().zip(&second.1).all(|(x, y)| x.to_bits() == y.to_bits()));
+}
+
+/// Forked-prefix equality on the real models (prefix 40 tokens, suffixes 12 and 1).
+#[test]
+fn real_forked_prefix_equals_full_recompute() {
+    for file in [QWEN_0_5B, GEMMA_270M] {
+        let dec = load(&common::real_model(file), Numerics::default(), None);
+        fork_matches_recompute(&dec, &prompt(13, 40, 150_000), &[prompt(14, 12, 150_000), vec![77]]);
+    }
+}

@@ -1,0 +1,136 @@
+//! Orchestration tests of `assize grade` with a scripted judge that replays fixed
+//! label distributions. They check batching, the probability-weighted score, flags,
+//! resume after a crash and the run manifest. The real-model tests are in
+//! `tests/real_judge.rs`; these do not replace them.
+
+use std::path::PathBuf;
+
+use assize::cli::common::ModelArgs;
+use assize::cli::grade::{grade_run, prepare, GradeArgs};
+use assize::cli::OutputArgs;
+use assize::judge::scripted::ScriptedJudge;
+use assize::judge::GradeRecord;
+use assize::store::read_records;
+
+fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+fn args(run_dir: PathBuf) -> GradeArgs {
+    GradeArgs {
+        answers: root().join("demo-data/answers.jsonl"),
+        rubric: root().join("judge-templates/rubrics/quick.toml"),
+        criteria: vec![],
+        model: ModelArgs {
+            model: "scripted".into(),
+            threads: 1,
+            context: None,
+        },
+        reasoning: false,
+        reasoning_tokens: 32,
+        anchors: None,
+        anchor_count: 3,
+        low_mass: 0.5,
+        seed: 7,
+        run_dir: Some(run_dir),
+        limit: Some(6),
+        templates: None,
+        output: OutputArgs {
+            json: true,
+            quiet: true,
+        },
+    }
+}
+
+/// METHODS.md section 7 (Liu et al. 2023 form-filling score, numpy value): logprobs
+/// {1: -4.0, 2: -2.5, 3: -1.2, 4: -0.7, 5: -3.0} give captured mass
+/// 0.9479672215841085, weighted score 3.5036494440471637 and argmax 4.
+#[test]
+fn expected_score_of_a_fixed_distribution_equals_the_hand_value() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let a = args(dir.path().join("run"));
+    let p = prepare(&a).expect("inputs");
+    let judge = ScriptedJudge {
+        rules: vec![("Criterion: Correctness".into(), vec![-4.0, -2.5, -1.2, -0.7, -3.0])],
+        ..Default::default()
+    };
+    let report = grade_run(&a, &p, &judge).expect("run");
+    assert_eq!(report.records, 12);
+    let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
+    let c = recs.iter().find(|r| r.criterion == "correctness").expect("a correctness record");
+    assert!((c.expected - 3.5036494440471637).abs() < 1e-12, "{}", c.expected);
+    assert!((c.captured_mass - 0.9479672215841085).abs() < 1e-12);
+    assert_eq!(c.argmax, "4");
+    assert!(!c.low_mass);
+    // Every item's criteria went to the judge in one call (shared prefix).
+    assert_eq!(*judge.calls.borrow(), vec![2; 6]);
+}
+
+/// A judge that puts little mass on the scale is flagged, never dropped.
+#[test]
+fn low_captured_mass_is_flagged_not_dropped() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let a = args(dir.path().join("run"));
+    let p = prepare(&a).expect("inputs");
+    let judge = ScriptedJudge {
+        rules: vec![("Criterion: Helpfulness".into(), vec![-6.0, -6.0, -5.0, -6.0, -6.0])],
+        ..Default::default()
+    };
+    let report = grade_run(&a, &p, &judge).expect("run");
+    assert_eq!(report.records, 12);
+    assert_eq!(report.low_mass.len(), 6);
+    assert!(report.low_mass.iter().all(|k| k.ends_with("/helpfulness")));
+}
+
+/// A crash in flight loses only that item; the same command then finishes the run
+/// and the results equal an uninterrupted run's.
+#[test]
+fn resumed_run_equals_uninterrupted_run() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let script = || vec![
+        ("Criterion: Correctness".to_string(), vec![-3.0, -2.0, -1.0, -0.5, -2.5]),
+        ("Criterion: Helpfulness".to_string(), vec![-0.2, -2.0, -3.0, -4.0, -5.0]),
+    ];
+    let full = args(dir.path().join("full"));
+    let p = prepare(&full).expect("inputs");
+    grade_run(&full, &p, &ScriptedJudge { rules: script(), ..Default::default() }).expect("run");
+
+    let part = args(dir.path().join("part"));
+    let crashing = ScriptedJudge { rules: script(), ..Default::default() };
+    crashing
+        .fail_on
+        .borrow_mut()
+        .insert("q02/assistant-v1".into(), "simulated crash".into());
+    let first = grade_run(&part, &p, &crashing).expect("run with one failure");
+    assert_eq!(first.failed.len(), 1);
+    assert_eq!(first.records, 10);
+    // A torn line from a kill -9 in the middle of a write is dropped and redone.
+    let path = dir.path().join("part/grades.jsonl");
+    let mut text = std::fs::read_to_string(&path).expect("read");
+    text.push_str("{\"question_id\":\"q0");
+    std::fs::write(&path, text).expect("write");
+    let healthy = ScriptedJudge { rules: script(), ..Default::default() };
+    let second = grade_run(&part, &p, &healthy).expect("resume");
+    assert_eq!(second.computed, 2, "only the failed item is graded again");
+    assert_eq!(*healthy.calls.borrow(), vec![2]);
+
+    let mut a: Vec<GradeRecord> = read_records(&dir.path().join("full/grades.jsonl")).expect("read");
+    let mut b: Vec<GradeRecord> = read_records(&path).expect("read");
+    a.sort_by_key(GradeRecord::key);
+    b.sort_by_key(GradeRecord::key);
+    assert_eq!(a, b);
+}
+
+/// The same run folder refuses a different rubric instead of mixing results.
+#[test]
+fn run_folder_refuses_a_different_rubric() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let a = args(dir.path().join("run"));
+    let p = prepare(&a).expect("inputs");
+    grade_run(&a, &p, &ScriptedJudge::default()).expect("run");
+    let mut b = args(dir.path().join("run"));
+    b.rubric = root().join("judge-templates/rubrics/support.toml");
+    let pb = prepare(&b).expect("inputs");
+    let err = grade_run(&b, &pb, &ScriptedJudge::default()).expect_err("mismatch");
+    assert!(format!("{err:#}").contains("rubric changed"), "{err:#}");
+}
