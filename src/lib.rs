@@ -14,3 +14,4 @@ pub mod probes;
 pub mod rubric;
 pub mod stats;
 pub mod store;
+pub mod vet;

@@ -66,6 +66,9 @@ fn fix_for(err: &anyhow::Error) -> Option<String> {
         if let Some(fix) = crate::rubric::fix_for(cause) {
             return Some(fix);
         }
+        if let Some(fix) = crate::vet::fix_for(cause) {
+            return Some(fix);
+        }
     }
     None
 }

@@ -13,6 +13,9 @@ pub mod compare;
 pub mod errors;
 pub mod grade;
 pub mod model;
+pub mod overlap;
+pub mod rubric;
+pub mod vet;
 
 pub use errors::{exit_code_for, render_error, GateFailed};
 
@@ -39,6 +42,13 @@ pub enum Command {
     Grade(grade::GradeArgs),
     /// Compare systems pairwise, both answer orders, with bias probes and a ranking
     Compare(compare::CompareArgs),
+    /// Check rubric files and show the exact prompt the judge will see
+    /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
+    Vet(vet::VetArgs),
+    /// Reference-based text metrics (ROUGE, BLEU, chrF, edit distance, token F1) per answer and system
+    Overlap(overlap::OverlapArgs),
+    #[command(subcommand)]
+    Rubric(rubric::RubricCommand),
 }
 
 /// Options shared by every command that prints results.
@@ -58,6 +68,9 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Model(cmd) => model::run(cmd),
         Command::Grade(args) => grade::run(args),
         Command::Compare(args) => compare::run(args),
+        Command::Rubric(cmd) => rubric::run(cmd),
+        Command::Vet(args) => vet::run(args),
+        Command::Overlap(args) => overlap::run(args),
     }
 }
 

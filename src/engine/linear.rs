@@ -29,8 +29,9 @@ use super::EngineError;
 pub enum MatmulPolicy {
     /// Per-tensor choice of the fastest kernel (the default).
     Fast,
-    /// Exactly the kernels candle-transformers' stock models use (`QMatMul` on every
-    /// weight); slower, for parity checks against those models.
+    /// Every weight dequantised to f32 and multiplied in f32: the numerics of
+    /// candle-transformers' stock models with `CANDLE_DEQUANTIZE_ALL=1`. Slow and
+    /// memory-hungry (4 bytes per weight); for parity checks.
     Reference,
 }
 
@@ -103,19 +104,32 @@ impl Linear {
         let (n, k) = qt.shape().dims2()?;
         let dtype = qt.dtype();
         let float = matches!(dtype, GgmlDType::F32 | GgmlDType::F16 | GgmlDType::BF16);
-        let quant = |qt| -> candle_core::Result<Self> {
-            Ok(Linear { quant: Some(QMatMul::from_arc(qt)?), dense: None, k_pad: k, vnni: false, n, k })
-        };
-        if policy == MatmulPolicy::Reference || float || packed_kernel(dtype, n, k) {
-            return quant(qt);
+        if policy == MatmulPolicy::Reference || float {
+            return Self::dense_f32(&qt);
+        }
+        if packed_kernel(dtype, n, k) {
+            return Ok(Self::quantised(QMatMul::QTensor(qt), n, k));
         }
         if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0) && n % 16 == 0 {
             let (q8, k_pad) = requantise_q8_0(&qt, n, k)?;
-            let quant = Some(QMatMul::from_qtensor(q8)?);
+            let quant = Some(QMatMul::QTensor(Arc::new(q8)));
             return Ok(Linear { quant, dense: None, k_pad, vnni: false, n, k });
         }
         let dense = Some(qt.dequantize_f16(&Device::Cpu)?);
-        Ok(Linear { dense, ..quant(qt)? })
+        Ok(Linear { dense, ..Self::quantised(QMatMul::QTensor(qt), n, k) })
+    }
+
+    /// The enum variants are built directly, not through `QMatMul::from_arc`, so that
+    /// candle's `CANDLE_DEQUANTIZE_ALL` variables cannot change the kernels chosen here.
+    fn quantised(q: QMatMul, n: usize, k: usize) -> Self {
+        Linear { quant: Some(q), dense: None, k_pad: k, vnni: false, n, k }
+    }
+
+    /// f32 dequantised weights and f32 matrix products: the numerics of
+    /// `MatmulPolicy::Reference`.
+    fn dense_f32(qt: &QTensor) -> candle_core::Result<Self> {
+        let (n, k) = qt.shape().dims2()?;
+        Ok(Self::quantised(QMatMul::Tensor(qt.dequantize(&Device::Cpu)?), n, k))
     }
 
     /// Kernel for the output projection, which shares its table with the embedding and
@@ -130,8 +144,10 @@ impl Linear {
             && q8_0_vnni::available();
         #[cfg(not(target_arch = "x86_64"))]
         let vnni = false;
-        let quant = Some(QMatMul::from_arc(qt)?);
-        Ok(Linear { quant, dense: None, k_pad: k, vnni, n, k })
+        if policy == MatmulPolicy::Reference {
+            return Self::dense_f32(&qt);
+        }
+        Ok(Linear { vnni, ..Self::quantised(QMatMul::QTensor(qt), n, k) })
     }
 
     /// Bytes held by this weight's own copies (candle's packed tiles not counted).

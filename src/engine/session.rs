@@ -1,8 +1,13 @@
 //! A loaded judge: tokenizer, chat format and decoder behind one handle, with the
 //! operations the judge stage needs. Input: chat messages and candidate label texts.
-//! Output: log-probabilities of each label at the slot, and generated text. A warm
-//! KV cache is kept between calls so the longest common prefix with the previous
-//! request (system prompt, shared item text) is never computed twice. Never reads
+//! Output: log-probabilities of each label at the slot, and generated text.
+//!
+//! Prefix reuse is canonical, so results never depend on what ran before: the chat
+//! preamble (template text and system message up to the user's content) is computed
+//! once per system message and forked; the part shared by all requests of one call
+//! (an item's instructions, question, context and answer) is computed once from that
+//! fork and forked again for each request. The same call therefore runs the same
+//! chunks in any run, resumed or not, and gives bit-identical results. Never reads
 //! files other than the model and never decides what a score means.
 
 use std::path::{Path, PathBuf};
@@ -16,8 +21,9 @@ use super::decoder::{log_softmax, Decoder, KvCache, LoadOptions};
 use super::tokenizer::JudgeTokenizer;
 use super::{gguf, EngineError, GgufFile};
 
-/// The cache of the last request: its tokens, its KV state and its last logits.
-struct Warm {
+/// A computed prefix: its tokens, its KV state and the logits at its last position.
+#[derive(Clone)]
+struct Checkpoint {
     tokens: Vec<u32>,
     cache: KvCache,
     logits: Vec<f32>,
@@ -48,7 +54,7 @@ pub struct JudgeModel {
     pub chat: ChatFormat,
     /// The decoder.
     pub decoder: Decoder,
-    warm: Mutex<Option<Warm>>,
+    preambles: Mutex<Vec<Checkpoint>>,
     reuse: bool,
     counters: Mutex<WorkCounters>,
 }
@@ -93,7 +99,7 @@ impl JudgeModel {
             tokenizer,
             chat,
             decoder,
-            warm: Mutex::new(None),
+            preambles: Mutex::new(Vec::new()),
             reuse: true,
             counters: Mutex::new(WorkCounters::default()),
         })
@@ -103,7 +109,7 @@ impl JudgeModel {
     /// used by the benchmark that measures what reuse buys).
     pub fn set_prefix_reuse(&mut self, on: bool) {
         self.reuse = on;
-        *self.warm.lock().expect("warm cache lock") = None;
+        self.preambles.lock().expect("preamble lock").clear();
     }
 
     /// Work done so far.
@@ -181,41 +187,73 @@ impl JudgeModel {
         Ok(())
     }
 
-    /// Run `tokens` from the warm cache (reusing the common prefix) and return a
-    /// cache holding exactly `tokens` plus the logits at its last position.
+    /// The chat preamble of a system message: the tokens every prompt with this
+    /// system message starts with, up to the user's content.
+    fn preamble_tokens(&self, system: &str) -> Result<Vec<u32>, EngineError> {
+        let a = self.encode_chat(system, "a", "")?;
+        let b = self.encode_chat(system, "b", "")?;
+        Ok(a[..lcp(&a, &b)].to_vec())
+    }
+
+    /// Compute (or fetch) the preamble checkpoint of `system`.
+    pub fn warm_preamble(&self, system: &str) -> Result<(), EngineError> {
+        if !self.reuse {
+            return Ok(());
+        }
+        let tokens = self.preamble_tokens(system)?;
+        if tokens.is_empty() {
+            return Ok(());
+        }
+        let mut pre = self.preambles.lock().expect("preamble lock");
+        if pre.iter().any(|c| c.tokens == tokens) {
+            return Ok(());
+        }
+        let mut cache = self.decoder.new_cache();
+        let logits = self.decoder.forward_last(&mut cache, &tokens)?;
+        self.count(tokens.len() as u64, 0, 0);
+        pre.push(Checkpoint {
+            tokens,
+            cache,
+            logits,
+        });
+        Ok(())
+    }
+
+    /// A cache holding exactly `tokens` and the logits at its last position: forked
+    /// from the longest preamble checkpoint that prefixes `tokens` (when reuse is on),
+    /// the rest computed in one chunk.
     fn prefill(&self, item: &str, tokens: &[u32]) -> Result<(KvCache, Vec<f32>), EngineError> {
         self.check_len(item, tokens.len())?;
         if tokens.is_empty() {
             return Err(EngineError::Invalid(format!("{item}: empty prompt")));
         }
-        let mut warm = self.warm.lock().expect("warm cache lock");
-        let (mut cache, start) = match warm.take() {
-            Some(w) if self.reuse => {
-                let common = lcp(&w.tokens, tokens);
-                if common == tokens.len() && common == w.tokens.len() {
-                    let out = (w.cache.clone(), w.logits.clone());
-                    self.count(0, common as u64, 0);
-                    *warm = Some(w);
-                    return Ok(out);
-                }
-                // Keep at least one token to recompute, for the logits.
-                let keep = common.min(tokens.len() - 1);
-                let mut c = w.cache;
-                c.truncate(keep);
-                (c, keep)
-            }
-            _ => (self.decoder.new_cache(), 0),
+        let start = if self.reuse {
+            let pre = self.preambles.lock().expect("preamble lock");
+            pre.iter()
+                .filter(|c| c.tokens.len() <= tokens.len() && tokens.starts_with(&c.tokens))
+                .max_by_key(|c| c.tokens.len())
+                .cloned()
+        } else {
+            None
         };
-        let logits = self.decoder.forward_last(&mut cache, &tokens[start..])?;
-        self.count((tokens.len() - start) as u64, start as u64, 0);
-        if self.reuse {
-            *warm = Some(Warm {
-                tokens: tokens.to_vec(),
-                cache: cache.clone(),
-                logits: logits.clone(),
-            });
+        match start {
+            Some(c) if c.tokens.len() == tokens.len() => {
+                self.count(0, tokens.len() as u64, 0);
+                Ok((c.cache, c.logits))
+            }
+            Some(c) => {
+                let mut cache = c.cache;
+                let logits = self.decoder.forward_last(&mut cache, &tokens[c.tokens.len()..])?;
+                self.count((tokens.len() - c.tokens.len()) as u64, c.tokens.len() as u64, 0);
+                Ok((cache, logits))
+            }
+            None => {
+                let mut cache = self.decoder.new_cache();
+                let logits = self.decoder.forward_last(&mut cache, tokens)?;
+                self.count(tokens.len() as u64, 0, 0);
+                Ok((cache, logits))
+            }
         }
-        Ok((cache, logits))
     }
 
     fn count(&self, computed: u64, reused: u64, generated: u64) {
@@ -252,6 +290,15 @@ impl JudgeModel {
             .skip(1)
             .fold(first.prefix.len(), |acc, r| acc.min(lcp(&first.prefix, &r.prefix)));
         let shared = shared.max(1).min(first.prefix.len());
+        if !self.reuse {
+            return requests
+                .iter()
+                .map(|r| {
+                    let (cache, logits) = self.prefill(item, &r.prefix)?;
+                    self.score_labels(&cache, &logits, &r.continuations)
+                })
+                .collect();
+        }
         let (base, base_logits) = self.prefill(item, &first.prefix[..shared])?;
         let mut out = Vec::with_capacity(requests.len());
         for r in requests {

@@ -55,6 +55,9 @@ impl Backend for JudgeModel {
         forms: &[Form],
         labels: &[Vec<String>],
     ) -> Result<Vec<Vec<f64>>, EngineError> {
+        if let Some(f) = forms.first() {
+            self.warm_preamble(&f.system)?;
+        }
         let requests = forms
             .iter()
             .zip(labels)
@@ -71,6 +74,7 @@ impl Backend for JudgeModel {
         stops: &[&str],
         seed: u64,
     ) -> Result<String, EngineError> {
+        self.warm_preamble(&form.system)?;
         let prompt = self.encode_chat(&form.system, &form.user, &form.prefill)?;
         Ok(self.generate(item, &prompt, max_tokens, stops, 0.0, seed)?.text)
     }

@@ -163,7 +163,10 @@ pub struct VariantAgreement {
 
 /// Cohen's kappa of two index lists over `k` categories, `None` when undefined.
 pub(crate) fn kappa(a: &[usize], b: &[usize], k: usize, w: Weighting) -> Option<f64> {
-    cohen_kappa(a, b, k, w).ok().map(|e| e.kappa).filter(|v| v.is_finite())
+    cohen_kappa(a, b, k, w)
+        .ok()
+        .map(|e| e.kappa)
+        .filter(|v| v.is_finite())
 }
 
 fn pick<T: Copy>(v: &[T], idx: &[usize]) -> Vec<T> {
@@ -193,9 +196,18 @@ pub(crate) fn agreement(
             None
         }
     };
-    let spearman_v = opt("spearman", spearman(&judge_v, &human_v).map(|c| c.coefficient));
-    let kendall_v = opt("kendall tau-b", kendall_tau_b(&judge_v, &human_v).map(|c| c.coefficient));
-    let pearson_v = opt("pearson", pearson(&judge_v, &human_v).map(|c| c.coefficient));
+    let spearman_v = opt(
+        "spearman",
+        spearman(&judge_v, &human_v).map(|c| c.coefficient),
+    );
+    let kendall_v = opt(
+        "kendall tau-b",
+        kendall_tau_b(&judge_v, &human_v).map(|c| c.coefficient),
+    );
+    let pearson_v = opt(
+        "pearson",
+        pearson(&judge_v, &human_v).map(|c| c.coefficient),
+    );
     let correlation = CorrelationSummary {
         spearman: spearman_v,
         kendall_tau_b: kendall_v,
@@ -211,7 +223,11 @@ pub(crate) fn agreement(
     } else {
         let judge: Vec<usize> = paired
             .iter()
-            .map(|p| p.judge.category.expect("judge variants always carry a category"))
+            .map(|p| {
+                p.judge
+                    .category
+                    .expect("judge variants always carry a category")
+            })
             .collect();
         let stat = |what: &str, source| VetError::Stats {
             what: format!("{what} of `{}` on `{}`", variant.name, lab.key),
@@ -224,7 +240,10 @@ pub(crate) fn agreement(
                 .zip(&human)
                 .map(|(&j, &h)| vec![Some(lab.values[j]), Some(lab.values[h])])
                 .collect();
-            opt(name, krippendorff_alpha(&units, &lab.values, level).map(|a| a.alpha))
+            opt(
+                name,
+                krippendorff_alpha(&units, &lab.values, level).map(|a| a.alpha),
+            )
         };
         let alpha_nominal = alpha(Level::Nominal, "alpha nominal");
         let alpha_ordinal = alpha(Level::Ordinal, "alpha ordinal");
@@ -248,16 +267,23 @@ pub(crate) fn agreement(
                 RaterKappa {
                     rater: name.clone(),
                     n_items: a.len(),
-                    kappa_quadratic: if a.is_empty() { None } else { kappa(&a, &b, k, Weighting::Quadratic) },
+                    kappa_quadratic: if a.is_empty() {
+                        None
+                    } else {
+                        kappa(&a, &b, k, Weighting::Quadratic)
+                    },
                 }
             })
             .collect();
         let boot_kappa = |w| {
-            interval_pair(n, opts, |idx| kappa(&pick(&human, idx), &pick(&judge, idx), k, w))
+            interval_pair(n, opts, |idx| {
+                kappa(&pick(&human, idx), &pick(&judge, idx), k, w)
+            })
         };
         let cat = CategoricalAgreement {
             exact: exact_agreement(&human, &judge).map_err(|e| stat("exact agreement", e))?,
-            within_one: within_one_agreement(&human, &judge).map_err(|e| stat("within-one agreement", e))?,
+            within_one: within_one_agreement(&human, &judge)
+                .map_err(|e| stat("within-one agreement", e))?,
             kappa_unweighted: kappa(&human, &judge, k, Weighting::Unweighted),
             kappa_linear: kappa(&human, &judge, k, Weighting::Linear),
             kappa_quadratic: kappa(&human, &judge, k, Weighting::Quadratic),
@@ -266,7 +292,8 @@ pub(crate) fn agreement(
             alpha_interval,
             gwet_ac1: gwet(Weighting::Unweighted),
             gwet_ac2_quadratic: gwet(Weighting::Quadratic),
-            confusion: confusion_matrix(&human, &judge, k).map_err(|e| stat("confusion matrix", e))?,
+            confusion: confusion_matrix(&human, &judge, k)
+                .map_err(|e| stat("confusion matrix", e))?,
             kappa_quadratic_ci: boot_kappa(Weighting::Quadratic),
             kappa_unweighted_ci: boot_kappa(Weighting::Unweighted),
             per_rater,
@@ -282,7 +309,9 @@ pub(crate) fn agreement(
     };
     if let Some(c) = &categorical {
         if c.kappa_quadratic.is_none() {
-            notes.push("quadratic kappa is undefined: judge and humans both use a single label".into());
+            notes.push(
+                "quadratic kappa is undefined: judge and humans both use a single label".into(),
+            );
         }
     }
     Ok(VariantAgreement {

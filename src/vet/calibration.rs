@@ -77,7 +77,12 @@ pub(crate) fn calibration(
     };
     let probs: Vec<Vec<f64>> = paired
         .iter()
-        .map(|p| p.judge.probs.clone().expect("judge variants carry distributions"))
+        .map(|p| {
+            p.judge
+                .probs
+                .clone()
+                .expect("judge variants carry distributions")
+        })
         .collect();
     let labels: Vec<usize> = paired.iter().map(|p| lab.items[p.item].consensus).collect();
     let (conf, correct) =

@@ -106,7 +106,11 @@ pub(crate) fn trust_card(
     let human: Vec<usize> = paired.iter().map(|p| lab.items[p.item].consensus).collect();
     let judge: Vec<usize> = paired
         .iter()
-        .map(|p| p.judge.category.expect("the primary variant carries categories"))
+        .map(|p| {
+            p.judge
+                .category
+                .expect("the primary variant carries categories")
+        })
         .collect();
     let all: Vec<usize> = paired.iter().map(|p| p.item).collect();
     let judge_k = kappa(&human, &judge, k, Weighting::Quadratic);
@@ -125,7 +129,8 @@ pub(crate) fn trust_card(
             }
         })
         .collect();
-    let judge_matched = (!matched.is_empty()).then(|| matched.iter().sum::<f64>() / matched.len() as f64);
+    let judge_matched =
+        (!matched.is_empty()).then(|| matched.iter().sum::<f64>() / matched.len() as f64);
     let difference = if human_k.is_none() {
         IntervalPair {
             percentile: None,
@@ -189,10 +194,11 @@ pub(crate) fn trust_card(
     .ok();
     if let Some(a) = advice.as_ref().filter(|a| !a.enough) {
         warnings.push(format!(
-            "only {} labelled items on `{}`: {}",
+            "only {} labelled items on `{}`; label about {} for a kappa interval of ±{:.2}",
             paired.len(),
             lab.key,
-            a.message
+            a.recommended,
+            a.target_half_width
         ));
     }
     if let Some(ci) = &difference.percentile {

@@ -111,13 +111,23 @@ pub(crate) fn ceiling(lab: &CriterionLabels) -> HumanCeiling {
     let per_rater: Vec<RaterCeiling> = (0..lab.raters.len())
         .map(|r| {
             let (a, b) = rater_pairs(lab, &loo, r, 0..lab.items.len());
-            let (av, bv): (Vec<f64>, Vec<f64>) =
-                a.iter().zip(&b).map(|(&x, &y)| (lab.values[x], lab.values[y])).unzip();
+            let (av, bv): (Vec<f64>, Vec<f64>) = a
+                .iter()
+                .zip(&b)
+                .map(|(&x, &y)| (lab.values[x], lab.values[y]))
+                .unzip();
             RaterCeiling {
                 rater: lab.raters[r].clone(),
                 n_items: a.len(),
-                kappa_quadratic: if a.is_empty() { None } else { kappa(&a, &b, lab.k(), Weighting::Quadratic) },
-                spearman: spearman(&av, &bv).ok().map(|c| c.coefficient).filter(|v| v.is_finite()),
+                kappa_quadratic: if a.is_empty() {
+                    None
+                } else {
+                    kappa(&a, &b, lab.k(), Weighting::Quadratic)
+                },
+                spearman: spearman(&av, &bv)
+                    .ok()
+                    .map(|c| c.coefficient)
+                    .filter(|v| v.is_finite()),
             }
         })
         .collect();
@@ -126,7 +136,12 @@ pub(crate) fn ceiling(lab: &CriterionLabels) -> HumanCeiling {
     let units: Vec<Vec<Option<f64>>> = lab
         .items
         .iter()
-        .map(|it| it.ratings.iter().map(|x| x.map(|p| lab.values[p])).collect())
+        .map(|it| {
+            it.ratings
+                .iter()
+                .map(|x| x.map(|p| lab.values[p]))
+                .collect()
+        })
         .collect();
     let alpha = krippendorff_alpha(&units, &lab.values, Level::Ordinal)
         .ok()

@@ -19,14 +19,27 @@ fn judges(labels: &[LabelRow], rubric: &Rubric) -> (Vec<GradeRecord>, Vec<GradeR
     let mut judge = Vec::new();
     let mut base = Vec::new();
     for l in labels {
-        let c = rubric.criterion(&l.criterion).expect("demo criteria are in the rubric");
-        let pos = c.scale.index_of(&l.score).expect("demo scores are on the scale");
-        let mut r = record(&l.question_id, &l.criterion, c.scale, &peaked(c.scale.labels().len(), pos, 0.7));
+        let c = rubric
+            .criterion(&l.criterion)
+            .expect("demo criteria are in the rubric");
+        let pos = c
+            .scale
+            .index_of(&l.score)
+            .expect("demo scores are on the scale");
+        let mut r = record(
+            &l.question_id,
+            &l.criterion,
+            c.scale,
+            &peaked(c.scale.labels().len(), pos, 0.7),
+        );
         r.system = l.system.clone();
         if l.rater == "rater-a" {
             judge.push(r);
         } else if l.rater == "rater-c" {
-            base.push(GradeRecord { expected: c.scale.values()[pos] / 5.0, ..r });
+            base.push(GradeRecord {
+                expected: c.scale.values()[pos] / 5.0,
+                ..r
+            });
         }
     }
     (judge, base)
@@ -34,16 +47,34 @@ fn judges(labels: &[LabelRow], rubric: &Rubric) -> (Vec<GradeRecord>, Vec<GradeR
 
 fn run(seed: u64) -> (VetReport, PairVetReport, usize) {
     let labels = read_labels(&root().join("demo-data/labels.csv")).expect("demo labels");
-    let rubric = load_rubric(&root().join("judge-templates/rubrics/support.toml")).expect("support rubric");
+    let rubric =
+        load_rubric(&root().join("judge-templates/rubrics/support.toml")).expect("support rubric");
     let (judge, base) = judges(&labels, &rubric);
-    let opts = VetOptions { resamples: 500, seed, ..VetOptions::default() };
+    let opts = VetOptions {
+        resamples: 500,
+        seed,
+        ..VetOptions::default()
+    };
     let vs = [
-        Variant { name: "expected score".into(), records: &judge, kind: VariantKind::ExpectedScore },
-        Variant { name: "argmax".into(), records: &judge, kind: VariantKind::Argmax },
-        Variant { name: "rater-c rescaled".into(), records: &base, kind: VariantKind::Baseline },
+        Variant {
+            name: "expected score".into(),
+            records: &judge,
+            kind: VariantKind::ExpectedScore,
+        },
+        Variant {
+            name: "argmax".into(),
+            records: &judge,
+            kind: VariantKind::Argmax,
+        },
+        Variant {
+            name: "rater-c rescaled".into(),
+            records: &base,
+            kind: VariantKind::Baseline,
+        },
     ];
     let report = vet(&vs, &labels, &rubric, &opts).expect("vet the demo labels");
-    let prefs = read_preferences(&root().join("demo-data/preferences.csv")).expect("demo preferences");
+    let prefs =
+        read_preferences(&root().join("demo-data/preferences.csv")).expect("demo preferences");
     let mut pairs = Vec::new();
     for (i, p) in prefs.iter().filter(|p| p.rater == "rater-a").enumerate() {
         let verdict = |first: &str| -> (f64, f64, f64) {
@@ -55,7 +86,11 @@ fn run(seed: u64) -> (VetReport, PairVetReport, usize) {
         };
         for (first, second) in [(&p.system_a, &p.system_b), (&p.system_b, &p.system_a)] {
             // every fifth pair the judge simply prefers whichever answer it saw first
-            let (p_first, p_second, p_tie) = if i % 5 == 0 { (0.6, 0.3, 0.1) } else { verdict(first) };
+            let (p_first, p_second, p_tie) = if i % 5 == 0 {
+                (0.6, 0.3, 0.1)
+            } else {
+                verdict(first)
+            };
             pairs.push(PairRecord {
                 question_id: p.question_id.clone(),
                 criterion: "overall".into(),
@@ -81,25 +116,40 @@ fn run(seed: u64) -> (VetReport, PairVetReport, usize) {
 fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
     let (r, p, judged) = run(11);
     let keys: Vec<&str> = r.criteria.iter().map(|c| c.criterion.as_str()).collect();
-    assert_eq!(keys, ["correctness", "faithfulness", "helpfulness", "clarity"]);
+    assert_eq!(
+        keys,
+        ["correctness", "faithfulness", "helpfulness", "clarity"]
+    );
     assert!(r.skipped.is_empty(), "{:?}", r.skipped);
     let mut graded = 0;
     for c in &r.criteria {
         assert_eq!(c.raters, ["rater-a", "rater-b", "rater-c"]);
         assert_eq!(c.variants.len(), 3);
         graded += c.variants[1].n_items;
-        let k = c.variants[1].categorical.as_ref().expect("argmax is a judge variant");
-        let ra = k.per_rater.iter().find(|x| x.rater == "rater-a").expect("rater-a listed");
+        let k = c.variants[1]
+            .categorical
+            .as_ref()
+            .expect("argmax is a judge variant");
+        let ra = k
+            .per_rater
+            .iter()
+            .find(|x| x.rater == "rater-a")
+            .expect("rater-a listed");
         assert!((ra.kappa_quadratic.expect("defined") - 1.0).abs() < 1e-12);
         assert!(k.kappa_quadratic_ci.percentile.is_some() && k.kappa_quadratic_ci.bca.is_some());
-        assert!(c.variants[2].categorical.is_none() && c.variants[2].correlation.spearman.is_some());
+        assert!(
+            c.variants[2].categorical.is_none() && c.variants[2].correlation.spearman.is_some()
+        );
         assert_eq!(c.ceiling.per_rater.len(), 3);
         assert!(c.ceiling.mean_kappa_quadratic.is_some() && c.ceiling.alpha_ordinal.is_some());
         assert!(c.trust.difference.percentile.is_some() && c.trust.advice.is_some());
         assert_eq!(c.calibration.len(), 2);
         assert!(c.calibration.iter().all(|k| k.temperature.is_some()));
     }
-    assert_eq!(graded, judged, "every rater-a label is a labelled item the judge graded");
+    assert_eq!(
+        graded, judged,
+        "every rater-a label is a labelled item the judge graded"
+    );
     assert_eq!(p.human_pairs, 50);
     assert_eq!(p.criteria[0].n_pairs, 50);
     assert_eq!(p.criteria[0].methods.len(), 3);
@@ -109,12 +159,18 @@ fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
         assert!(text.contains(&format!("trust card for `{key}`")), "{text}");
     }
     let json = |r: &VetReport, p: &PairVetReport| {
-        (serde_json::to_string(r).expect("report serialises"), serde_json::to_string(p).expect("pairs serialise"))
+        (
+            serde_json::to_string(r).expect("report serialises"),
+            serde_json::to_string(p).expect("pairs serialise"),
+        )
     };
     let (again, p_again, _) = run(11);
     assert_eq!(json(&r, &p), json(&again, &p_again));
     let (other, _, _) = run(12);
     let (a, b) = (&r.criteria[0].variants[0], &other.criteria[0].variants[0]);
-    assert_eq!(a.categorical.as_ref().map(|c| c.kappa_quadratic), b.categorical.as_ref().map(|c| c.kappa_quadratic));
+    assert_eq!(
+        a.categorical.as_ref().map(|c| c.kappa_quadratic),
+        b.categorical.as_ref().map(|c| c.kappa_quadratic)
+    );
     assert_ne!(json(&r, &p).0, json(&other, &p).0);
 }

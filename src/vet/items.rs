@@ -61,7 +61,11 @@ pub(crate) fn group_labels(
     let mut by_criterion: HashMap<&str, Grid> = HashMap::new();
     for l in labels {
         let Some(c) = rubric.criterion(&l.criterion) else {
-            let known: Vec<String> = rubric.criteria.iter().map(|c| format!("`{}`", c.key)).collect();
+            let known: Vec<String> = rubric
+                .criteria
+                .iter()
+                .map(|c| format!("`{}`", c.key))
+                .collect();
             problems.push(format!(
                 "line {}: criterion `{}` is not in the rubric (it has: {})",
                 l.line,
@@ -241,7 +245,9 @@ fn judge_value(
         ));
     }
     if r.probabilities.len() != labels.len()
-        || r.probabilities.iter().any(|p| !(p.is_finite() && *p >= 0.0))
+        || r.probabilities
+            .iter()
+            .any(|p| !(p.is_finite() && *p >= 0.0))
     {
         return Err("probabilities must be one finite value >= 0 per scale label".into());
     }
@@ -249,7 +255,13 @@ fn judge_value(
     if (total - 1.0).abs() > SUM_TOLERANCE {
         return Err(format!("probabilities sum to {total}, not 1"));
     }
-    let probs: Vec<f64> = r.probabilities.iter().map(|p| p / total).collect();
+    // Rescale only real drift: dividing by a sum that is 1 up to rounding would move
+    // equal confidences into different calibration bins.
+    let probs: Vec<f64> = if (total - 1.0).abs() <= 1e-9 {
+        r.probabilities.clone()
+    } else {
+        r.probabilities.iter().map(|p| p / total).collect()
+    };
     let (category, score) = match kind {
         VariantKind::Argmax => {
             let i = c

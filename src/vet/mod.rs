@@ -175,7 +175,9 @@ pub enum VetError {
     #[error("no judge records to vet")]
     NoVariants,
     /// The primary (first) variant has no categories, so no kappa or trust card.
-    #[error("the first variant `{name}` is a baseline without categories; put a judge variant first")]
+    #[error(
+        "the first variant `{name}` is a baseline without categories; put a judge variant first"
+    )]
     PrimaryIsBaseline { name: String },
     /// A setting is out of range.
     #[error("invalid vetting option: {0}")]
@@ -186,9 +188,15 @@ pub enum VetError {
     /// Label rows that cannot be used; all are listed.
     #[error("{} human label row(s) cannot be used:\n{}", problems.len(), listed(problems))]
     BadLabels { problems: Vec<String> },
+    /// Human preference rows that cannot be used; all are listed.
+    #[error("{} human preference row(s) cannot be used:\n{}", problems.len(), listed(problems))]
+    BadPreferences { problems: Vec<String> },
     /// Judge records that cannot be used; all are listed.
     #[error("{} record(s) of variant `{variant}` cannot be used:\n{}", problems.len(), listed(problems))]
-    BadRecords { variant: String, problems: Vec<String> },
+    BadRecords {
+        variant: String,
+        problems: Vec<String>,
+    },
     /// The primary variant graded a labelled criterion but on none of the labelled items.
     #[error("criterion `{criterion}`: none of the {judged} items variant `{variant}` graded is among the {labelled} labelled items")]
     NoOverlap {
@@ -220,7 +228,11 @@ pub enum VetError {
 
 fn listed(problems: &[String]) -> String {
     const SHOWN: usize = 25;
-    let mut s: Vec<String> = problems.iter().take(SHOWN).map(|p| format!("    {p}")).collect();
+    let mut s: Vec<String> = problems
+        .iter()
+        .take(SHOWN)
+        .map(|p| format!("    {p}"))
+        .collect();
     if problems.len() > SHOWN {
         s.push(format!("    ... and {} more", problems.len() - SHOWN));
     }
@@ -233,15 +245,28 @@ pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
     Some(match e {
         VetError::NoVariants => "pass the results of a grading run".into(),
         VetError::PrimaryIsBaseline { .. } => "list a judge variant before any baseline".into(),
-        VetError::BadOptions(_) => "use resamples >= 1, a level in (0, 1), a margin >= 0 and at least 2 folds".into(),
+        VetError::BadOptions(_) => {
+            "use resamples >= 1, a level in (0, 1), a margin >= 0 and at least 2 folds".into()
+        }
         VetError::NoLabels => "the labels file needs at least one row".into(),
-        VetError::BadLabels { .. } => "use criterion keys and scale labels of the rubric, one score per rater and item".into(),
-        VetError::BadRecords { .. } => "grade again with the same rubric, or check the run folder".into(),
+        VetError::BadLabels { .. } => {
+            "use criterion keys and scale labels of the rubric, one score per rater and item".into()
+        }
+        VetError::BadPreferences { .. } => {
+            "give each rater one preference per pair, naming one of its two systems or `tie`".into()
+        }
+        VetError::BadRecords { .. } => {
+            "grade again with the same rubric, or check the run folder".into()
+        }
         VetError::NoOverlap { .. } | VetError::NoPairOverlap { .. } => {
             "grade the labelled items: question ids and system names must match the labels".into()
         }
-        VetError::NothingToVet { .. } => "grade at least one criterion that has human labels".into(),
-        VetError::BadPairs { .. } => "judge each pair in both orders with a valid verdict distribution".into(),
+        VetError::NothingToVet { .. } => {
+            "grade at least one criterion that has human labels".into()
+        }
+        VetError::BadPairs { .. } => {
+            "judge each pair in both orders with a valid verdict distribution".into()
+        }
         VetError::Stats { .. } => return None,
     })
 }
@@ -304,7 +329,11 @@ pub fn vet(
     if criteria.is_empty() {
         return Err(VetError::NothingToVet {
             labelled: grouped.iter().map(|g| format!("`{}`", g.key)).collect(),
-            judged: judged[0].criteria().iter().map(|k| format!("`{k}`")).collect(),
+            judged: judged[0]
+                .criteria()
+                .iter()
+                .map(|k| format!("`{k}`"))
+                .collect(),
         });
     }
     Ok(VetReport {
@@ -409,6 +438,10 @@ pub fn gate_failures(r: &VetReport, min_kappa: f64) -> Vec<String> {
 }
 
 #[cfg(test)]
+mod demo_tests;
+#[cfg(test)]
+mod pair_tests;
+#[cfg(test)]
 mod tests;
 #[cfg(test)]
-mod demo_tests;
+mod trust_tests;

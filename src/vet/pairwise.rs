@@ -95,7 +95,10 @@ fn human_majority(prefs: &[PreferenceRow]) -> Result<BTreeMap<PairKey, usize>, V
             Some(s) if s == k.1 => 0,
             Some(s) if s == k.2 => 1,
             Some(s) => {
-                problems.push(format!("line {}: preferred `{s}` is neither system", p.line));
+                problems.push(format!(
+                    "line {}: preferred `{s}` is neither system",
+                    p.line
+                ));
                 continue;
             }
         };
@@ -107,7 +110,7 @@ fn human_majority(prefs: &[PreferenceRow]) -> Result<BTreeMap<PairKey, usize>, V
         }
     }
     if !problems.is_empty() {
-        return Err(VetError::BadLabels { problems });
+        return Err(VetError::BadPreferences { problems });
     }
     Ok(votes
         .into_iter()
@@ -125,7 +128,8 @@ fn human_majority(prefs: &[PreferenceRow]) -> Result<BTreeMap<PairKey, usize>, V
 
 /// The identity winner of one record (A = the record's first-shown system).
 fn slot_winner(r: &PairRecord) -> Winner {
-    if r.p_tie + PROB_TIE >= r.p_first.max(r.p_second) || (r.p_first - r.p_second).abs() <= PROB_TIE {
+    if r.p_tie + PROB_TIE >= r.p_first.max(r.p_second) || (r.p_first - r.p_second).abs() <= PROB_TIE
+    {
         Winner::Tie
     } else if r.p_first > r.p_second {
         Winner::A
@@ -169,14 +173,23 @@ pub fn vet_pairs(
         }
         let probs = [r.p_first, r.p_second, r.p_tie];
         if probs.iter().any(|p| !(p.is_finite() && *p >= 0.0)) || probs.iter().sum::<f64>() <= 0.0 {
-            problems.push(format!("`{}`: verdict probabilities must be finite, >= 0 and not all 0", r.key()));
+            problems.push(format!(
+                "`{}`: verdict probabilities must be finite, >= 0 and not all 0",
+                r.key()
+            ));
             continue;
         }
         let list = grouped
-            .entry((r.criterion.clone(), key(&r.question_id, &r.first, &r.second)))
+            .entry((
+                r.criterion.clone(),
+                key(&r.question_id, &r.first, &r.second),
+            ))
             .or_default();
         if list.iter().any(|o| o.first == r.first) {
-            problems.push(format!("`{}`: judged more than once in this order", r.key()));
+            problems.push(format!(
+                "`{}`: judged more than once in this order",
+                r.key()
+            ));
             continue;
         }
         list.push(r);
@@ -210,7 +223,10 @@ pub fn vet_pairs(
             original_probs: Some(slot_probs(orig)),
             swapped_probs: Some(slot_probs(swap)),
         };
-        units.entry(criterion.clone()).or_default().push((jp, orig.first == k.1, human));
+        units
+            .entry(criterion.clone())
+            .or_default()
+            .push((jp, orig.first == k.1, human));
     }
     for (criterion, list) in units {
         let judged: Vec<JudgedPair> = list.iter().map(|u| u.0).collect();
@@ -220,15 +236,22 @@ pub fn vet_pairs(
         })?;
         let human: Vec<usize> = list.iter().map(|u| u.2).collect();
         let orient = |ws: &[Winner]| -> Vec<usize> {
-            ws.iter().zip(&list).map(|(&w, u)| category(w, u.1)).collect()
+            ws.iter()
+                .zip(&list)
+                .map(|(&w, u)| category(w, u.1))
+                .collect()
         };
         let single = orient(&judged.iter().map(|j| j.original).collect::<Vec<_>>());
         let conservative = orient(&bias.conservative);
         let debiased = orient(bias.debiased.as_deref().unwrap_or(&bias.conservative));
-        let methods = [("single order", single), ("debiased", debiased), ("conservative", conservative)]
-            .into_iter()
-            .map(|(m, v)| method_agreement(m, &human, &v, opts))
-            .collect::<Result<_, _>>()?;
+        let methods = [
+            ("single order", single),
+            ("debiased", debiased),
+            ("conservative", conservative),
+        ]
+        .into_iter()
+        .map(|(m, v)| method_agreement(m, &human, &v, opts))
+        .collect::<Result<_, _>>()?;
         let (one_order_only, without_human) = counts.get(&criterion).copied().unwrap_or_default();
         by_criterion.insert(
             criterion.clone(),
@@ -273,7 +296,15 @@ fn method_agreement(
         kappa(&h, &j, 3, Weighting::Unweighted)
     };
     let ci = |f: &dyn Fn(&[usize]) -> Option<f64>| {
-        bootstrap_interval(n, opts.resamples, opts.seed, opts.level, IntervalMethod::Percentile, f).ok()
+        bootstrap_interval(
+            n,
+            opts.resamples,
+            opts.seed,
+            opts.level,
+            IntervalMethod::Percentile,
+            f,
+        )
+        .ok()
     };
     let all: Vec<usize> = (0..n).collect();
     Ok(MethodAgreement {

@@ -17,7 +17,10 @@ fn num(v: Option<f64>) -> String {
 }
 
 fn ci(i: Option<&BootstrapInterval>) -> String {
-    i.map_or_else(|| "[n/a]".into(), |c| format!("[{:.3}, {:.3}]", c.lower, c.upper))
+    i.map_or_else(
+        || "[n/a]".into(),
+        |c| format!("[{:.3}, {:.3}]", c.lower, c.upper),
+    )
 }
 
 fn both(p: &IntervalPair) -> String {
@@ -47,10 +50,23 @@ pub fn report_text(r: &VetReport, p: Option<&PairVetReport>) -> String {
     for k in &r.skipped {
         let _ = writeln!(s, "\nnot vetted: `{}` ({})", k.criterion, k.reason);
     }
-    let _ = writeln!(s, "\ntrust summary (primary variant `{}`)", r.variants.first().map_or("", |v| v.name.as_str()));
+    let _ = writeln!(
+        s,
+        "\ntrust summary (primary variant `{}`)",
+        r.variants.first().map_or("", |v| v.name.as_str())
+    );
     for c in &r.criteria {
-        let thin = if c.trust.thin_evidence { " (thin evidence)" } else { "" };
-        let _ = writeln!(s, "  {:<16} {}{thin}", c.criterion, c.trust.verdict.as_str());
+        let thin = if c.trust.thin_evidence {
+            " (thin evidence)"
+        } else {
+            ""
+        };
+        let _ = writeln!(
+            s,
+            "  {:<16} {}{thin}",
+            c.criterion,
+            c.trust.verdict.as_str()
+        );
     }
     if let Some(p) = p {
         pairs(&mut s, p);
@@ -81,7 +97,10 @@ fn criterion(s: &mut String, c: &CriterionReport) {
             v.variant,
             v.n_items,
             num(kq.and_then(|k| k.kappa_quadratic)),
-            kq.map_or("(baseline)".into(), |k| ci(k.kappa_quadratic_ci.percentile.as_ref())),
+            kq.map_or("(baseline)".into(), |k| ci(k
+                .kappa_quadratic_ci
+                .percentile
+                .as_ref())),
             num(v.correlation.spearman),
             num(v.error.as_ref().map(|e| e.mae)),
         );
@@ -89,7 +108,11 @@ fn criterion(s: &mut String, c: &CriterionReport) {
     if let Some(v) = c.variants.first() {
         let _ = writeln!(s, "\n  `{}` in detail ({} items)", v.variant, v.n_items);
         if let Some(k) = &v.categorical {
-            let _ = writeln!(s, "    exact {:.3}, within one {:.3}", k.exact, k.within_one);
+            let _ = writeln!(
+                s,
+                "    exact {:.3}, within one {:.3}",
+                k.exact, k.within_one
+            );
             let _ = writeln!(
                 s,
                 "    kappa unweighted {} {}, linear {}, quadratic {}",
@@ -98,7 +121,11 @@ fn criterion(s: &mut String, c: &CriterionReport) {
                 num(k.kappa_linear),
                 num(k.kappa_quadratic)
             );
-            let _ = writeln!(s, "    quadratic kappa intervals: {}", both(&k.kappa_quadratic_ci));
+            let _ = writeln!(
+                s,
+                "    quadratic kappa intervals: {}",
+                both(&k.kappa_quadratic_ci)
+            );
             let _ = writeln!(
                 s,
                 "    alpha nominal {}, ordinal {}, interval {}; Gwet AC1 {}, AC2 (quadratic) {}",
@@ -113,11 +140,27 @@ fn criterion(s: &mut String, c: &CriterionReport) {
                 .iter()
                 .map(|r| format!("{} {} (n {})", r.rater, num(r.kappa_quadratic), r.n_items))
                 .collect();
-            let _ = writeln!(s, "    quadratic kappa against each rater: {}", per.join(", "));
+            let _ = writeln!(
+                s,
+                "    quadratic kappa against each rater: {}",
+                per.join(", ")
+            );
             let _ = writeln!(s, "    confusion (rows human consensus, columns judge)");
-            let _ = writeln!(s, "      {:>6} {}", "", c.scale.iter().map(|l| format!("{l:>5}")).collect::<String>());
+            let _ = writeln!(
+                s,
+                "      {:>6} {}",
+                "",
+                c.scale
+                    .iter()
+                    .map(|l| format!("{l:>5}"))
+                    .collect::<String>()
+            );
             for (label, row) in c.scale.iter().zip(&k.confusion) {
-                let _ = writeln!(s, "      {label:>6} {}", row.iter().map(|x| format!("{x:>5}")).collect::<String>());
+                let _ = writeln!(
+                    s,
+                    "      {label:>6} {}",
+                    row.iter().map(|x| format!("{x:>5}")).collect::<String>()
+                );
             }
         }
         let cr = &v.correlation;
@@ -130,7 +173,11 @@ fn criterion(s: &mut String, c: &CriterionReport) {
             num(cr.pearson)
         );
         if let Some(e) = &v.error {
-            let lean = if e.mean_signed_bias > 0.0 { "more lenient" } else { "harsher" };
+            let lean = if e.mean_signed_bias > 0.0 {
+                "more lenient"
+            } else {
+                "harsher"
+            };
             let _ = writeln!(
                 s,
                 "    MAE {:.3} {}, bias {:+.3} (judge {lean} than humans on average)",
@@ -141,7 +188,10 @@ fn criterion(s: &mut String, c: &CriterionReport) {
         }
     }
     let h = &c.ceiling;
-    let _ = writeln!(s, "\n  human ceiling (each rater against the consensus of the others)");
+    let _ = writeln!(
+        s,
+        "\n  human ceiling (each rater against the consensus of the others)"
+    );
     for r in &h.per_rater {
         let _ = writeln!(
             s,
@@ -164,7 +214,11 @@ fn criterion(s: &mut String, c: &CriterionReport) {
     }
     card(s, c);
     calibration(s, c);
-    for n in c.variants.iter().flat_map(|v| v.notes.iter().map(move |n| (v, n))) {
+    for n in c
+        .variants
+        .iter()
+        .flat_map(|v| v.notes.iter().map(move |n| (v, n)))
+    {
         let _ = writeln!(s, "  note: {}: {}", n.0.variant, n.1);
     }
     for n in &c.notes {
@@ -208,20 +262,35 @@ fn calibration(s: &mut String, c: &CriterionReport) {
     if c.calibration.is_empty() {
         return;
     }
-    let _ = writeln!(s, "\n  calibration (top probability vs argmax = consensus; 10 bins)");
+    let _ = writeln!(
+        s,
+        "\n  calibration (top probability vs argmax = consensus; 10 bins)"
+    );
     let _ = writeln!(
         s,
         "    {:<20} {:>5} {:>6} {:>9} {:>8} {:>6} {:>6} {:>8} {:>6} {:>14}",
-        "variant", "acc", "conf", "ECE width", "ECE mass", "MCE", "Brier", "log loss", "T", "held-out ECE"
+        "variant",
+        "acc",
+        "conf",
+        "ECE width",
+        "ECE mass",
+        "MCE",
+        "Brier",
+        "log loss",
+        "T",
+        "held-out ECE"
     );
     for k in &c.calibration {
-        let (t, after) = k.temperature.as_ref().map_or(("n/a".into(), "n/a".into()), |t| {
-            let cv = &t.cross_validated;
-            (
-                format!("{:.2}", t.fitted_on_all),
-                format!("{:.3} -> {:.3}", cv.ece_before, cv.ece_after),
-            )
-        });
+        let (t, after) = k
+            .temperature
+            .as_ref()
+            .map_or(("n/a".into(), "n/a".into()), |t| {
+                let cv = &t.cross_validated;
+                (
+                    format!("{:.2}", t.fitted_on_all),
+                    format!("{:.3} -> {:.3}", cv.ece_before, cv.ece_after),
+                )
+            });
         let _ = writeln!(
             s,
             "    {:<20} {:>5.3} {:>6.3} {:>9.3} {:>8.3} {:>6.3} {:>6.3} {:>8.3} {:>6} {:>14}",
@@ -241,7 +310,11 @@ fn calibration(s: &mut String, c: &CriterionReport) {
         }
     }
     if let Some(k) = c.calibration.first() {
-        let _ = writeln!(s, "    reliability of `{}` (confidence bin: items, accuracy, mean confidence)", k.variant);
+        let _ = writeln!(
+            s,
+            "    reliability of `{}` (confidence bin: items, accuracy, mean confidence)",
+            k.variant
+        );
         for b in &k.reliability {
             let _ = writeln!(
                 s,
@@ -267,11 +340,15 @@ fn pairs(s: &mut String, p: &PairVetReport) {
             c.criterion, c.n_pairs, c.human_ties, c.one_order_only, c.without_human
         );
         let _ = writeln!(s, "    position: {}", c.position_bias.verdict_line);
-        let _ = writeln!(s, "    {:<14} {:>8} {:<18} {:>7} {:<18}", "rule", "accuracy", "95% CI", "kappa", "95% CI");
+        let _ = writeln!(
+            s,
+            "    {:<14} {:>8} {:<18} {:>7} {}",
+            "rule", "accuracy", "95% CI", "kappa", "95% CI"
+        );
         for m in &c.methods {
             let _ = writeln!(
                 s,
-                "    {:<14} {:>8.3} {:<18} {:>7} {:<18}",
+                "    {:<14} {:>8.3} {:<18} {:>7} {}",
                 m.method,
                 m.accuracy,
                 ci(m.accuracy_ci.as_ref()),

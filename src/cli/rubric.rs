@@ -1,0 +1,157 @@
+//! `assize rubric …`: check a rubric file, and show the exact prompt the judge will
+//! see for one item (a dry run: no weights are loaded). Never grades.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Args, Subcommand};
+use serde::Serialize;
+
+use super::common::resolve_model;
+use super::errors::usage;
+use super::{print_json, OutputArgs};
+use crate::data::read_answers;
+use crate::engine::chat::{ChatFormat, ChatMessage, Role};
+use crate::engine::tokenizer::JudgeTokenizer;
+use crate::engine::GgufFile;
+use crate::rubric::forms::Forms;
+use crate::rubric::load_rubric;
+
+/// `assize rubric` subcommands.
+#[derive(Debug, Subcommand)]
+pub enum RubricCommand {
+    /// Check a rubric file; every problem is listed with its line
+    Check(CheckArgs),
+    /// Show the exact prompt the judge sees for one answer and criterion (no model run)
+    Show(ShowArgs),
+}
+
+/// Arguments of `assize rubric check`.
+#[derive(Debug, Args)]
+pub struct CheckArgs {
+    /// Rubric file (TOML)
+    #[arg(value_name = "FILE")]
+    pub rubric: PathBuf,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Arguments of `assize rubric show`.
+#[derive(Debug, Args)]
+pub struct ShowArgs {
+    /// Rubric file (TOML)
+    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    pub rubric: PathBuf,
+    /// Answers file
+    #[arg(long, short = 'a', value_name = "FILE")]
+    pub answers: PathBuf,
+    /// The answer to show, as `QUESTION_ID/SYSTEM`
+    #[arg(long, value_name = "ID")]
+    pub item: String,
+    /// Criterion key (default: the rubric's first)
+    #[arg(long, value_name = "KEY")]
+    pub criterion: Option<String>,
+    /// Show the reasoning-first form
+    #[arg(long)]
+    pub reasoning: bool,
+    /// Render through this judge's chat template and count its tokens (only the file header is read)
+    #[arg(long, short = 'm', value_name = "MODEL", default_value = "default")]
+    pub model: String,
+    /// Show the form messages without any chat template
+    #[arg(long)]
+    pub raw: bool,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Run one `assize rubric` subcommand.
+pub fn run(cmd: RubricCommand) -> anyhow::Result<ExitCode> {
+    match cmd {
+        RubricCommand::Check(a) => check(&a),
+        RubricCommand::Show(a) => show(&a),
+    }
+}
+
+fn check(args: &CheckArgs) -> anyhow::Result<ExitCode> {
+    let r = load_rubric(&args.rubric)?;
+    if args.output.json {
+        print_json(&r)?;
+    } else {
+        println!("rubric `{}` is valid: {} criteria", r.name, r.criteria.len());
+        for c in &r.criteria {
+            println!("  {:<14} scale {:<7} needs {:?}", c.key, c.scale.name(), c.needs);
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+/// What `assize rubric show --json` prints.
+#[derive(Debug, Serialize)]
+pub struct ShownPrompt {
+    /// The form's system message.
+    pub system: String,
+    /// The form's user message.
+    pub user: String,
+    /// The assistant prefill before the slot.
+    pub prefill: String,
+    /// The full prompt after the chat template (absent with `--raw`).
+    pub prompt: Option<String>,
+    /// Token count of the prompt (absent with `--raw`).
+    pub tokens: Option<usize>,
+}
+
+fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
+    let rubric = load_rubric(&args.rubric)?;
+    let answers = read_answers(&args.answers)?;
+    let item = answers.iter().find(|a| a.item_id() == args.item).ok_or_else(|| {
+        usage(
+            format!("no answer `{}` in `{}`", args.item, args.answers.display()),
+            "name the answer as `QUESTION_ID/SYSTEM`, e.g. `q01/assistant-v1`",
+        )
+    })?;
+    let c = match &args.criterion {
+        Some(k) => rubric.criterion(k).ok_or_else(|| {
+            usage(
+                format!("rubric `{}` has no criterion `{k}`", args.rubric.display()),
+                format!("use one of: {}", rubric.criteria.iter().map(|c| c.key.as_str()).collect::<Vec<_>>().join(", ")),
+            )
+        })?,
+        None => &rubric.criteria[0],
+    };
+    let form = Forms::builtin()?.grade(&rubric, item, c, args.reasoning, &[])?;
+    let (prompt, tokens) = if args.raw {
+        (None, None)
+    } else {
+        let gguf = GgufFile::open(&resolve_model(&args.model)?)?;
+        let chat = ChatFormat::from_gguf(&gguf)?;
+        let tok = JudgeTokenizer::from_gguf(&gguf)?;
+        let msgs = [
+            ChatMessage { role: Role::System, content: form.system.clone() },
+            ChatMessage { role: Role::User, content: form.user.clone() },
+        ];
+        let mut segs = chat.render_segments(&msgs, true)?;
+        segs.push(crate::engine::chat::Segment::Content(form.prefill.clone()));
+        let ids = tok.encode_segments(&segs, true)?;
+        let text = format!("{}{}", chat.render(&msgs, true)?, form.prefill);
+        (Some(text), Some(ids.len()))
+    };
+    let shown = ShownPrompt {
+        system: form.system,
+        user: form.user,
+        prefill: form.prefill,
+        prompt,
+        tokens,
+    };
+    if args.output.json {
+        print_json(&shown)?;
+    } else {
+        match &shown.prompt {
+            Some(p) => {
+                println!("{p}");
+                eprintln!("{} tokens", shown.tokens.unwrap_or(0));
+            }
+            None => println!("[system]\n{}\n\n[user]\n{}\n\n[assistant]\n{}", shown.system, shown.user, shown.prefill),
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}

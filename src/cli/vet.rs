@@ -1,0 +1,175 @@
+//! `assize vet`: compare judge grades with human labels per criterion (agreement
+//! against the human ceiling, calibration, trust cards), optionally pairwise verdicts
+//! with human preferences, and reference-based metrics as baselines; an optional gate
+//! for CI pipelines. Never runs the model: it reads finished run folders.
+
+use std::collections::HashMap;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::Args;
+use serde::Serialize;
+
+use super::errors::{usage, GateFailed};
+use super::{print_json, OutputArgs};
+use crate::data::{check_labels, read_answers, read_labels, read_preferences, AnswerRecord};
+use crate::judge::{GradeRecord, PairRecord};
+use crate::overlap::{score_pair, OverlapOptions};
+use crate::rubric::{load_rubric, Rubric};
+use crate::store::read_records;
+use crate::vet::{gate_failures, report_text, vet, vet_pairs, PairVetReport, Variant, VariantKind, VetOptions, VetReport};
+
+/// Arguments of `assize vet`.
+#[derive(Debug, Clone, Args)]
+pub struct VetArgs {
+    /// Grading run folder of the judge to vet (holds `grades.jsonl`)
+    #[arg(long, short = 'g', value_name = "DIR")]
+    pub grades: PathBuf,
+    /// Human labels in long form: question_id, system, criterion, rater, score
+    #[arg(long, short = 'l', value_name = "FILE")]
+    pub labels: PathBuf,
+    /// Rubric the grades were made with
+    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    pub rubric: PathBuf,
+    /// More grading runs to show side by side, as `NAME=DIR` (e.g. `reasoning=runs/grade-…`)
+    #[arg(long, value_name = "NAME=DIR")]
+    pub variant: Vec<String>,
+    /// Answers file: adds reference-based metrics (ROUGE-L, BLEU, chrF, token F1) as baselines
+    #[arg(long, value_name = "FILE")]
+    pub baselines: Option<PathBuf>,
+    /// Comparison run folder (holds `pairs.jsonl`) to vet against `--preferences`
+    #[arg(long, value_name = "DIR", requires = "preferences")]
+    pub pairs: Option<PathBuf>,
+    /// Human pairwise preferences: question_id, system_a, system_b, rater, preferred
+    #[arg(long, value_name = "FILE")]
+    pub preferences: Option<PathBuf>,
+    /// Exit with status 1 when a criterion's judge quadratic kappa has a 95% lower bound below this
+    #[arg(long, value_name = "KAPPA")]
+    pub min_kappa: Option<f64>,
+    /// Bootstrap resamples per interval
+    #[arg(long, value_name = "N", default_value_t = 2000)]
+    pub resamples: usize,
+    /// Seed of every random draw
+    #[arg(long, value_name = "N", default_value_t = 7)]
+    pub seed: u64,
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// What `assize vet --json` prints.
+#[derive(Debug, Serialize)]
+pub struct VetOutput {
+    /// Pointwise vetting per criterion.
+    pub pointwise: VetReport,
+    /// Pairwise vetting, when a comparison run and preferences were given.
+    pub pairwise: Option<PairVetReport>,
+    /// Criteria that failed `--min-kappa`.
+    pub gate_failures: Vec<String>,
+}
+
+fn load_grades(dir: &std::path::Path) -> anyhow::Result<Vec<GradeRecord>> {
+    let path = dir.join(super::grade::GRADES_FILE);
+    if !path.exists() {
+        return Err(usage(
+            format!("`{}` holds no grading results (`{}` is missing)", dir.display(), super::grade::GRADES_FILE),
+            "pass the run folder that `assize grade` printed",
+        ));
+    }
+    Ok(read_records(&path)?)
+}
+
+/// Baseline records: each overlap metric of each answer against its reference,
+/// copied to every criterion of the rubric (a metric has no notion of criterion).
+fn baseline_records(answers: &[AnswerRecord], rubric: &Rubric) -> anyhow::Result<Vec<(String, Vec<GradeRecord>)>> {
+    let opts = OverlapOptions::default();
+    let metrics = ["ROUGE-L", "BLEU", "chrF", "token F1"];
+    let mut out: Vec<(String, Vec<GradeRecord>)> = metrics.iter().map(|m| (m.to_string(), Vec::new())).collect();
+    for a in answers {
+        let Some(r) = &a.reference else { continue };
+        let s = score_pair(&a.answer, &[r.as_str()], &opts)?;
+        let values = [s.rougel_f, s.bleu, s.chrf, s.token_f1];
+        for c in &rubric.criteria {
+            for (slot, v) in out.iter_mut().zip(values) {
+                slot.1.push(GradeRecord {
+                    question_id: a.question_id.clone(),
+                    system: a.system.clone(),
+                    criterion: c.key.clone(),
+                    labels: c.scale.labels(),
+                    probabilities: Vec::new(),
+                    captured_mass: 1.0,
+                    expected: v,
+                    argmax: String::new(),
+                    spread: 0.0,
+                    low_mass: false,
+                    rationale: None,
+                });
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// Compute the vetting reports.
+pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
+    let rubric = load_rubric(&args.rubric)?;
+    let labels = read_labels(&args.labels)?;
+    let primary = load_grades(&args.grades)?;
+    let mut extra = Vec::new();
+    for v in &args.variant {
+        let Some((name, dir)) = v.split_once('=') else {
+            return Err(usage(format!("`--variant {v}` is not `NAME=DIR`"), "write it as e.g. `--variant reasoning=runs/grade-abc`"));
+        };
+        extra.push((name.to_string(), load_grades(std::path::Path::new(dir))?));
+    }
+    let baselines = match &args.baselines {
+        Some(p) => {
+            let answers = read_answers(p)?;
+            let scales: HashMap<String, Vec<String>> =
+                rubric.criteria.iter().map(|c| (c.key.clone(), c.scale.labels())).collect();
+            let known: Vec<_> = labels.iter().filter(|l| scales.contains_key(&l.criterion)).cloned().collect();
+            check_labels(&args.labels, &known, &answers, &scales)?;
+            baseline_records(&answers, &rubric)?
+        }
+        None => Vec::new(),
+    };
+    let mut variants = vec![
+        Variant { name: "expected score".into(), records: &primary, kind: VariantKind::ExpectedScore },
+        Variant { name: "argmax label".into(), records: &primary, kind: VariantKind::Argmax },
+    ];
+    for (name, recs) in &extra {
+        variants.push(Variant { name: name.clone(), records: recs, kind: VariantKind::ExpectedScore });
+    }
+    for (name, recs) in &baselines {
+        variants.push(Variant { name: name.clone(), records: recs, kind: VariantKind::Baseline });
+    }
+    let opts = VetOptions { resamples: args.resamples, seed: args.seed, ..VetOptions::default() };
+    let pointwise = vet(&variants, &labels, &rubric, &opts)?;
+    let pairwise = match (&args.pairs, &args.preferences) {
+        (Some(dir), Some(p)) => {
+            let pairs: Vec<PairRecord> = read_records(&dir.join(super::compare::PAIRS_FILE))?;
+            Some(vet_pairs(&pairs, &read_preferences(p)?, &opts)?)
+        }
+        _ => None,
+    };
+    let gate = args.min_kappa.map(|k| gate_failures(&pointwise, k)).unwrap_or_default();
+    Ok(VetOutput { pointwise, pairwise, gate_failures: gate })
+}
+
+/// Run `assize vet`.
+pub fn run(args: VetArgs) -> anyhow::Result<ExitCode> {
+    let out = vet_run(&args)?;
+    if args.output.json {
+        print_json(&out)?;
+    } else {
+        print!("{}", report_text(&out.pointwise, out.pairwise.as_ref()));
+    }
+    if !out.gate_failures.is_empty() {
+        return Err(GateFailed(format!(
+            "judge agreement below --min-kappa {} on: {}",
+            args.min_kappa.unwrap_or(0.0),
+            out.gate_failures.join(", ")
+        ))
+        .into());
+    }
+    Ok(ExitCode::SUCCESS)
+}
