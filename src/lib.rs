@@ -11,6 +11,7 @@ pub mod engine;
 pub mod judge;
 pub mod overlap;
 pub mod probes;
+pub mod report;
 pub mod rubric;
 pub mod stats;
 pub mod store;

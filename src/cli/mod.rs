@@ -8,12 +8,15 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
+pub mod answer;
 pub mod common;
 pub mod compare;
+pub mod estimate;
 pub mod errors;
 pub mod grade;
 pub mod model;
 pub mod overlap;
+pub mod report;
 pub mod rubric;
 pub mod vet;
 
@@ -42,11 +45,17 @@ pub enum Command {
     Grade(grade::GradeArgs),
     /// Compare systems pairwise, both answer orders, with bias probes and a ranking
     Compare(compare::CompareArgs),
-    /// Check rubric files and show the exact prompt the judge will see
+    /// Let a local model answer a file of questions (to add a system, or probe self-preference)
+    Answer(answer::AnswerArgs),
     /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
     Vet(vet::VetArgs),
+    /// Estimate quality per system from judge grades plus a few human labels (prediction-powered)
+    Estimate(estimate::EstimateArgs),
     /// Reference-based text metrics (ROUGE, BLEU, chrF, edit distance, token F1) per answer and system
     Overlap(overlap::OverlapArgs),
+    /// Render run folders as a report: self-contained HTML, Markdown summary, versioned JSON
+    Report(report::ReportArgs),
+    /// Check rubric files and show the exact prompt the judge will see
     #[command(subcommand)]
     Rubric(rubric::RubricCommand),
 }
@@ -70,7 +79,10 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Compare(args) => compare::run(args),
         Command::Rubric(cmd) => rubric::run(cmd),
         Command::Vet(args) => vet::run(args),
+        Command::Answer(args) => answer::run(args),
+        Command::Estimate(args) => estimate::run(args),
         Command::Overlap(args) => overlap::run(args),
+        Command::Report(args) => report::run(args),
     }
 }
 

@@ -48,7 +48,9 @@ fn synthetic_tokens(n: usize, vocab: usize) -> Vec<u32> {
     let span = vocab.saturating_sub(1000).max(1) as u64;
     (0..n)
         .map(|_| {
-            state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
             (1000 + (state >> 33) % span).min(vocab as u64 - 1) as u32
         })
         .collect()
@@ -68,17 +70,27 @@ pub fn run_bench(
     threads: usize,
 ) -> Result<BenchReport, EngineError> {
     if prompt_tokens == 0 {
-        return Err(EngineError::Invalid("the benchmark needs at least one prompt token".into()));
+        return Err(EngineError::Invalid(
+            "the benchmark needs at least one prompt token".into(),
+        ));
     }
     let gguf = GgufFile::open(path)?;
     let mut types = std::collections::BTreeMap::new();
     for info in gguf.content.tensor_infos.values() {
-        *types.entry(format!("{:?}", info.ggml_dtype)).or_insert(0usize) += 1;
+        *types
+            .entry(format!("{:?}", info.ggml_dtype))
+            .or_insert(0usize) += 1;
     }
-    let quantisation =
-        types.iter().map(|(t, n)| format!("{t}:{n}")).collect::<Vec<_>>().join(" ");
+    let quantisation = types
+        .iter()
+        .map(|(t, n)| format!("{t}:{n}"))
+        .collect::<Vec<_>>()
+        .join(" ");
     let start = Instant::now();
-    let opts = LoadOptions { threads, context_cap: Some(prompt_tokens + gen_tokens + 1) };
+    let opts = LoadOptions {
+        threads,
+        context_cap: Some(prompt_tokens + gen_tokens + 1),
+    };
     let decoder = Decoder::load(&gguf, &opts)?;
     let load_seconds = start.elapsed().as_secs_f64();
     let cfg = decoder.config();
@@ -94,7 +106,13 @@ pub fn run_bench(
         let next = logits
             .iter()
             .enumerate()
-            .fold((0usize, f32::NEG_INFINITY), |b, (i, &v)| if v > b.1 { (i, v) } else { b })
+            .fold((0usize, f32::NEG_INFINITY), |b, (i, &v)| {
+                if v > b.1 {
+                    (i, v)
+                } else {
+                    b
+                }
+            })
             .0 as u32;
         logits = decoder.forward_last(&mut cache, &[next])?;
     }
@@ -113,7 +131,11 @@ pub fn run_bench(
         gen_tokens,
         load_seconds,
         prompt_tokens_per_second: prompt_tokens as f64 / prompt_secs,
-        gen_tokens_per_second: if gen_tokens == 0 { 0.0 } else { gen_tokens as f64 / gen_secs },
+        gen_tokens_per_second: if gen_tokens == 0 {
+            0.0
+        } else {
+            gen_tokens as f64 / gen_secs
+        },
         peak_rss_bytes,
         cpu: proc_field("/proc/cpuinfo", "model name"),
     })

@@ -11,7 +11,6 @@
 
 use std::sync::OnceLock;
 
-
 use super::gguf::GgufFile;
 use super::linear::{
     activate, add_bias, add_into, attention, rms_norm, rope, rope_freqs, AttnShape, Embedding,
@@ -99,7 +98,10 @@ pub struct Numerics {
 
 impl Default for Numerics {
     fn default() -> Self {
-        Numerics { matmul: MatmulPolicy::Fast, activation: None }
+        Numerics {
+            matmul: MatmulPolicy::Fast,
+            activation: None,
+        }
     }
 }
 
@@ -184,7 +186,8 @@ fn metadata_u(g: &GgufFile, arch: &str, key: &str) -> Result<usize, EngineError>
 }
 
 fn metadata_f(g: &GgufFile, arch: &str, key: &str, default: f32) -> f32 {
-    g.float(&format!("{arch}.{key}")).map_or(default, |v| v as f32)
+    g.float(&format!("{arch}.{key}"))
+        .map_or(default, |v| v as f32)
 }
 
 impl Decoder {
@@ -215,17 +218,21 @@ impl Decoder {
             return Err(EngineError::Metadata {
                 path: gguf.path.clone(),
                 key: format!("{a}.attention.head_count_kv"),
-                expected: "head counts where query heads are a multiple of key/value heads"
-                    .into(),
+                expected: "head counts where query heads are a multiple of key/value heads".into(),
             });
         }
         let context_length = metadata_u(gguf, a, "context_length")?;
-        let context_limit = opts.context_cap.map_or(context_length, |c| c.min(context_length));
+        let context_limit = opts
+            .context_cap
+            .map_or(context_length, |c| c.min(context_length));
         let rope_base = metadata_f(gguf, a, "rope.freq_base", if gemma { 1e6 } else { 1e4 });
         // Gemma 3 local layers: 10000 unless the file says otherwise, as llama.cpp and
         // candle-transformers' quantized_gemma3 do.
-        let rope_base_local =
-            if gemma { metadata_f(gguf, a, "rope.local_freq_base", 1e4) } else { rope_base };
+        let rope_base_local = if gemma {
+            metadata_f(gguf, a, "rope.local_freq_base", 1e4)
+        } else {
+            rope_base
+        };
         let sliding_window = if gemma {
             Some(metadata_u(gguf, a, "attention.sliding_window")?)
         } else {
@@ -242,11 +249,14 @@ impl Decoder {
         let token_embd = loader.qtensor("token_embd.weight")?;
         let embed = Embedding::new(token_embd.clone()).map_err(loader.err("token_embd.weight"))?;
         let tied_output = !gguf.content.tensor_infos.contains_key("output.weight");
-        let out_q = if tied_output { token_embd } else { loader.qtensor("output.weight")? };
+        let out_q = if tied_output {
+            token_embd
+        } else {
+            loader.qtensor("output.weight")?
+        };
         // The output projection runs on one row per prompt and may share the embedding
         // table, so it stays quantised (no dense or padded copy).
-        let output = Linear::output(out_q, numerics.matmul)
-            .map_err(loader.err("output.weight"))?;
+        let output = Linear::output(out_q, numerics.matmul).map_err(loader.err("output.weight"))?;
         let vocab = output.n;
         let ffn = metadata_u(gguf, a, "feed_forward_length")?;
         let cfg = DecoderConfig {
@@ -279,12 +289,21 @@ impl Decoder {
             layers.push(read_layer(&mut loader, &cfg, i, numerics.matmul)?);
         }
         let out_norm = loader.vector("output_norm.weight", hidden)?;
-        let decoder = Decoder { cfg, embed, layers, out_norm, output };
+        let decoder = Decoder {
+            cfg,
+            embed,
+            layers,
+            out_norm,
+            output,
+        };
         decoder.check_shapes(gguf)?;
         // Candle packs weights for its int8 kernels on first use; do it now so load
         // time includes it and the first prompt is not slowed.
-        let mut warm = decoder.new_cache();
-        decoder.forward_last(&mut warm, &[0; 4][..4.min(context_limit.max(1))])?;
+        // Four rows also pack the Q6_K weights, which candle packs only for several rows.
+        let warm_len = 4.min(context_limit);
+        if warm_len > 0 {
+            decoder.forward_last(&mut decoder.new_cache(), &[0; 4][..warm_len])?;
+        }
         Ok(decoder)
     }
 
@@ -296,7 +315,10 @@ impl Decoder {
             reason,
         };
         if self.embed.hidden != c.hidden || self.output.k != c.hidden {
-            return Err(bad("token_embd.weight", format!("width is not {}", c.hidden)));
+            return Err(bad(
+                "token_embd.weight",
+                format!("width is not {}", c.hidden),
+            ));
         }
         for (i, l) in self.layers.iter().enumerate() {
             let want = [
@@ -339,15 +361,31 @@ impl Decoder {
         let layers: usize = self
             .layers
             .iter()
-            .map(|l| [&l.wq, &l.wk, &l.wv, &l.wo, &l.gate, &l.up, &l.down].iter().map(|w| w.bytes()).sum::<usize>())
+            .map(|l| {
+                [&l.wq, &l.wk, &l.wv, &l.wo, &l.gate, &l.up, &l.down]
+                    .iter()
+                    .map(|w| w.bytes())
+                    .sum::<usize>()
+            })
             .sum();
-        layers + self.output.bytes() + if self.cfg.tied_output { 0 } else { self.embed.bytes() }
+        layers
+            + self.output.bytes()
+            + if self.cfg.tied_output {
+                0
+            } else {
+                self.embed.bytes()
+            }
     }
 
     /// Append `tokens` to `cache` and return the logits at the last new position.
-    pub fn forward_last(&self, cache: &mut KvCache, tokens: &[u32]) -> Result<Vec<f32>, EngineError> {
+    pub fn forward_last(
+        &self,
+        cache: &mut KvCache,
+        tokens: &[u32],
+    ) -> Result<Vec<f32>, EngineError> {
         let mut rows = self.forward_rows(cache, tokens, false)?;
-        rows.pop().ok_or_else(|| EngineError::Invalid("no tokens to run".into()))
+        rows.pop()
+            .ok_or_else(|| EngineError::Invalid("no tokens to run".into()))
     }
 
     /// Append `tokens` to `cache` and return the logits at every new position.
@@ -368,8 +406,11 @@ impl Decoder {
         if tokens.is_empty() {
             return Err(EngineError::Invalid("no tokens to run".into()));
         }
-        if cache.k.len() != self.cfg.layers || cache.kv_dim != self.cfg.kv_heads * self.cfg.head_dim {
-            return Err(EngineError::Invalid("key/value cache belongs to another model".into()));
+        if cache.k.len() != self.cfg.layers || cache.kv_dim != self.cfg.kv_heads * self.cfg.head_dim
+        {
+            return Err(EngineError::Invalid(
+                "key/value cache belongs to another model".into(),
+            ));
         }
         let total = cache.len + tokens.len();
         if total > self.cfg.context_limit {
@@ -389,12 +430,17 @@ impl Decoder {
 }
 
 /// Read block `i`: its weights with the kernels `policy` picks, norms and biases.
-fn read_layer(ld: &mut Loader, c: &DecoderConfig, i: usize, policy: MatmulPolicy) -> Result<Layer, EngineError> {
+fn read_layer(
+    ld: &mut Loader,
+    c: &DecoderConfig,
+    i: usize,
+    policy: MatmulPolicy,
+) -> Result<Layer, EngineError> {
     let p = |s: &str| format!("blk.{i}.{s}");
     let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
     let gemma = c.gemma_norms;
     // Gemma 3: every `sliding_pattern`-th layer (1-based) attends globally.
-    let local = c.sliding_window.is_some() && (i + 1) % c.sliding_pattern != 0;
+    let local = c.sliding_window.is_some() && !(i + 1).is_multiple_of(c.sliding_pattern);
     Ok(Layer {
         attn_norm: ld.vector(&p("attn_norm.weight"), c.hidden)?,
         wq: ld.linear(&p("attn_q.weight"), policy)?,
@@ -404,23 +450,44 @@ fn read_layer(ld: &mut Loader, c: &DecoderConfig, i: usize, policy: MatmulPolicy
         bq: ld.optional(&p("attn_q.bias"), q_dim)?,
         bk: ld.optional(&p("attn_k.bias"), kv_dim)?,
         bv: ld.optional(&p("attn_v.bias"), kv_dim)?,
-        q_norm: if gemma { Some(ld.vector(&p("attn_q_norm.weight"), c.head_dim)?) } else { None },
-        k_norm: if gemma { Some(ld.vector(&p("attn_k_norm.weight"), c.head_dim)?) } else { None },
-        post_attn_norm: if gemma { Some(ld.vector(&p("post_attention_norm.weight"), c.hidden)?) } else { None },
+        q_norm: if gemma {
+            Some(ld.vector(&p("attn_q_norm.weight"), c.head_dim)?)
+        } else {
+            None
+        },
+        k_norm: if gemma {
+            Some(ld.vector(&p("attn_k_norm.weight"), c.head_dim)?)
+        } else {
+            None
+        },
+        post_attn_norm: if gemma {
+            Some(ld.vector(&p("post_attention_norm.weight"), c.hidden)?)
+        } else {
+            None
+        },
         ffn_norm: ld.vector(&p("ffn_norm.weight"), c.hidden)?,
         gate: ld.linear(&p("ffn_gate.weight"), policy)?,
         up: ld.linear(&p("ffn_up.weight"), policy)?,
         down: ld.linear(&p("ffn_down.weight"), policy)?,
-        post_ffn_norm: if gemma { Some(ld.vector(&p("post_ffw_norm.weight"), c.hidden)?) } else { None },
+        post_ffn_norm: if gemma {
+            Some(ld.vector(&p("post_ffw_norm.weight"), c.hidden)?)
+        } else {
+            None
+        },
         window: if local { c.sliding_window } else { None },
-        rope_base: if local { c.rope_base_local } else { c.rope_base },
+        rope_base: if local {
+            c.rope_base_local
+        } else {
+            c.rope_base
+        },
     })
 }
 
-
 /// Log-softmax of `logits`, computed in f64 for stability.
 pub fn log_softmax(logits: &[f32]) -> Vec<f32> {
-    let max = logits.iter().fold(f64::NEG_INFINITY, |m, &x| m.max(x as f64));
+    let max = logits
+        .iter()
+        .fold(f64::NEG_INFINITY, |m, &x| m.max(x as f64));
     let sum: f64 = logits.iter().map(|&x| (x as f64 - max).exp()).sum();
     let log_z = max + sum.ln();
     logits.iter().map(|&x| (x as f64 - log_z) as f32).collect()
@@ -428,7 +495,12 @@ pub fn log_softmax(logits: &[f32]) -> Vec<f32> {
 
 impl Decoder {
     /// One forward pass over `tokens` (non-empty, known to fit): appends to `cache`.
-    fn run(&self, cache: &mut KvCache, tokens: &[u32], all: bool) -> Result<Vec<Vec<f32>>, EngineError> {
+    fn run(
+        &self,
+        cache: &mut KvCache,
+        tokens: &[u32],
+        all: bool,
+    ) -> Result<Vec<Vec<f32>>, EngineError> {
         let c = &self.cfg;
         let (m, pos0, eps) = (tokens.len(), cache.len, c.rms_eps);
         let shape = AttnShape {
@@ -469,7 +541,9 @@ impl Decoder {
             let mut a = l.gate.forward(&h, m)?;
             let u = l.up.forward(&h, m)?;
             let act = c.activation;
-            a.iter_mut().zip(&u).for_each(|(g, u)| *g = activate(act, *g) * u);
+            a.iter_mut()
+                .zip(&u)
+                .for_each(|(g, u)| *g = activate(act, *g) * u);
             let mut d = l.down.forward(&a, m)?;
             if let Some(w) = &l.post_ffn_norm {
                 d = rms_norm(&d, w, eps);

@@ -20,8 +20,8 @@ use std::sync::Arc;
 use candle_core::quantized::{GgmlDType, QMatMul, QStorage, QTensor};
 use candle_core::{DType, Device, Module, Tensor};
 
-use super::gguf::GgufFile;
 use super::decoder::Activation;
+use super::gguf::GgufFile;
 use super::EngineError;
 
 /// How weights are multiplied.
@@ -58,7 +58,9 @@ pub struct Linear {
 
 /// Whether candle's repacked int8 kernel takes this weight for several rows.
 fn packed_kernel(dtype: GgmlDType, n: usize, k: usize) -> bool {
-    k % 256 == 0 && n % 16 == 0 && matches!(dtype, GgmlDType::Q4K | GgmlDType::Q6K | GgmlDType::Q8_0)
+    k.is_multiple_of(256)
+        && n.is_multiple_of(16)
+        && matches!(dtype, GgmlDType::Q4K | GgmlDType::Q6K | GgmlDType::Q8_0)
 }
 
 /// Rewrite a Q4_0 / Q5_0 / Q8_0 weight as Q8_0 with rows zero-padded to a multiple of
@@ -77,7 +79,10 @@ fn requantise_q8_0(qt: &QTensor, n: usize, k: usize) -> candle_core::Result<(QTe
     let scales = Tensor::from_raw_buffer(&scale_bytes, DType::F16, &[blocks], &Device::Cpu)?
         .to_dtype(DType::F32)?
         .to_vec1::<f32>()?;
-    let values = qt.dequantize(&Device::Cpu)?.flatten_all()?.to_vec1::<f32>()?;
+    let values = qt
+        .dequantize(&Device::Cpu)?
+        .flatten_all()?
+        .to_vec1::<f32>()?;
     let mut out = Vec::with_capacity(n * k_pad / 32 * 34);
     for r in 0..n {
         for b in 0..k_pad / 32 {
@@ -113,23 +118,44 @@ impl Linear {
         if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0) && n % 16 == 0 {
             let (q8, k_pad) = requantise_q8_0(&qt, n, k)?;
             let quant = Some(QMatMul::QTensor(Arc::new(q8)));
-            return Ok(Linear { quant, dense: None, k_pad, vnni: false, n, k });
+            return Ok(Linear {
+                quant,
+                dense: None,
+                k_pad,
+                vnni: false,
+                n,
+                k,
+            });
         }
         let dense = Some(qt.dequantize_f16(&Device::Cpu)?);
-        Ok(Linear { dense, ..Self::quantised(QMatMul::QTensor(qt), n, k) })
+        Ok(Linear {
+            dense,
+            ..Self::quantised(QMatMul::QTensor(qt), n, k)
+        })
     }
 
     /// The enum variants are built directly, not through `QMatMul::from_arc`, so that
     /// candle's `CANDLE_DEQUANTIZE_ALL` variables cannot change the kernels chosen here.
     fn quantised(q: QMatMul, n: usize, k: usize) -> Self {
-        Linear { quant: Some(q), dense: None, k_pad: k, vnni: false, n, k }
+        Linear {
+            quant: Some(q),
+            dense: None,
+            k_pad: k,
+            vnni: false,
+            n,
+            k,
+        }
     }
 
     /// f32 dequantised weights and f32 matrix products: the numerics of
     /// `MatmulPolicy::Reference`.
     fn dense_f32(qt: &QTensor) -> candle_core::Result<Self> {
         let (n, k) = qt.shape().dims2()?;
-        Ok(Self::quantised(QMatMul::Tensor(qt.dequantize(&Device::Cpu)?), n, k))
+        Ok(Self::quantised(
+            QMatMul::Tensor(qt.dequantize(&Device::Cpu)?),
+            n,
+            k,
+        ))
     }
 
     /// Kernel for the output projection, which shares its table with the embedding and
@@ -147,7 +173,10 @@ impl Linear {
         if policy == MatmulPolicy::Reference {
             return Self::dense_f32(&qt);
         }
-        Ok(Linear { vnni, ..Self::quantised(QMatMul::QTensor(qt), n, k) })
+        Ok(Linear {
+            vnni,
+            ..Self::quantised(QMatMul::QTensor(qt), n, k)
+        })
     }
 
     /// Bytes held by this weight's own copies (candle's packed tiles not counted).
@@ -159,7 +188,10 @@ impl Linear {
             }
             None => 0,
         };
-        let d = self.dense.as_ref().map_or(0, |t| t.elem_count() * t.dtype().size_in_bytes());
+        let d = self
+            .dense
+            .as_ref()
+            .map_or(0, |t| t.elem_count() * t.dtype().size_in_bytes());
         q + d
     }
 
@@ -179,7 +211,10 @@ impl Linear {
             Tensor::from_slice(x, (m, self.k), &Device::Cpu)
         } else {
             let mut padded = vec![0f32; m * self.k_pad];
-            for (dst, src) in padded.chunks_exact_mut(self.k_pad).zip(x.chunks_exact(self.k)) {
+            for (dst, src) in padded
+                .chunks_exact_mut(self.k_pad)
+                .zip(x.chunks_exact(self.k))
+            {
                 dst[..self.k].copy_from_slice(src);
             }
             Tensor::from_vec(padded, (m, self.k_pad), &Device::Cpu)
@@ -215,7 +250,11 @@ impl Embedding {
     /// Wrap a `rows × hidden` table.
     pub fn new(table: Arc<QTensor>) -> candle_core::Result<Self> {
         let (rows, hidden) = table.shape().dims2()?;
-        Ok(Embedding { table, hidden, rows })
+        Ok(Embedding {
+            table,
+            hidden,
+            rows,
+        })
     }
 
     /// Bytes of the quantised table.
@@ -269,13 +308,20 @@ impl<'a> Loader<'a> {
             path: gguf.path.clone(),
             source,
         })?;
-        Ok(Loader { gguf, reader: BufReader::new(file) })
+        Ok(Loader {
+            gguf,
+            reader: BufReader::new(file),
+        })
     }
 
     pub(crate) fn err(&self, tensor: &str) -> impl FnOnce(candle_core::Error) -> EngineError {
         let path = self.gguf.path.clone();
         let tensor = tensor.to_string();
-        move |e| EngineError::Tensor { path, tensor, reason: e.to_string() }
+        move |e| EngineError::Tensor {
+            path,
+            tensor,
+            reason: e.to_string(),
+        }
     }
 
     pub(crate) fn has(&self, name: &str) -> bool {
@@ -290,7 +336,10 @@ impl<'a> Loader<'a> {
                 reason: "missing".into(),
             });
         }
-        let t = self.gguf.content.tensor(&mut self.reader, name, &Device::Cpu);
+        let t = self
+            .gguf
+            .content
+            .tensor(&mut self.reader, name, &Device::Cpu);
         Ok(Arc::new(t.map_err(self.err(name))?))
     }
 
@@ -311,11 +360,23 @@ impl<'a> Loader<'a> {
         Ok(v)
     }
 
-    pub(crate) fn optional(&mut self, name: &str, len: usize) -> Result<Option<Vec<f32>>, EngineError> {
-        if self.has(name) { self.vector(name, len).map(Some) } else { Ok(None) }
+    pub(crate) fn optional(
+        &mut self,
+        name: &str,
+        len: usize,
+    ) -> Result<Option<Vec<f32>>, EngineError> {
+        if self.has(name) {
+            self.vector(name, len).map(Some)
+        } else {
+            Ok(None)
+        }
     }
 
-    pub(crate) fn linear(&mut self, name: &str, policy: MatmulPolicy) -> Result<Linear, EngineError> {
+    pub(crate) fn linear(
+        &mut self,
+        name: &str,
+        policy: MatmulPolicy,
+    ) -> Result<Linear, EngineError> {
         let t = self.qtensor(name)?;
         Linear::new(t, policy).map_err(self.err(name))
     }
@@ -367,13 +428,23 @@ pub(crate) fn activate(act: Activation, x: f32) -> f32 {
 
 /// Inverse frequencies of rotary embeddings (Su et al. 2021): base^(-2i/d).
 pub(crate) fn rope_freqs(head_dim: usize, base: f32) -> Vec<f32> {
-    (0..head_dim).step_by(2).map(|i| 1.0 / base.powf(i as f32 / head_dim as f32)).collect()
+    (0..head_dim)
+        .step_by(2)
+        .map(|i| 1.0 / base.powf(i as f32 / head_dim as f32))
+        .collect()
 }
 
 /// Rotate every head of each `width`-wide row of `x` in place; row `r` sits at
 /// position `pos0 + r`. Interleaved pairs (2i, 2i+1) as in the original Llama layout,
 /// otherwise pairs (i, i + d/2) as in GPT-NeoX; angles in f32 as candle computes them.
-pub(crate) fn rope(x: &mut [f32], width: usize, d: usize, pos0: usize, freqs: &[f32], interleaved: bool) {
+pub(crate) fn rope(
+    x: &mut [f32],
+    width: usize,
+    d: usize,
+    pos0: usize,
+    freqs: &[f32],
+    interleaved: bool,
+) {
     let half = d / 2;
     let (mut cos, mut sin) = (vec![0f32; half], vec![0f32; half]);
     for (r, row) in x.chunks_exact_mut(width).enumerate() {
@@ -385,7 +456,11 @@ pub(crate) fn rope(x: &mut [f32], width: usize, d: usize, pos0: usize, freqs: &[
         }
         for head in row.chunks_exact_mut(d) {
             for i in 0..half {
-                let (a, b) = if interleaved { (2 * i, 2 * i + 1) } else { (i, i + half) };
+                let (a, b) = if interleaved {
+                    (2 * i, 2 * i + 1)
+                } else {
+                    (i, i + half)
+                };
                 let (x0, x1) = (head[a], head[b]);
                 head[a] = x0 * cos[i] - x1 * sin[i];
                 head[b] = x0 * sin[i] + x1 * cos[i];
@@ -461,7 +536,12 @@ pub(crate) fn attention(
 /// Dot product with eight independent lanes (vectorises; fixed order, deterministic).
 pub(crate) fn dot(a: &[f32], b: &[f32]) -> f32 {
     let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
-    let tail: f32 = ca.remainder().iter().zip(cb.remainder()).map(|(x, y)| x * y).sum();
+    let tail: f32 = ca
+        .remainder()
+        .iter()
+        .zip(cb.remainder())
+        .map(|(x, y)| x * y)
+        .sum();
     let mut acc = [0f32; 8];
     for (x, y) in ca.zip(cb) {
         for i in 0..8 {
@@ -509,7 +589,11 @@ pub(crate) mod q8_0_vnni {
 
     fn f16_round(v: f32) -> f32 {
         // SAFETY: `available()` checked F16C before any call reaches here.
-        unsafe { _mm_cvtss_f32(_mm_cvtph_ps(_mm_cvtps_ph::<_MM_FROUND_TO_NEAREST_INT>(_mm_set_ss(v)))) }
+        unsafe {
+            _mm_cvtss_f32(_mm_cvtph_ps(_mm_cvtps_ph::<_MM_FROUND_TO_NEAREST_INT>(
+                _mm_set_ss(v),
+            )))
+        }
     }
 
     /// `out[r] = Σ_k w[r, k] · x[k]` for all `n` rows of the Q8_0 bytes `w` (`k / 32`

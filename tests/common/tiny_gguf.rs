@@ -52,27 +52,57 @@ impl Tiny {
         let qwen = self.arch == "qwen2";
         // Gemma's width 320 is not a multiple of 256, like the 640 of Gemma 3 270M, so
         // its weights take candle's slow paths; the others use k-quants on width 256.
-        let (hidden, heads, kv_heads, head_dim, ffn) =
-            if gemma { (320, 2, 1, 128, 512) } else { (256, 4, 2, 64, 512) };
+        let (hidden, heads, kv_heads, head_dim, ffn) = if gemma {
+            (320, 2, 1, 128, 512)
+        } else {
+            (256, 4, 2, 64, 512)
+        };
         let (q_dim, kv_dim) = (heads * head_dim, kv_heads * head_dim);
         let a = &self.arch;
         let mut meta: Vec<(String, Value)> = vec![
             ("general.architecture".into(), Value::String(a.clone())),
-            (format!("{a}.context_length"), Value::U32(self.context_length)),
+            (
+                format!("{a}.context_length"),
+                Value::U32(self.context_length),
+            ),
             (format!("{a}.embedding_length"), Value::U32(hidden as u32)),
             (format!("{a}.feed_forward_length"), Value::U32(ffn as u32)),
             (format!("{a}.block_count"), Value::U32(self.layers as u32)),
-            (format!("{a}.attention.head_count"), Value::U32(heads as u32)),
-            (format!("{a}.attention.head_count_kv"), Value::U32(kv_heads as u32)),
-            (format!("{a}.attention.layer_norm_rms_epsilon"), Value::F32(1e-6)),
-            (format!("{a}.rope.freq_base"), Value::F32(if gemma { 1e6 } else { 1e4 })),
-            (format!("{a}.rope.dimension_count"), Value::U32(head_dim as u32)),
+            (
+                format!("{a}.attention.head_count"),
+                Value::U32(heads as u32),
+            ),
+            (
+                format!("{a}.attention.head_count_kv"),
+                Value::U32(kv_heads as u32),
+            ),
+            (
+                format!("{a}.attention.layer_norm_rms_epsilon"),
+                Value::F32(1e-6),
+            ),
+            (
+                format!("{a}.rope.freq_base"),
+                Value::F32(if gemma { 1e6 } else { 1e4 }),
+            ),
+            (
+                format!("{a}.rope.dimension_count"),
+                Value::U32(head_dim as u32),
+            ),
         ];
         if gemma {
             meta.extend([
-                (format!("{a}.attention.key_length"), Value::U32(head_dim as u32)),
-                (format!("{a}.attention.value_length"), Value::U32(head_dim as u32)),
-                (format!("{a}.attention.sliding_window"), Value::U32(self.sliding_window)),
+                (
+                    format!("{a}.attention.key_length"),
+                    Value::U32(head_dim as u32),
+                ),
+                (
+                    format!("{a}.attention.value_length"),
+                    Value::U32(head_dim as u32),
+                ),
+                (
+                    format!("{a}.attention.sliding_window"),
+                    Value::U32(self.sliding_window),
+                ),
                 (
                     format!("{a}.attention.sliding_window_type"),
                     Value::U32(self.sliding_window_type),
@@ -83,13 +113,17 @@ impl Tiny {
         let mut tensors: Vec<(String, QTensor)> = Vec::new();
         let mut add = |name: String, n: usize, k: usize, dtype: D, rng: &mut ChaCha8Rng| {
             let amp = 1.0 / (k as f32).sqrt();
-            let data: Vec<f32> = (0..n * k).map(|_| rng.random_range(-amp..amp) * 1.7).collect();
+            let data: Vec<f32> = (0..n * k)
+                .map(|_| rng.random_range(-amp..amp) * 1.7)
+                .collect();
             let t = Tensor::from_vec(data, (n, k), &Device::Cpu).expect("tensor");
             let q = QTensor::quantize(&t, dtype).expect("quantize");
             tensors.push((name, q));
         };
         let norm = |n: usize, rng: &mut ChaCha8Rng| -> QTensor {
-            let data: Vec<f32> = (0..n).map(|_| 1.0 + rng.random_range(-0.2..0.2f32)).collect();
+            let data: Vec<f32> = (0..n)
+                .map(|_| 1.0 + rng.random_range(-0.2..0.2f32))
+                .collect();
             let t = Tensor::from_vec(data, n, &Device::Cpu).expect("tensor");
             QTensor::quantize(&t, D::F32).expect("f32")
         };
@@ -98,7 +132,8 @@ impl Tiny {
         if qwen {
             add("output.weight".into(), VOCAB, hidden, D::Q6K, &mut rng);
         }
-        let mut norms: Vec<(String, QTensor)> = vec![("output_norm.weight".into(), norm(hidden, &mut rng))];
+        let mut norms: Vec<(String, QTensor)> =
+            vec![("output_norm.weight".into(), norm(hidden, &mut rng))];
         for i in 0..self.layers {
             let p = |s: &str| format!("blk.{i}.{s}");
             let (tq, tk, tv, to, tg, tu, td) = match (gemma, qwen) {
@@ -116,7 +151,11 @@ impl Tiny {
             norms.push((p("attn_norm.weight"), norm(hidden, &mut rng)));
             norms.push((p("ffn_norm.weight"), norm(hidden, &mut rng)));
             if qwen {
-                for (name, n) in [("attn_q.bias", q_dim), ("attn_k.bias", kv_dim), ("attn_v.bias", kv_dim)] {
+                for (name, n) in [
+                    ("attn_q.bias", q_dim),
+                    ("attn_k.bias", kv_dim),
+                    ("attn_v.bias", kv_dim),
+                ] {
                     let data: Vec<f32> = (0..n).map(|_| rng.random_range(-0.5..0.5f32)).collect();
                     let t = Tensor::from_vec(data, n, &Device::Cpu).expect("tensor");
                     norms.push((p(name), QTensor::quantize(&t, D::F32).expect("f32")));
@@ -131,7 +170,8 @@ impl Tiny {
         }
         tensors.extend(norms);
         let meta_refs: Vec<(&str, &Value)> = meta.iter().map(|(k, v)| (k.as_str(), v)).collect();
-        let tensor_refs: Vec<(&str, &QTensor)> = tensors.iter().map(|(k, t)| (k.as_str(), t)).collect();
+        let tensor_refs: Vec<(&str, &QTensor)> =
+            tensors.iter().map(|(k, t)| (k.as_str(), t)).collect();
         let mut file = std::fs::File::create(&path).expect("create tiny gguf");
         gguf_file::write(&mut file, &meta_refs, &tensor_refs).expect("write tiny gguf");
         path

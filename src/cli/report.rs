@@ -1,0 +1,211 @@
+//! `assize report`: render finished run folders as a report people read: one HTML
+//! page (self-contained, offline, printable), a Markdown summary for a pull-request
+//! comment, and a versioned JSON document. Input: grading run folders (the first is
+//! the baseline), optionally a comparison run, human labels and preferences, the
+//! rubric and the answers. Never runs the model and never computes a statistic
+//! itself; `report` assembles what `judge`, `vet`, `probes` and `stats` compute.
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::time::{SystemTime, UNIX_EPOCH};
+
+use anyhow::Context as _;
+use clap::Args;
+
+use super::errors::usage;
+use crate::data::{read_answers, read_labels, read_preferences};
+use crate::judge::{GradeRecord, PairRecord};
+use crate::report::{self, CompareInput, Inputs, Report, RunInput};
+use crate::rubric::load_rubric;
+use crate::store::{read_records, Manifest, MANIFEST};
+
+/// Arguments of `assize report`.
+///
+/// With no output flag the Markdown summary goes to stdout. Set `SOURCE_DATE_EPOCH`
+/// (seconds) to stamp the report with that time instead of the clock, for
+/// byte-identical reports.
+#[derive(Debug, Clone, Args)]
+pub struct ReportArgs {
+    /// Grading run folder; repeat to show runs side by side, the first being the baseline ("before")
+    #[arg(long, short = 'g', value_name = "DIR", required = true)]
+    pub grades: Vec<PathBuf>,
+    /// Comparison run folder (holds `pairs.jsonl`): position bias and ranking
+    #[arg(long, value_name = "DIR")]
+    pub compare: Option<PathBuf>,
+    /// Human labels in long form, to vet the judge (trust verdicts, confusion, calibration)
+    #[arg(long, short = 'l', value_name = "FILE")]
+    pub labels: Option<PathBuf>,
+    /// Human pairwise preferences, to check the comparison run's verdicts
+    #[arg(long, value_name = "FILE", requires = "compare")]
+    pub preferences: Option<PathBuf>,
+    /// Rubric the runs were graded with
+    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    pub rubric: PathBuf,
+    /// Answers file: texts of flagged items and answer lengths for the length probe
+    #[arg(long, short = 'a', value_name = "FILE")]
+    pub answers: Option<PathBuf>,
+    /// Write the HTML report (one self-contained file) here
+    #[arg(long, value_name = "FILE")]
+    pub html: Option<PathBuf>,
+    /// Write the Markdown summary here
+    #[arg(long, value_name = "FILE")]
+    pub markdown: Option<PathBuf>,
+    /// Write the JSON report (schema `assize.report/1`) here
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Seed of every random draw (bootstrap intervals)
+    #[arg(long, value_name = "N", default_value_t = 7)]
+    pub seed: u64,
+    /// Bootstrap resamples per interval
+    #[arg(long, value_name = "N", default_value_t = 1000)]
+    pub resamples: usize,
+}
+
+fn manifest_model(dir: &Path) -> String {
+    std::fs::read_to_string(dir.join(MANIFEST))
+        .ok()
+        .and_then(|t| serde_json::from_str::<Manifest>(&t).ok())
+        .map(|m| m.model_path)
+        .unwrap_or_default()
+}
+
+fn results_file(dir: &Path, file: &str, producer: &str) -> anyhow::Result<PathBuf> {
+    let path = dir.join(file);
+    if !path.exists() {
+        return Err(usage(
+            format!("`{}` holds no `{file}`", dir.display()),
+            format!("pass the run folder that `assize {producer}` printed"),
+        ));
+    }
+    Ok(path)
+}
+
+/// Display names of the runs: folder names, numbered when two are equal.
+fn run_names(dirs: &[PathBuf]) -> Vec<String> {
+    let base: Vec<String> = dirs
+        .iter()
+        .map(|d| d.file_name().map_or_else(|| d.display().to_string(), |n| n.to_string_lossy().into_owned()))
+        .collect();
+    base.iter()
+        .enumerate()
+        .map(|(i, n)| if base.iter().filter(|m| *m == n).count() > 1 { format!("{n} ({})", i + 1) } else { n.clone() })
+        .collect()
+}
+
+/// Days since 1970-01-01 to a civil date (Hinnant 2013, "chrono-compatible low-level date algorithms").
+fn civil_from_days(z: i64) -> (i64, u32, u32) {
+    let z = z + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z.rem_euclid(146_097);
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = (doy - (153 * mp + 2) / 5 + 1) as u32;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 } as u32;
+    (yoe + era * 400 + i64::from(m <= 2), m, d)
+}
+
+/// Seconds since the epoch as RFC 3339 UTC.
+pub fn rfc3339(secs: i64) -> String {
+    let (y, m, d) = civil_from_days(secs.div_euclid(86_400));
+    let s = secs.rem_euclid(86_400);
+    format!("{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z", s / 3600, s / 60 % 60, s % 60)
+}
+
+fn now() -> String {
+    let secs = std::env::var("SOURCE_DATE_EPOCH")
+        .ok()
+        .and_then(|v| v.trim().parse::<i64>().ok())
+        .unwrap_or_else(|| SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64));
+    rfc3339(secs)
+}
+
+/// Load every input and assemble the report.
+pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
+    let rubric = load_rubric(&args.rubric)?;
+    let names = run_names(&args.grades);
+    let mut runs = Vec::new();
+    for (dir, name) in args.grades.iter().zip(names) {
+        let path = results_file(dir, super::grade::GRADES_FILE, "grade")?;
+        let records: Vec<GradeRecord> = read_records(&path)?;
+        runs.push(RunInput { name, dir: dir.display().to_string(), model: manifest_model(dir), records });
+    }
+    let compare = match &args.compare {
+        Some(dir) => {
+            let path = results_file(dir, super::compare::PAIRS_FILE, "compare")?;
+            let records: Vec<PairRecord> = read_records(&path)?;
+            Some(CompareInput { dir: dir.display().to_string(), model: manifest_model(dir), records })
+        }
+        None => None,
+    };
+    let labels = args.labels.as_deref().map(read_labels).transpose()?;
+    let preferences = args.preferences.as_deref().map(read_preferences).transpose()?;
+    let answers = args.answers.as_deref().map(read_answers).transpose()?;
+    if args.resamples == 0 {
+        return Err(usage("`--resamples 0` leaves no bootstrap resample", "use `--resamples 1000` or more"));
+    }
+    let inputs = Inputs {
+        runs: &runs,
+        compare: compare.as_ref(),
+        labels: labels.as_deref(),
+        preferences: preferences.as_deref(),
+        rubric: &rubric,
+        answers: answers.as_deref(),
+        seed: args.seed,
+        resamples: args.resamples,
+    };
+    let mut r = report::build(&inputs).map_err(|e| match e {
+        report::ReportError::UnknownCriterion { .. } => {
+            let what = e.to_string();
+            usage(what, "pass the rubric the run was graded with (`--rubric`)")
+        }
+        other => anyhow::Error::new(other),
+    })?;
+    r.generated_at = now();
+    Ok(r)
+}
+
+fn write(path: &Path, text: &str, what: &str) -> anyhow::Result<()> {
+    std::fs::write(path, text).with_context(|| format!("cannot write the {what} report `{}`", path.display()))?;
+    eprintln!("wrote {what} report `{}`", path.display());
+    Ok(())
+}
+
+/// Run `assize report`.
+pub fn run(args: ReportArgs) -> anyhow::Result<ExitCode> {
+    let r = build_report(&args)?;
+    if let Some(p) = &args.html {
+        write(p, &report::html::render(&r)?, "HTML")?;
+    }
+    if let Some(p) = &args.json {
+        write(p, &report::json::render(&r), "JSON")?;
+    }
+    if let Some(p) = &args.markdown {
+        write(p, &report::markdown::render(&r), "Markdown")?;
+    }
+    if args.html.is_none() && args.json.is_none() && args.markdown.is_none() {
+        print!("{}", report::markdown::render(&r));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Hinnant (2013) civil calendar: 0 s is 1970-01-01T00:00:00Z; 951782400 s is the
+    /// leap day 2000-02-29 (a well-known Unix timestamp); one second before 2000 ends
+    /// the 1990s.
+    #[test]
+    fn epoch_seconds_format_as_utc_dates() {
+        assert_eq!(rfc3339(0), "1970-01-01T00:00:00Z");
+        assert_eq!(rfc3339(951_782_400), "2000-02-29T00:00:00Z");
+        assert_eq!(rfc3339(946_684_799), "1999-12-31T23:59:59Z");
+    }
+
+    #[test]
+    fn equal_folder_names_are_numbered() {
+        let n = run_names(&[PathBuf::from("a/run"), PathBuf::from("b/run"), PathBuf::from("c/other")]);
+        assert_eq!(n, vec!["run (1)", "run (2)", "other"]);
+    }
+}

@@ -1,0 +1,367 @@
+//! Report stage, assembly: turns loaded runs, labels and preferences into a `Report`.
+//! Input: `Inputs`. Output: `Report` with `generated_at` left empty for the caller.
+//! Never re-implements a statistic: summaries come from `judge::grade::summarize`,
+//! trust and calibration from `vet`, pairwise figures from `probes` and
+//! `stats::pairwise`, intervals from `stats::bootstrap`.
+
+use std::collections::{BTreeMap, BTreeSet, HashMap};
+
+use super::*;
+use crate::judge::anchors::consensus_index;
+use crate::judge::grade::summarize;
+use crate::probes::length::length_probe;
+use crate::probes::pair_outcomes;
+use crate::probes::ranking::rank;
+use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
+use crate::stats::pairwise::position_bias;
+use crate::vet::{vet, vet_pairs, CriterionReport, Variant, VariantKind, VetError, VetOptions};
+
+fn stats_err<E: std::error::Error + Send + Sync + 'static>(what: impl Into<String>) -> impl FnOnce(E) -> ReportError {
+    let what = what.into();
+    move |e| ReportError::Stats { what, source: Box::new(e) }
+}
+
+/// Assemble the report (everything but `generated_at`).
+pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
+    if inp.runs.is_empty() {
+        return Err(ReportError::NoRuns);
+    }
+    let mut graded: BTreeSet<&str> = BTreeSet::new();
+    for run in inp.runs {
+        if run.records.is_empty() {
+            return Err(ReportError::EmptyRun { run: run.name.clone() });
+        }
+        for r in &run.records {
+            if inp.rubric.criterion(&r.criterion).is_none() {
+                return Err(ReportError::UnknownCriterion {
+                    run: run.name.clone(),
+                    criterion: r.criterion.clone(),
+                    rubric: inp.rubric.name.clone(),
+                });
+            }
+            graded.insert(&r.criterion);
+        }
+    }
+    let criteria: Vec<CriterionInfo> = inp
+        .rubric
+        .criteria
+        .iter()
+        .filter(|c| graded.contains(c.key.as_str()))
+        .map(|c| CriterionInfo {
+            key: c.key.clone(),
+            title: c.title.clone(),
+            labels: c.scale.labels(),
+            values: c.scale.values(),
+        })
+        .collect();
+    let opts = VetOptions { resamples: inp.resamples, seed: inp.seed, ..VetOptions::default() };
+    let mut runs = Vec::new();
+    for (i, run) in inp.runs.iter().enumerate() {
+        runs.push(run_section(inp, run, i, &criteria, &opts)?);
+    }
+    let deltas = deltas(inp)?;
+    let pairwise = match inp.compare {
+        Some(c) => Some(pairwise(inp, c, &opts)?),
+        None => None,
+    };
+    let flagged = flagged(inp);
+    let mut report = Report {
+        schema: SCHEMA.to_string(),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        generated_at: String::new(),
+        rubric: inp.rubric.name.clone(),
+        seed: inp.seed,
+        resamples: inp.resamples,
+        criteria,
+        cautions: Vec::new(),
+        runs,
+        deltas,
+        pairwise,
+        flagged,
+    };
+    report.cautions = super::cautions::collect(&report, inp.labels.is_some());
+    Ok(report)
+}
+
+fn run_section(
+    inp: &Inputs,
+    run: &RunInput,
+    index: usize,
+    criteria: &[CriterionInfo],
+    opts: &VetOptions,
+) -> Result<RunSection, ReportError> {
+    let summary = summarize(&run.records, inp.seed).map_err(stats_err(format!("the summary of run `{}`", run.name)))?;
+    let mut distributions = Vec::new();
+    for row in &summary {
+        let k = criteria.iter().find(|c| c.key == row.criterion).map_or(0, |c| c.labels.len());
+        let rows: Vec<&Vec<f64>> = run
+            .records
+            .iter()
+            .filter(|r| r.system == row.system && r.criterion == row.criterion && r.probabilities.len() == k)
+            .map(|r| &r.probabilities)
+            .collect();
+        let mut mean = vec![0.0; k];
+        for p in &rows {
+            for (m, v) in mean.iter_mut().zip(p.iter()) {
+                *m += v / rows.len() as f64;
+            }
+        }
+        distributions.push(Distribution {
+            system: row.system.clone(),
+            criterion: row.criterion.clone(),
+            n: rows.len(),
+            mean_probabilities: mean,
+        });
+    }
+    let (mut trust, mut unvetted, mut vet_note) = (Vec::new(), Vec::new(), None);
+    if let Some(labels) = inp.labels {
+        let variants = [Variant { name: "expected score".into(), records: &run.records, kind: VariantKind::ExpectedScore }];
+        match vet(&variants, labels, inp.rubric, opts) {
+            Ok(v) => {
+                trust = v.criteria.iter().map(trust_row).collect();
+                let own: BTreeSet<&str> = run.records.iter().map(|r| r.criterion.as_str()).collect();
+                unvetted = v
+                    .skipped
+                    .iter()
+                    .filter(|s| own.contains(s.criterion.as_str()))
+                    .map(|s| Unvetted { criterion: s.criterion.clone(), reason: s.reason.clone() })
+                    .collect();
+            }
+            Err(e @ (VetError::NothingToVet { .. } | VetError::NoOverlap { .. })) => vet_note = Some(e.to_string()),
+            Err(e) => return Err(stats_err(format!("the vetting of run `{}`", run.name))(e)),
+        }
+    }
+    Ok(RunSection {
+        name: run.name.clone(),
+        role: match (index, inp.runs.len()) {
+            (_, 1) => "only",
+            (0, _) => "baseline",
+            _ => "after",
+        }
+        .to_string(),
+        dir: run.dir.clone(),
+        model: run.model.clone(),
+        records: run.records.len(),
+        low_mass: run.records.iter().filter(|r| r.low_mass).count(),
+        summary,
+        distributions,
+        trust,
+        unvetted,
+        vet_note,
+    })
+}
+
+fn trust_row(c: &CriterionReport) -> TrustRow {
+    let t = &c.trust;
+    let cat = c.variants.first().and_then(|v| v.categorical.as_ref());
+    TrustRow {
+        criterion: c.criterion.clone(),
+        verdict: t.verdict.as_str().to_string(),
+        reason: t.reason.clone(),
+        thin_evidence: t.thin_evidence,
+        n_items: t.n_items,
+        raters: c.raters.len(),
+        judge_kappa: t.judge_kappa_quadratic,
+        human_kappa: t.human_kappa_quadratic,
+        gap: t.difference.percentile.as_ref().map(|i| Gap { estimate: i.estimate, low: i.lower, high: i.upper }),
+        recommended_items: t.advice.as_ref().map(|a| a.recommended),
+        exact: cat.map(|k| k.exact),
+        confusion: cat.map(|k| k.confusion.clone()).unwrap_or_default(),
+        calibration: c.calibration.first().map(|k| Calibration {
+            n_items: k.n_items,
+            accuracy: k.accuracy,
+            mean_confidence: k.mean_confidence,
+            ece: k.ece_equal_width,
+            bins: k.reliability.clone(),
+        }),
+        warnings: t.warnings.clone(),
+    }
+}
+
+/// Expected score per (system, criterion) and question.
+fn by_item(records: &[GradeRecord]) -> BTreeMap<(String, String), BTreeMap<String, f64>> {
+    let mut m: BTreeMap<(String, String), BTreeMap<String, f64>> = BTreeMap::new();
+    for r in records {
+        m.entry((r.system.clone(), r.criterion.clone())).or_default().insert(r.question_id.clone(), r.expected);
+    }
+    m
+}
+
+/// Each later run against the baseline: paired percentile bootstrap over shared
+/// items of the mean difference (Efron & Tibshirani 1993, ch. 13).
+fn deltas(inp: &Inputs) -> Result<Vec<DeltaRow>, ReportError> {
+    let base = &inp.runs[0];
+    let before = by_item(&base.records);
+    let mut out = Vec::new();
+    for run in &inp.runs[1..] {
+        for ((system, criterion), after) in by_item(&run.records) {
+            let Some(b) = before.get(&(system.clone(), criterion.clone())) else { continue };
+            let pairs: Vec<(f64, f64)> = after.iter().filter_map(|(q, a)| Some((b.get(q).copied()?, *a))).collect();
+            if pairs.is_empty() {
+                continue;
+            }
+            let n = pairs.len();
+            let diffs: Vec<f64> = pairs.iter().map(|(b, a)| a - b).collect();
+            let mean = |idx: &[usize]| Some(idx.iter().map(|&i| diffs[i]).sum::<f64>() / idx.len() as f64);
+            let ci = if n >= 2 {
+                let i = bootstrap_interval(n, inp.resamples, inp.seed, 0.95, IntervalMethod::Percentile, mean)
+                    .map_err(stats_err(format!("the difference of `{system}` on `{criterion}`")))?;
+                Some((i.lower, i.upper))
+            } else {
+                None
+            };
+            let difference = diffs.iter().sum::<f64>() / n as f64;
+            let beyond_ci = ci.is_some_and(|(lo, hi)| lo > 0.0 || hi < 0.0);
+            let reading = match ci {
+                None => "too few shared items for an interval".to_string(),
+                Some(_) if beyond_ci && difference > 0.0 => "higher; the 95% interval excludes 0".to_string(),
+                Some(_) if beyond_ci => "lower; the 95% interval excludes 0".to_string(),
+                Some(_) => "no clear change; the 95% interval includes 0".to_string(),
+            };
+            out.push(DeltaRow {
+                before: pairs.iter().map(|p| p.0).sum::<f64>() / n as f64,
+                after: pairs.iter().map(|p| p.1).sum::<f64>() / n as f64,
+                system,
+                criterion,
+                baseline: base.name.clone(),
+                run: run.name.clone(),
+                n_items: n,
+                difference,
+                ci,
+                beyond_ci,
+                reading,
+            });
+        }
+    }
+    Ok(out)
+}
+
+fn pairwise(inp: &Inputs, c: &CompareInput, opts: &VetOptions) -> Result<PairwiseSection, ReportError> {
+    let criteria: BTreeSet<&str> = c.records.iter().map(|r| r.criterion.as_str()).collect();
+    let criterion = criteria.iter().next().map_or_else(|| "overall".to_string(), |s| s.to_string());
+    let mut notes = Vec::new();
+    if criteria.len() > 1 {
+        notes.push(format!("the comparison run holds several criteria; only `{criterion}` is shown"));
+    }
+    let records: Vec<PairRecord> = c.records.iter().filter(|r| r.criterion == criterion).cloned().collect();
+    let outcomes = pair_outcomes(&records).map_err(stats_err("the pair outcomes"))?;
+    let judged: Vec<_> = outcomes.iter().map(|o| o.judged()).collect();
+    let position = if judged.is_empty() {
+        None
+    } else {
+        let p = position_bias(&judged).map_err(stats_err("the position bias"))?;
+        Some(Position {
+            n_pairs: p.n_pairs,
+            consistency: p.positional_consistency,
+            first_slot_win_rate: p.first_slot_win_rate,
+            first_slot_ci: p.first_slot_win_rate_ci,
+            p_value: p.first_slot_p_value,
+            caution: p.caution,
+            verdict_line: p.verdict_line,
+        })
+    };
+    let (ranking, ranking_note) = match rank(&outcomes, inp.resamples, inp.seed) {
+        Ok(r) => (Some(r), None),
+        Err(e) => (None, Some(format!("no ranking: {e}"))),
+    };
+    let length = inp.answers.map(|a| length_probe(&outcomes, a)).unwrap_or_default();
+    if inp.answers.is_none() {
+        notes.push("no answers file given: no length probe".into());
+    }
+    let (mut human, mut human_pairs) = (Vec::new(), 0);
+    if let Some(prefs) = inp.preferences {
+        match vet_pairs(&records, prefs, opts) {
+            Ok(v) => {
+                if let Some(k) = v.criteria.iter().find(|k| k.criterion == criterion) {
+                    human_pairs = k.n_pairs;
+                    human = k
+                        .methods
+                        .iter()
+                        .map(|m| HumanAgreement {
+                            method: m.method.clone(),
+                            accuracy: m.accuracy,
+                            accuracy_ci: m.accuracy_ci.as_ref().map(|i| (i.lower, i.upper)),
+                            kappa: m.kappa,
+                        })
+                        .collect();
+                }
+            }
+            Err(e @ VetError::NoPairOverlap { .. }) => notes.push(e.to_string()),
+            Err(e) => return Err(stats_err("the pairwise vetting")(e)),
+        }
+    }
+    Ok(PairwiseSection {
+        dir: c.dir.clone(),
+        model: c.model.clone(),
+        criterion,
+        pairs: outcomes.len(),
+        low_mass: records.iter().filter(|r| r.captured_mass < PAIR_LOW_MASS).count(),
+        position,
+        ranking,
+        ranking_note,
+        length,
+        human,
+        human_pairs,
+        notes,
+    })
+}
+
+/// Grades with low captured mass, and grades whose expected score is at least
+/// [`DISPUTE_POINTS`] from the human consensus (lower median, as in `vet`).
+fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
+    let mut labels: HashMap<(&str, &str, &str), Vec<HumanScore>> = HashMap::new();
+    for l in inp.labels.unwrap_or_default() {
+        labels
+            .entry((&l.question_id, &l.system, &l.criterion))
+            .or_default()
+            .push(HumanScore { rater: l.rater.clone(), score: l.score.clone() });
+    }
+    let answers: HashMap<(&str, &str), &AnswerRecord> = inp
+        .answers
+        .unwrap_or_default()
+        .iter()
+        .map(|a| ((a.question_id.as_str(), a.system.as_str()), a))
+        .collect();
+    let mut out = Vec::new();
+    for run in inp.runs {
+        let mut records: Vec<&GradeRecord> = run.records.iter().collect();
+        records.sort_by_key(|r| (r.question_id.clone(), r.system.clone(), r.criterion.clone()));
+        for r in records {
+            let Some(c) = inp.rubric.criterion(&r.criterion) else { continue };
+            let mut human = labels.get(&(r.question_id.as_str(), r.system.as_str(), r.criterion.as_str())).cloned().unwrap_or_default();
+            human.sort_by(|a, b| a.rater.cmp(&b.rater));
+            let positions: Vec<usize> = human.iter().filter_map(|h| c.scale.index_of(&h.score)).collect();
+            let consensus = consensus_index(&positions);
+            let mut reasons = Vec::new();
+            if r.low_mass {
+                reasons.push("low_mass".to_string());
+            }
+            if let Some(i) = consensus {
+                if (r.expected - c.scale.values()[i]).abs() >= DISPUTE_POINTS - 1e-9 {
+                    reasons.push("disputed".to_string());
+                }
+            }
+            if reasons.is_empty() {
+                continue;
+            }
+            let answer = answers.get(&(r.question_id.as_str(), r.system.as_str()));
+            out.push(FlaggedItem {
+                run: run.name.clone(),
+                question_id: r.question_id.clone(),
+                system: r.system.clone(),
+                criterion: r.criterion.clone(),
+                reasons,
+                expected: r.expected,
+                argmax: r.argmax.clone(),
+                captured_mass: r.captured_mass,
+                probabilities: r.probabilities.clone(),
+                human_consensus: consensus.map(|i| c.scale.labels()[i].clone()),
+                human_scores: human,
+                rationale: r.rationale.clone(),
+                question: answer.map(|a| a.question.clone()),
+                answer: answer.map(|a| a.answer.clone()),
+            });
+        }
+    }
+    out
+}

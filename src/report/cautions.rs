@@ -1,0 +1,149 @@
+//! Report stage, cautions: where the numbers of a report could mislead, said in plain
+//! words for the top of every format. Input: an assembled `Report`. Output: the
+//! `Caution` list, most serious kinds first. Never softens a finding: every "no" and
+//! "cannot tell yet" verdict, every thin "yes" and every low-mass grade is named.
+
+use super::{Caution, CautionKind, Report, RunSection};
+
+fn list(keys: &[String]) -> String {
+    keys.iter().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
+}
+
+fn run_prefix(r: &Report, run: &RunSection) -> String {
+    if r.runs.len() > 1 {
+        format!("run `{}`: ", run.name)
+    } else {
+        String::new()
+    }
+}
+
+fn criteria_where(run: &RunSection, pick: impl Fn(&super::TrustRow) -> bool) -> Vec<String> {
+    run.trust.iter().filter(|t| pick(t)).map(|t| t.criterion.clone()).collect()
+}
+
+/// Every caution that applies to the report.
+pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
+    let mut out = Vec::new();
+    let mut add = |kind, message: String| out.push(Caution { kind, message });
+    if !have_labels {
+        add(
+            CautionKind::NoLabels,
+            "no human labels were given, so nothing here shows that the judge agrees with people; its scores are unvetted (pass `--labels` to vet it)".into(),
+        );
+    }
+    for run in &r.runs {
+        let p = run_prefix(r, run);
+        let no = criteria_where(run, |t| t.verdict == "no");
+        if !no.is_empty() {
+            add(
+                CautionKind::BelowHumanCeiling,
+                format!("{p}the judge agrees with humans clearly less than humans agree with each other on {}; do not use its scores there in place of human ratings", list(&no)),
+            );
+        }
+        let unsure = criteria_where(run, |t| t.verdict == "cannot tell yet");
+        if !unsure.is_empty() {
+            add(
+                CautionKind::CannotTellYet,
+                format!("{p}the labelled sample cannot tell yet whether the judge is as good as a typical rater on {}; treat those scores as unconfirmed", list(&unsure)),
+            );
+        }
+        let thin = criteria_where(run, |t| t.verdict == "yes" && t.thin_evidence);
+        if !thin.is_empty() {
+            add(
+                CautionKind::ThinEvidence,
+                format!("{p}the judge is deemed trustworthy on {} on thin evidence (few labelled items or a wide interval); the \"yes\" could change with more labels", list(&thin)),
+            );
+        }
+        let small: Vec<String> = run
+            .trust
+            .iter()
+            .filter(|t| t.recommended_items.is_some_and(|n| n > t.n_items))
+            .map(|t| format!("`{}` ({} of about {})", t.criterion, t.n_items, t.recommended_items.unwrap_or(0)))
+            .collect();
+        if !small.is_empty() {
+            add(
+                CautionKind::SmallLabelledSample,
+                format!("{p}small labelled sample: {} labelled items against what a kappa interval of ±0.15 needs; every trust verdict here is provisional", small.join(", ")),
+            );
+        }
+        if run.low_mass > 0 {
+            add(
+                CautionKind::LowCapturedMass,
+                format!(
+                    "{p}{} of {} grades have low captured mass: the judge put most of its probability outside the scale labels, so those scores mean little (they are kept in the means and listed under flagged items)",
+                    run.low_mass, run.records
+                ),
+            );
+        }
+        if let Some(note) = &run.vet_note {
+            add(CautionKind::NoLabels, format!("{p}not vetted: {note}"));
+        }
+        let unvetted: Vec<String> = run
+            .unvetted
+            .iter()
+            .filter(|u| u.reason.contains("no human labels"))
+            .map(|u| u.criterion.clone())
+            .collect();
+        if !unvetted.is_empty() {
+            add(
+                CautionKind::Unvetted,
+                format!("{p}{} {} no human labels, so {} scores are unvetted", list(&unvetted), if unvetted.len() == 1 { "has" } else { "have" }, if unvetted.len() == 1 { "its" } else { "their" }),
+            );
+        }
+    }
+    if let Some(pw) = &r.pairwise {
+        if pw.low_mass > 0 {
+            add(
+                CautionKind::LowCapturedMass,
+                format!("in {} of {} pairwise verdicts the judge put under half its probability on the verdict labels; those verdicts are unreliable", pw.low_mass, 2 * pw.pairs),
+            );
+        }
+        if let Some(p) = pw.position.as_ref().filter(|p| p.caution) {
+            add(
+                CautionKind::PositionBias,
+                format!("strong position bias: {}; a verdict from one answer order would mislead, so the ranking averages both orders", p.verdict_line),
+            );
+        }
+        if let Some(k) = &pw.ranking {
+            let overlaps: Vec<String> = k
+                .rows
+                .windows(2)
+                .filter(|w| w[1].rating_high >= w[0].rating_low)
+                .map(|w| format!("`{}` and `{}`", w[0].system, w[1].system))
+                .collect();
+            if !overlaps.is_empty() {
+                add(
+                    CautionKind::RankingOverlap,
+                    format!("the ranking intervals of {} overlap: their order is not settled by this sample", overlaps.join("; ")),
+                );
+            }
+        }
+    }
+    if r.runs.len() > 1 {
+        for run in &r.runs[1..] {
+            let base = &r.runs[0];
+            let shared: usize = r.deltas.iter().filter(|d| d.run == run.name).map(|d| d.n_items).sum();
+            let (a, b) = (graded_items(base), graded_items(run));
+            if shared < a.max(b) {
+                add(
+                    CautionKind::BeforeAfter,
+                    format!("run `{}` and the baseline `{}` share {shared} graded items of {} and {}; differences use only the shared ones", run.name, base.name, b, a),
+                );
+            }
+            let rows: Vec<_> = r.deltas.iter().filter(|d| d.run == run.name).collect();
+            if !rows.is_empty() && rows.iter().all(|d| !d.beyond_ci) {
+                add(
+                    CautionKind::BeforeAfter,
+                    format!("no difference between `{}` and `{}` exceeds its 95% interval: read the changes as noise", base.name, run.name),
+                );
+            }
+        }
+    }
+    out.sort_by_key(|c| c.kind as u8);
+    out
+}
+
+/// Graded (system, criterion, item) triples of a run, from its summary counts.
+fn graded_items(run: &RunSection) -> usize {
+    run.summary.iter().map(|s| s.n).sum()
+}

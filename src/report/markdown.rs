@@ -1,0 +1,249 @@
+//! Report stage, Markdown writer: a compact summary fit for a pull-request comment
+//! (cautions first, a headline table per system and criterion, trust verdicts,
+//! before/after differences, the pairwise ranking and a count of flagged items).
+//! Input: a `Report`. Output: Markdown text. Never computes a number: it only formats
+//! what the report holds, and never drops a caution.
+
+use std::fmt::Write;
+
+use super::{Report, RunSection};
+
+/// How many flagged items the summary lists by name.
+const FLAGGED_SHOWN: usize = 10;
+
+fn num(v: f64, digits: usize) -> String {
+    if v.is_finite() {
+        format!("{v:.digits$}")
+    } else {
+        "n/a".into()
+    }
+}
+
+fn opt(v: Option<f64>, digits: usize) -> String {
+    v.map_or_else(|| "n/a".into(), |x| num(x, digits))
+}
+
+/// Escape what would break a table cell or start markup.
+fn cell(s: &str) -> String {
+    s.replace('|', "\\|").replace('\n', " ")
+}
+
+fn scores_table(s: &mut String, r: &Report) {
+    let multi = r.runs.len() > 1;
+    let _ = writeln!(s, "### Scores\n\nMean expected score per system and criterion, with its 95% bootstrap interval over items; `n` items each.\n");
+    let mut head = String::from("| system |");
+    let mut rule = String::from("|---|");
+    if multi {
+        head.push_str(" run |");
+        rule.push_str("---|");
+    }
+    for c in &r.criteria {
+        let _ = write!(head, " {} ({}–{}) |", c.key, c.labels[0], c.labels[c.labels.len() - 1]);
+        rule.push_str("---|");
+    }
+    let _ = writeln!(s, "{head}\n{rule}");
+    let mut systems: Vec<&str> = r.runs.iter().flat_map(|run| run.summary.iter().map(|x| x.system.as_str())).collect();
+    systems.sort();
+    systems.dedup();
+    for sys in systems {
+        for run in &r.runs {
+            let mut line = format!("| `{}` |", cell(sys));
+            if multi {
+                let _ = write!(line, " {} |", cell(&run.name));
+            }
+            for c in &r.criteria {
+                match run.summary.iter().find(|x| x.system == sys && x.criterion == c.key) {
+                    Some(x) => {
+                        let _ = write!(line, " {} [{}, {}] n={} |", num(x.mean, 2), num(x.ci_low, 2), num(x.ci_high, 2), x.n);
+                    }
+                    None => line.push_str(" – |"),
+                }
+            }
+            let _ = writeln!(s, "{line}");
+        }
+    }
+}
+
+fn deltas_table(s: &mut String, r: &Report) {
+    if r.deltas.is_empty() {
+        return;
+    }
+    let _ = writeln!(
+        s,
+        "\n### Before and after\n\nLater run minus baseline on the items both graded; paired bootstrap over items, seed {}.\n\n| system | criterion | runs | before | after | difference [95% CI] | beyond CI? |\n|---|---|---|---|---|---|---|",
+        r.seed
+    );
+    for d in &r.deltas {
+        let ci = d.ci.map_or("no interval".to_string(), |(lo, hi)| format!("[{}, {}]", num(lo, 2), num(hi, 2)));
+        let _ = writeln!(
+            s,
+            "| `{}` | {} | {} → {} | {} | {} | {:+.2} {} | {} |",
+            cell(&d.system),
+            d.criterion,
+            cell(&d.baseline),
+            cell(&d.run),
+            num(d.before, 2),
+            num(d.after, 2),
+            d.difference,
+            ci,
+            if d.beyond_ci { "**yes**" } else { "no" }
+        );
+    }
+}
+
+fn trust_table(s: &mut String, r: &Report) {
+    let vetted: Vec<&RunSection> = r.runs.iter().filter(|run| !run.trust.is_empty()).collect();
+    if vetted.is_empty() {
+        return;
+    }
+    let multi = r.runs.len() > 1;
+    let _ = writeln!(s, "\n### Can the judge stand in for a human rater?\n");
+    let _ = writeln!(
+        s,
+        "{}| criterion | verdict | judge κ | typical human κ | gap [95% CI] | labelled items |\n{}|---|---|---|---|---|---|",
+        if multi { "| run " } else { "" },
+        if multi { "|---" } else { "" }
+    );
+    for run in vetted {
+        for t in &run.trust {
+            let verdict = if t.thin_evidence { format!("**{}** (thin evidence)", t.verdict) } else { format!("**{}**", t.verdict) };
+            let gap = t.gap.map_or("n/a".to_string(), |g| format!("{:+.2} [{}, {}]", g.estimate, num(g.low, 2), num(g.high, 2)));
+            let _ = writeln!(
+                s,
+                "{}| {} | {} | {} | {} | {} | {} |",
+                if multi { format!("| {} ", cell(&run.name)) } else { String::new() },
+                t.criterion,
+                verdict,
+                opt(t.judge_kappa, 2),
+                opt(t.human_kappa, 2),
+                gap,
+                t.n_items
+            );
+        }
+    }
+}
+
+fn pairwise(s: &mut String, r: &Report) {
+    let Some(p) = &r.pairwise else { return };
+    let _ = writeln!(s, "\n### Pairwise (`{}`, {} pairs, both orders)\n", p.criterion, p.pairs);
+    if let Some(pos) = &p.position {
+        let _ = writeln!(
+            s,
+            "Position: first-slot win rate {} [{}, {}], consistency {}. {}\n",
+            num(pos.first_slot_win_rate, 2),
+            num(pos.first_slot_ci.0, 2),
+            num(pos.first_slot_ci.1, 2),
+            num(pos.consistency, 2),
+            pos.verdict_line
+        );
+    }
+    match (&p.ranking, &p.ranking_note) {
+        (Some(k), _) => {
+            let _ = writeln!(s, "| rank | system | rating [95% CI] | wins–ties–losses |\n|---|---|---|---|");
+            for (i, row) in k.rows.iter().enumerate() {
+                let _ = writeln!(
+                    s,
+                    "| {} | `{}` | {} [{}, {}] | {}–{}–{} |",
+                    i + 1,
+                    cell(&row.system),
+                    num(row.rating, 0),
+                    num(row.rating_low, 0),
+                    num(row.rating_high, 0),
+                    row.wins,
+                    row.ties,
+                    row.losses
+                );
+            }
+        }
+        (None, Some(note)) => {
+            let _ = writeln!(s, "{note}");
+        }
+        (None, None) => {}
+    }
+    for h in &p.human {
+        let _ = writeln!(
+            s,
+            "{}- {} verdicts match the human majority on {} of {} pairs",
+            if std::ptr::eq(h, &p.human[0]) { "\n" } else { "" },
+            h.method,
+            num(h.accuracy * 100.0, 0) + "%",
+            p.human_pairs
+        );
+    }
+}
+
+fn flagged(s: &mut String, r: &Report) {
+    if r.flagged.is_empty() {
+        return;
+    }
+    let low = r.flagged.iter().filter(|f| f.reasons.iter().any(|x| x == "low_mass")).count();
+    let disputed = r.flagged.iter().filter(|f| f.reasons.iter().any(|x| x == "disputed")).count();
+    let _ = writeln!(
+        s,
+        "\n### Flagged items\n\n{} flagged: {low} with low captured mass, {disputed} where judge and human consensus differ by 2 or more points.\n",
+        r.flagged.len()
+    );
+    for f in r.flagged.iter().take(FLAGGED_SHOWN) {
+        let humans = if f.human_scores.is_empty() {
+            "no human labels".to_string()
+        } else {
+            format!(
+                "humans {} ({})",
+                f.human_consensus.as_deref().unwrap_or("n/a"),
+                f.human_scores.iter().map(|h| h.score.as_str()).collect::<Vec<_>>().join(", ")
+            )
+        };
+        let _ = writeln!(
+            s,
+            "- `{}/{}` {}{}: judge {} (mass {}), {}; {}",
+            cell(&f.question_id),
+            cell(&f.system),
+            f.criterion,
+            if r.runs.len() > 1 { format!(" in `{}`", cell(&f.run)) } else { String::new() },
+            num(f.expected, 2),
+            num(f.captured_mass, 2),
+            humans,
+            f.reasons.join(", ").replace('_', " ")
+        );
+    }
+    if r.flagged.len() > FLAGGED_SHOWN {
+        let _ = writeln!(s, "- … and {} more (all are in the HTML and JSON reports)", r.flagged.len() - FLAGGED_SHOWN);
+    }
+}
+
+/// The report as Markdown.
+pub fn render(r: &Report) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "## assize report: rubric `{}`\n", r.rubric);
+    for run in &r.runs {
+        let role = match run.role.as_str() {
+            "baseline" => "baseline, before",
+            "after" => "after",
+            _ => "graded",
+        };
+        let _ = writeln!(s, "- run `{}` ({role}): {} grades by judge `{}`", cell(&run.name), run.records, cell(&run.model));
+    }
+    if let Some(p) = &r.pairwise {
+        let _ = writeln!(s, "- comparison: {} pairs on `{}` by judge `{}`", p.pairs, p.criterion, cell(&p.model));
+    }
+    if r.cautions.is_empty() {
+        let _ = writeln!(s, "\nNo cautions apply.");
+    } else {
+        let _ = writeln!(s, "\n> [!WARNING]\n> **Read these first**");
+        for c in &r.cautions {
+            let _ = writeln!(s, "> - {}", c.message);
+        }
+    }
+    s.push('\n');
+    scores_table(&mut s, r);
+    deltas_table(&mut s, r);
+    trust_table(&mut s, r);
+    pairwise(&mut s, r);
+    flagged(&mut s, r);
+    let _ = writeln!(
+        s,
+        "\n<sub>assize {} · schema `{}` · seed {} · {} resamples · {}</sub>",
+        r.tool_version, r.schema, r.seed, r.resamples, r.generated_at
+    );
+    s
+}

@@ -1,0 +1,262 @@
+//! Command-line tests: drive the `assize` binary as a user would and check outputs,
+//! error messages and exit codes. Model facts are checked against the published model
+//! configurations (named per test).
+
+mod common;
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use clap::CommandFactory;
+
+fn bin() -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_assize"));
+    c.current_dir(env!("CARGO_MANIFEST_DIR"));
+    c.env_remove("HF_HUB_OFFLINE");
+    c
+}
+
+fn run(args: &[&str]) -> Output {
+    bin().args(args).output().expect("binary runs")
+}
+
+fn stderr(o: &Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+fn info_json(file: &str) -> serde_json::Value {
+    let path = common::real_model(file);
+    let o = run(&["model", "info", path.to_str().expect("utf-8 path"), "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    serde_json::from_slice(&o.stdout).expect("one JSON document")
+}
+
+/// Clap's own consistency check of every argument definition.
+#[test]
+fn clap_definitions_are_consistent() {
+    assize::cli::Cli::command().debug_assert();
+}
+
+/// The top-level help lists every subcommand; reviewed snapshot in tests/fixtures/help.txt.
+#[test]
+fn top_level_help_matches_snapshot() {
+    let o = run(&["--help"]);
+    assert!(o.status.success());
+    let got = String::from_utf8_lossy(&o.stdout).replace("\r\n", "\n");
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/help.txt");
+    if std::env::var_os("ASSIZE_UPDATE_SNAPSHOTS").is_some() {
+        std::fs::write(&path, &got).expect("write snapshot");
+    }
+    let want = std::fs::read_to_string(&path).expect("snapshot exists (ASSIZE_UPDATE_SNAPSHOTS=1 writes it)");
+    assert_eq!(got, want);
+}
+
+/// Qwen2.5-Coder-1.5B-Instruct published configuration (model card config.json):
+/// 28 layers, hidden 1536, 12 attention heads, 2 KV heads, vocabulary 151936.
+#[test]
+fn default_judge_info_matches_published_config() {
+    let v = info_json("qwen2.5-coder-1.5b-instruct-q4_k_m.gguf");
+    assert_eq!(v["architecture"], "qwen2");
+    assert_eq!(v["layers"], 28);
+    assert_eq!(v["hidden_size"], 1536);
+    assert_eq!(v["heads"], 12);
+    assert_eq!(v["kv_heads"], 2);
+    assert_eq!(v["vocab_size"], 151936);
+    assert_eq!(v["chat_template"], true);
+    assert_eq!(v["tokenizer"], "gpt2");
+    assert_eq!(v["sha256"], "cc324af070c2ecbfd324a30884d2f951a7ff756aba85cb811a6ec436933bb046");
+    let params = v["parameters"].as_u64().expect("count");
+    assert!((1_400_000_000..1_800_000_000).contains(&params), "{params}");
+}
+
+/// Qwen2.5-Coder-0.5B-Instruct published configuration: 24 layers, hidden 896, 14
+/// attention heads, 2 KV heads, vocabulary 151936.
+#[test]
+fn small_judge_info_matches_published_config() {
+    let v = info_json("qwen2.5-coder-0.5b-instruct-q5_0.gguf");
+    assert_eq!(v["layers"], 24);
+    assert_eq!(v["hidden_size"], 896);
+    assert_eq!(v["heads"], 14);
+    assert_eq!(v["kv_heads"], 2);
+    assert_eq!(v["vocab_size"], 151936);
+}
+
+/// Gemma 3 270M configuration, values from memory of its published config.json
+/// (18 layers, hidden 640, 4 heads, 1 KV head, feed-forward 2048, context 32768,
+/// vocabulary 262144) and confirmed by the GGUF file's own metadata; SentencePiece
+/// (`llama`) tokenizer; a base model without chat template.
+#[test]
+fn gemma_info_matches_published_config() {
+    let v = info_json("gemma-3-270m-q4_k_m.gguf");
+    assert_eq!(v["architecture"], "gemma3");
+    assert_eq!(v["layers"], 18);
+    assert_eq!(v["hidden_size"], 640);
+    assert_eq!(v["heads"], 4);
+    assert_eq!(v["kv_heads"], 1);
+    assert_eq!(v["feed_forward"], 2048);
+    assert_eq!(v["context_length"], 32768);
+    assert_eq!(v["vocab_size"], 262144);
+    assert_eq!(v["tokenizer"], "llama");
+    assert_eq!(v["chat_template"], false);
+}
+
+/// A truncated download keeps its header but loses tensor data: a clear error, exit 2.
+#[test]
+fn truncated_model_is_a_clear_error() {
+    let src = common::real_model("gemma-3-270m-q4_k_m.gguf");
+    let dir = tempfile::tempdir().expect("tmp");
+    let cut = dir.path().join("cut.gguf");
+    let bytes = std::fs::read(&src).expect("read");
+    std::fs::write(&cut, &bytes[..bytes.len() / 2]).expect("write");
+    let o = run(&["model", "info", cut.to_str().expect("utf-8")]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("is truncated"), "{e}");
+    assert!(e.contains("fix: the download was interrupted"), "{e}");
+    assert!(!e.contains("panicked"), "{e}");
+}
+
+/// A file that is not GGUF at all, and a header cut in the middle.
+#[test]
+fn non_gguf_and_cut_header_are_clear_errors() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let txt = dir.path().join("notes.gguf");
+    std::fs::write(&txt, "these are notes, not a model").expect("write");
+    let o = run(&["model", "info", txt.to_str().expect("utf-8")]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("does not start with the GGUF magic bytes"), "{}", stderr(&o));
+    let src = common::real_model("gemma-3-270m-q4_k_m.gguf");
+    let head = dir.path().join("head.gguf");
+    let bytes = std::fs::read(&src).expect("read");
+    std::fs::write(&head, &bytes[..4096]).expect("write");
+    let o = run(&["model", "info", head.to_str().expect("utf-8")]);
+    assert_eq!(o.status.code(), Some(2));
+    assert!(stderr(&o).contains("not a readable GGUF model file"), "{}", stderr(&o));
+}
+
+fn hub_cache_with_tiny(dir: &Path) -> PathBuf {
+    let cache = dir.join("hub");
+    let repo = cache.join("models--example-org--tiny-judge");
+    let snap = repo.join("snapshots/0123456789abcdef");
+    std::fs::create_dir_all(&snap).expect("mkdir");
+    std::fs::create_dir_all(repo.join("refs")).expect("mkdir");
+    std::fs::write(repo.join("refs/main"), "0123456789abcdef").expect("ref");
+    let model = common::tiny_gguf::Tiny::new("llama").write(dir);
+    std::fs::copy(&model, snap.join("tiny.gguf")).expect("copy");
+    cache
+}
+
+/// Offline pull from a hub cache in the usual layout (models--OWNER--NAME/refs,
+/// snapshots) built by the test: the file is found without any network.
+#[test]
+fn offline_pull_finds_a_cached_file() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let cache = hub_cache_with_tiny(dir.path());
+    let o = bin()
+        .args(["model", "pull", "example-org/tiny-judge", "tiny.gguf", "--json"])
+        .env("HF_HUB_CACHE", &cache)
+        .env("HF_HUB_OFFLINE", "1")
+        .output()
+        .expect("runs");
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    assert_eq!(v["from_cache"], true);
+    assert!(v["path"].as_str().expect("path").ends_with("snapshots/0123456789abcdef/tiny.gguf"));
+    // --cache-dir works the same as the environment variable.
+    let o = run(&["model", "pull", "example-org/tiny-judge", "tiny.gguf", "--offline", "--cache-dir", cache.to_str().expect("utf-8")]);
+    assert!(o.status.success(), "{}", stderr(&o));
+}
+
+/// A file missing from an offline cache is a clear error naming file, repo and cache.
+#[test]
+fn offline_pull_of_a_missing_file_is_a_clear_error() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let cache = hub_cache_with_tiny(dir.path());
+    let o = bin()
+        .args(["model", "pull", "example-org/tiny-judge", "other.gguf", "--offline"])
+        .env("HF_HUB_CACHE", &cache)
+        .output()
+        .expect("runs");
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("`other.gguf` of `example-org/tiny-judge`"), "{e}");
+    assert!(e.contains("offline mode is on"), "{e}");
+    assert!(e.contains("fix:"), "{e}");
+}
+
+/// Every malformed answers line is reported in one pass, with the file and a fix.
+#[test]
+fn malformed_answers_lines_are_all_reported() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let f = dir.path().join("bad.jsonl");
+    std::fs::write(
+        &f,
+        "{\"question_id\":\"q1\",\"system\":\"s\",\"question\":\"Q\",\"answer\":\"A\"}\n{\"question_id\":\"q2\",\"system\":\"s\"}\n[1,2]\n",
+    )
+    .expect("write");
+    let o = run(&["grade", "--answers", f.to_str().expect("utf-8"), "--model", "missing.gguf"]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("bad.jsonl"), "{e}");
+    assert!(e.contains("line 2: missing field `question`; missing field `answer`"), "{e}");
+    assert!(e.contains("line 3: expected a JSON object, found an array"), "{e}");
+    assert!(e.contains("fix:"), "{e}");
+}
+
+/// A bad rubric is rejected with its line numbers before any model is loaded.
+#[test]
+fn bad_rubric_is_reported_with_lines() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let r = dir.path().join("r.toml");
+    std::fs::write(&r, "name = \"x\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-4\"\n").expect("write");
+    let o = run(&["rubric", "check", r.to_str().expect("utf-8")]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("line 5: criterion `a`: unknown scale `1-4`"), "{e}");
+    assert!(e.contains("fix:"), "{e}");
+}
+
+/// An unknown criterion asked for on the command line names the known ones.
+#[test]
+fn unknown_criterion_names_the_known_ones() {
+    let o = run(&["grade", "--answers", "demo-data/answers.jsonl", "--criteria", "politeness", "--model", "missing.gguf"]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("no criterion `politeness`"), "{e}");
+    assert!(e.contains("correctness"), "{e}");
+}
+
+/// Human labels that name an unknown criterion or an off-scale score are reported.
+#[test]
+fn bad_labels_are_reported_per_line() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let l = dir.path().join("labels.csv");
+    std::fs::write(&l, "question_id,system,criterion,rater,score\nq01,assistant-v1,politeness,r1,3\nq01,assistant-v1,correctness,r1,9\n").expect("write");
+    let o = run(&["grade", "--answers", "demo-data/answers.jsonl", "--anchors", l.to_str().expect("utf-8"), "--model", "missing.gguf"]);
+    assert_eq!(o.status.code(), Some(2));
+    let e = stderr(&o);
+    assert!(e.contains("line 3: score `9` is not on the scale of `correctness`"), "{e}");
+}
+
+/// The dry run shows the exact prompt, with the answer's control strings as text.
+#[test]
+fn rubric_show_renders_the_prompt_without_running_the_model() {
+    let o = run(&["rubric", "show", "--answers", "demo-data/answers.jsonl", "--item", "q31/assistant-v1", "--criterion", "correctness", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    let prompt = v["prompt"].as_str().expect("prompt");
+    assert!(prompt.starts_with("<|im_start|>system"));
+    assert!(prompt.ends_with("<|im_start|>assistant\nScore: "));
+    assert!(v["tokens"].as_u64().expect("count") > 200);
+}
+
+/// Overlap metrics on the demo answers: the stronger system has the higher ROUGE-L.
+#[test]
+fn overlap_command_scores_every_system() {
+    let o = run(&["overlap", "--answers", "demo-data/answers.jsonl", "--json"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    let systems = v["systems"].as_array().expect("systems");
+    assert_eq!(systems.len(), 2);
+    assert_eq!(v["items"].as_array().expect("items").len(), 100);
+}
