@@ -27,6 +27,7 @@ fn args(run_dir: PathBuf) -> GradeArgs {
             context: None,
         },
         reasoning: false,
+        generate_steps: false,
         reasoning_tokens: 32,
         anchors: None,
         anchor_count: 3,
@@ -34,6 +35,7 @@ fn args(run_dir: PathBuf) -> GradeArgs {
         seed: 7,
         run_dir: Some(run_dir),
         limit: Some(6),
+        no_prefix_reuse: false,
         templates: None,
         output: OutputArgs {
             json: true,
@@ -133,4 +135,32 @@ fn run_folder_refuses_a_different_rubric() {
     let pb = prepare(&b).expect("inputs");
     let err = grade_run(&b, &pb, &ScriptedJudge::default()).expect_err("mismatch");
     assert!(format!("{err:#}").contains("rubric changed"), "{err:#}");
+}
+
+/// Reasoning mode with judge-written steps: the steps are asked for once per
+/// criterion, saved in the run folder, shown in every form, and the rationale is
+/// stored with the score.
+#[test]
+fn generated_steps_are_cached_and_used_in_forms() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let mut a = args(dir.path().join("run"));
+    a.reasoning = true;
+    a.generate_steps = true;
+    a.limit = Some(2);
+    let p = prepare(&a).expect("inputs");
+    let judge = ScriptedJudge {
+        rules: vec![("1. Check every fact.".into(), vec![-9.0, -9.0, -9.0, -9.0, -0.01])],
+        assessment: " Check every fact.\n2. Decide.".into(),
+        ..Default::default()
+    };
+    grade_run(&a, &p, &judge).expect("run");
+    let steps: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.path().join("run/steps.json")).expect("steps saved")).expect("json");
+    assert_eq!(steps["correctness"], serde_json::json!(["Check every fact.", "Decide."]));
+    let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
+    assert_eq!(recs.len(), 4);
+    for r in &recs {
+        assert_eq!(r.argmax, "5", "the form showed the generated steps");
+        assert_eq!(r.rationale.as_deref(), Some("Check every fact.\n2. Decide."));
+    }
 }

@@ -60,6 +60,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         criteria: criteria.iter().map(|s| s.to_string()).collect(),
         model: ModelArgs { model: "default".into(), threads: 2, context: None },
         reasoning: false,
+        generate_steps: false,
         reasoning_tokens: 48,
         anchors: None,
         anchor_count: 3,
@@ -67,6 +68,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         seed: 7,
         run_dir: Some(run_dir),
         limit: None,
+        no_prefix_reuse: false,
         templates: None,
         output: OutputArgs { json: true, quiet: true },
     }

@@ -62,6 +62,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         criteria: CRITERIA.iter().map(|c| c.0.to_string()).collect(),
         model: ModelArgs { model: "scripted".into(), threads: 1, context: None },
         reasoning,
+        generate_steps: false,
         reasoning_tokens: 64,
         anchors: None,
         anchor_count: 3,
@@ -69,6 +70,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         seed: 7,
         run_dir: Some(run_dir),
         limit: Some(ITEMS),
+        no_prefix_reuse: false,
         templates: None,
         output: OutputArgs { json: true, quiet: true },
     }

@@ -41,6 +41,9 @@ pub struct GradeArgs {
     /// Let the judge write an assessment following the evaluation steps before the score
     #[arg(long)]
     pub reasoning: bool,
+    /// Let the judge write each criterion's evaluation steps once (cached in the run folder) instead of the rubric's
+    #[arg(long, requires = "reasoning")]
+    pub generate_steps: bool,
     /// Token limit of the written assessment
     #[arg(long, value_name = "N", default_value_t = 160)]
     pub reasoning_tokens: usize,
@@ -62,6 +65,9 @@ pub struct GradeArgs {
     /// Grade at most this many answers (in file order), e.g. for a quick look
     #[arg(long, value_name = "N")]
     pub limit: Option<usize>,
+    /// Compute every form from scratch instead of forking shared prefixes (for benchmarks)
+    #[arg(long)]
+    pub no_prefix_reuse: bool,
     /// Folder with form templates (`system.j2`, `grade.j2`, `pair.j2`) replacing the built-in ones
     #[arg(long, value_name = "DIR")]
     pub templates: Option<PathBuf>,
@@ -109,6 +115,8 @@ pub struct Prepared {
     pub forms: Forms,
     /// Few-shot anchors, when asked for.
     pub anchors: Option<AnchorPool>,
+    /// Template folder, when not the built-in templates.
+    pub templates_dir: Option<PathBuf>,
 }
 
 /// Load and check inputs; every missing field of every item is reported at once.
@@ -169,6 +177,7 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
         rubric,
         forms,
         anchors,
+        templates_dir: args.templates.clone(),
     })
 }
 
@@ -180,6 +189,8 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow
         format!("reasoning_tokens={}", args.reasoning_tokens),
         format!("low_mass={}", args.low_mass),
         format!("context={:?}", args.model.context),
+        format!("prefix_reuse={}", !args.no_prefix_reuse),
+        format!("generate_steps={}", args.generate_steps),
     ];
     if let Some(a) = &args.anchors {
         options.push(format!("anchors_sha256={}", file_sha256(a)?));
@@ -216,6 +227,13 @@ pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyho
             },
         })
     })?;
+    let steps_owned;
+    let p = if args.generate_steps {
+        steps_owned = with_generated_steps(&run, p, backend, args.output.quiet)?;
+        &steps_owned
+    } else {
+        p
+    };
     let path = run.file(GRADES_FILE);
     let existing: Vec<GradeRecord> = read_records(&path)?;
     let done: HashSet<String> = existing.iter().map(GradeRecord::key).collect();
@@ -294,11 +312,65 @@ pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyho
     })
 }
 
+/// The rubric with judge-written evaluation steps, from `steps.json` in the run
+/// folder or generated once and saved there.
+fn with_generated_steps(run: &RunDir, p: &Prepared, backend: &dyn Backend, quiet: bool) -> anyhow::Result<Prepared> {
+    let path = run.file("steps.json");
+    let mut cached: std::collections::BTreeMap<String, Vec<String>> = if path.exists() {
+        serde_json::from_str(&std::fs::read_to_string(&path)?)
+            .with_context(|| format!("`{}` is damaged; delete it to generate the steps again", path.display()))?
+    } else {
+        Default::default()
+    };
+    let mut rubric = p.rubric.clone();
+    for c in &mut rubric.criteria {
+        if !cached.contains_key(&c.key) {
+            if !quiet {
+                eprintln!("asking the judge for evaluation steps of `{}`", c.key);
+            }
+            let steps = crate::judge::steps::generate_steps(backend, c)?;
+            cached.insert(c.key.clone(), steps);
+            crate::store::write_atomic(&path, serde_json::to_string_pretty(&cached)?.as_bytes())?;
+        }
+        let steps = &cached[&c.key];
+        if !steps.is_empty() {
+            c.steps = steps.clone();
+        }
+    }
+    Ok(Prepared {
+        answers: p.answers.clone(),
+        rubric,
+        forms: match &p.templates_dir {
+            Some(d) => Forms::from_dir(d)?,
+            None => Forms::builtin()?,
+        },
+        anchors: p.anchors.clone(),
+        templates_dir: p.templates_dir.clone(),
+    })
+}
+
 /// Run `assize grade`.
 pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
     let prepared = prepare(&args)?;
-    let judge = load_judge(&args.model, args.output.quiet)?;
+    let mut judge = load_judge(&args.model, args.output.quiet)?;
+    if args.no_prefix_reuse {
+        judge.set_prefix_reuse(false);
+    }
+    let started = std::time::Instant::now();
     let report = grade_run(&args, &prepared, &judge).context("grading stopped")?;
+    if !args.output.quiet && report.computed > 0 {
+        let secs = started.elapsed().as_secs_f64();
+        let c = judge.counters();
+        eprintln!(
+            "computed {} records in {:.1} s ({:.1} answers/min); prompt tokens run {} , reused {}, generated {}",
+            report.computed,
+            secs,
+            report.computed as f64 / prepared.rubric.criteria.len().max(1) as f64 / secs * 60.0,
+            c.computed_tokens,
+            c.reused_tokens,
+            c.generated_tokens
+        );
+    }
     if args.output.json {
         print_json(&report)?;
     } else {

@@ -8,6 +8,7 @@ pub mod grade;
 pub mod pairwise;
 pub mod records;
 pub mod scripted;
+pub mod steps;
 
 pub use records::{GradeRecord, PairRecord};
 

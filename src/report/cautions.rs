@@ -9,12 +9,26 @@ fn list(keys: &[String]) -> String {
     keys.iter().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
 }
 
-fn run_prefix(r: &Report, run: &RunSection) -> String {
-    if r.runs.len() > 1 {
-        format!("run `{}`: ", run.name)
-    } else {
-        String::new()
+/// Per-run cautions with equal wording are merged into one line naming the runs.
+fn merge(r: &Report, per_run: Vec<(CautionKind, String, String)>) -> Vec<Caution> {
+    let mut merged: Vec<(CautionKind, String, Vec<String>)> = Vec::new();
+    for (kind, body, run) in per_run {
+        match merged.iter_mut().find(|m| m.0 == kind && m.1 == body) {
+            Some(m) => m.2.push(run),
+            None => merged.push((kind, body, vec![run])),
+        }
     }
+    merged
+        .into_iter()
+        .map(|(kind, body, runs)| Caution {
+            kind,
+            message: match (r.runs.len(), runs.len()) {
+                (1, _) => body,
+                (_, 1) => format!("run {}: {body}", list(&runs)),
+                _ => format!("runs {}: {body}", list(&runs)),
+            },
+        })
+        .collect()
 }
 
 fn criteria_where(run: &RunSection, pick: impl Fn(&super::TrustRow) -> bool) -> Vec<String> {
@@ -31,27 +45,28 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
             "no human labels were given, so nothing here shows that the judge agrees with people; its scores are unvetted (pass `--labels` to vet it)".into(),
         );
     }
+    let mut per_run = Vec::new();
     for run in &r.runs {
-        let p = run_prefix(r, run);
+        let mut add = |kind, message: String| per_run.push((kind, message, run.name.clone()));
         let no = criteria_where(run, |t| t.verdict == "no");
         if !no.is_empty() {
             add(
                 CautionKind::BelowHumanCeiling,
-                format!("{p}the judge agrees with humans clearly less than humans agree with each other on {}; do not use its scores there in place of human ratings", list(&no)),
+                format!("the judge agrees with humans clearly less than humans agree with each other on {}; do not use its scores there in place of human ratings", list(&no)),
             );
         }
         let unsure = criteria_where(run, |t| t.verdict == "cannot tell yet");
         if !unsure.is_empty() {
             add(
                 CautionKind::CannotTellYet,
-                format!("{p}the labelled sample cannot tell yet whether the judge is as good as a typical rater on {}; treat those scores as unconfirmed", list(&unsure)),
+                format!("the labelled sample cannot tell yet whether the judge is as good as a typical rater on {}; treat those scores as unconfirmed", list(&unsure)),
             );
         }
         let thin = criteria_where(run, |t| t.verdict == "yes" && t.thin_evidence);
         if !thin.is_empty() {
             add(
                 CautionKind::ThinEvidence,
-                format!("{p}the judge is deemed trustworthy on {} on thin evidence (few labelled items or a wide interval); the \"yes\" could change with more labels", list(&thin)),
+                format!("the judge is deemed trustworthy on {} on thin evidence (few labelled items or a wide interval); the \"yes\" could change with more labels", list(&thin)),
             );
         }
         let small: Vec<String> = run
@@ -63,20 +78,20 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
         if !small.is_empty() {
             add(
                 CautionKind::SmallLabelledSample,
-                format!("{p}small labelled sample: {} labelled items against what a kappa interval of ±0.15 needs; every trust verdict here is provisional", small.join(", ")),
+                format!("small labelled sample: {} labelled items against what a kappa interval of ±0.15 needs; every trust verdict here is provisional", small.join(", ")),
             );
         }
         if run.low_mass > 0 {
             add(
                 CautionKind::LowCapturedMass,
                 format!(
-                    "{p}{} of {} grades have low captured mass: the judge put most of its probability outside the scale labels, so those scores mean little (they are kept in the means and listed under flagged items)",
+                    "{} of {} grades had low captured mass: the judge put most of its probability outside the scale labels, so those scores mean little (they are kept in the means and listed under flagged items)",
                     run.low_mass, run.records
                 ),
             );
         }
         if let Some(note) = &run.vet_note {
-            add(CautionKind::NoLabels, format!("{p}not vetted: {note}"));
+            add(CautionKind::NoLabels, format!("not vetted: {note}"));
         }
         let unvetted: Vec<String> = run
             .unvetted
@@ -87,10 +102,12 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
         if !unvetted.is_empty() {
             add(
                 CautionKind::Unvetted,
-                format!("{p}{} {} no human labels, so {} scores are unvetted", list(&unvetted), if unvetted.len() == 1 { "has" } else { "have" }, if unvetted.len() == 1 { "its" } else { "their" }),
+                format!("{} {} no human labels, so {} scores are unvetted", list(&unvetted), if unvetted.len() == 1 { "has" } else { "have" }, if unvetted.len() == 1 { "its" } else { "their" }),
             );
         }
     }
+    out.extend(merge(r, per_run));
+    let mut add = |kind, message: String| out.push(Caution { kind, message });
     if let Some(pw) = &r.pairwise {
         if pw.low_mass > 0 {
             add(

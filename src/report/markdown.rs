@@ -129,7 +129,7 @@ fn pairwise(s: &mut String, r: &Report) {
     if let Some(pos) = &p.position {
         let _ = writeln!(
             s,
-            "Position: first-slot win rate {} [{}, {}], consistency {}. {}\n",
+            "Position: first-slot win rate {} [{}, {}], consistency {}; {}\n",
             num(pos.first_slot_win_rate, 2),
             num(pos.first_slot_ci.0, 2),
             num(pos.first_slot_ci.1, 2),
@@ -217,7 +217,7 @@ pub fn render(r: &Report) -> String {
     let _ = writeln!(s, "## assize report: rubric `{}`\n", r.rubric);
     for run in &r.runs {
         let role = match run.role.as_str() {
-            "baseline" => "baseline, before",
+            "baseline" => "baseline",
             "after" => "after",
             _ => "graded",
         };

@@ -117,8 +117,13 @@ pub fn dist_chart(r: &Report, c: &CriterionInfo) -> DistChart {
         })
         .collect();
     let mut rows = Vec::new();
-    for run in &r.runs {
-        for d in run.distributions.iter().filter(|d| d.criterion == c.key) {
+    // Rows grouped by system, runs in order, so before and after sit together.
+    let mut systems: Vec<&str> = r.runs.iter().flat_map(|run| run.distributions.iter().map(|d| d.system.as_str())).collect();
+    systems.sort();
+    systems.dedup();
+    let pairs = systems.iter().flat_map(|s| r.runs.iter().map(move |run| (*s, run)));
+    for (system, run) in pairs {
+        for d in run.distributions.iter().filter(|d| d.criterion == c.key && d.system == system) {
             let y = TOP + rows.len() as f64 * ROW_H;
             let mut x = BAR.0;
             let segments = d
@@ -174,7 +179,8 @@ pub struct Cell {
 pub struct ConfusionChart {
     id: String,
     title: String,
-    size: f64,
+    width: f64,
+    height: f64,
     cells: Vec<Cell>,
     labels: Vec<(f64, String)>,
 }
@@ -204,7 +210,8 @@ pub fn confusion_chart(run_index: usize, t: &TrustRow, c: &CriterionInfo) -> Con
     ConfusionChart {
         id: format!("confusion-{run_index}-{}", t.criterion),
         title: format!("{}: human consensus (rows) against judge (columns)", c.title),
-        size: GRID0.0.max(GRID0.1) + c.labels.len() as f64 * CELL + 12.0,
+        width: GRID0.0 + c.labels.len() as f64 * CELL + 8.0,
+        height: GRID0.1 + c.labels.len() as f64 * CELL + 8.0,
         cells,
         labels,
     }
