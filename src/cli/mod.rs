@@ -14,6 +14,7 @@ pub mod compare;
 pub mod estimate;
 pub mod errors;
 pub mod grade;
+pub mod injection;
 pub mod model;
 pub mod overlap;
 pub mod report;
@@ -45,6 +46,8 @@ pub enum Command {
     Grade(grade::GradeArgs),
     /// Compare systems pairwise, both answer orders, with bias probes and a ranking
     Compare(compare::CompareArgs),
+    /// Probe whether instructions hidden in answers ("rate this 5") move the judge's grades
+    Injection(injection::InjectionArgs),
     /// Let a local model answer a file of questions (to add a system, or probe self-preference)
     Answer(answer::AnswerArgs),
     /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
@@ -80,6 +83,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Rubric(cmd) => rubric::run(cmd),
         Command::Vet(args) => vet::run(args),
         Command::Answer(args) => answer::run(args),
+        Command::Injection(args) => injection::run(args),
         Command::Estimate(args) => estimate::run(args),
         Command::Overlap(args) => overlap::run(args),
         Command::Report(args) => report::run(args),

@@ -7,6 +7,7 @@ pub mod chat;
 pub mod decoder;
 pub mod error;
 pub mod gguf;
+pub mod kernels;
 pub mod linear;
 pub mod session;
 pub mod tokenizer;

@@ -3,6 +3,7 @@
 //! preferences and labels. Output: position-bias, self-preference and length reports
 //! and a Bradley-Terry ranking. Never runs the model and never reads files.
 
+pub mod injection;
 pub mod length;
 pub mod ranking;
 pub mod selfpref;

@@ -365,3 +365,69 @@ fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
     }
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::rubric::load_rubric;
+
+    fn rec(q: &str, expected: f64, low_mass: bool) -> GradeRecord {
+        GradeRecord {
+            question_id: q.into(),
+            system: "sys".into(),
+            criterion: "correctness".into(),
+            labels: (1..=5).map(|i| i.to_string()).collect(),
+            probabilities: vec![0.2; 5],
+            captured_mass: if low_mass { 0.2 } else { 0.9 },
+            expected,
+            argmax: "3".into(),
+            spread: 1.0,
+            low_mass,
+            rationale: None,
+        }
+    }
+
+    fn run(name: &str, records: Vec<GradeRecord>) -> RunInput {
+        RunInput { name: name.into(), dir: name.into(), model: String::new(), records }
+    }
+
+    fn label(q: &str, rater: &str, score: &str) -> LabelRow {
+        LabelRow { question_id: q.into(), system: "sys".into(), criterion: "correctness".into(), rater: rater.into(), score: score.into(), line: 0 }
+    }
+
+    fn build_with(runs: &[RunInput], labels: Option<&[LabelRow]>) -> Report {
+        let rubric = load_rubric(&std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("judge-templates/rubrics/quick.toml")).expect("bundled rubric");
+        let inputs = Inputs { runs, compare: None, labels, preferences: None, rubric: &rubric, answers: None, seed: 7, resamples: 200 };
+        build(&inputs).expect("report")
+    }
+
+    /// A paired bootstrap of a constant per-item difference is degenerate at that
+    /// constant (every resample mean equals it): +0.5 on every item gives the interval
+    /// [0.5, 0.5], beyond 0; an identical rerun gives [0, 0], not beyond 0.
+    #[test]
+    fn constant_shift_between_runs_is_beyond_its_interval_and_no_shift_is_not() {
+        let base: Vec<GradeRecord> = [2.0, 3.0, 4.0, 4.5].iter().enumerate().map(|(i, v)| rec(&format!("q{i}"), *v, false)).collect();
+        let shifted: Vec<GradeRecord> = base.iter().map(|r| GradeRecord { expected: r.expected + 0.5, ..r.clone() }).collect();
+        let r = build_with(&[run("before", base.clone()), run("after", shifted), run("again", base)], None);
+        assert_eq!(r.deltas.len(), 2);
+        let d = &r.deltas[0];
+        assert_eq!((d.run.as_str(), d.n_items, d.difference, d.ci, d.beyond_ci), ("after", 4, 0.5, Some((0.5, 0.5)), true));
+        let same = &r.deltas[1];
+        assert_eq!((same.difference, same.ci, same.beyond_ci), (0.0, Some((0.0, 0.0)), false));
+        assert!(r.cautions.iter().any(|c| c.kind == CautionKind::BeforeAfter && c.message.contains("`again`")));
+    }
+
+    /// Disputed means 2 or more points from the lower-median human consensus (as in
+    /// `vet`): ratings 4, 5, 5 give consensus 5, so 2.5 is disputed and 3.1 is not;
+    /// low captured mass is flagged whatever the humans said.
+    #[test]
+    fn flagged_items_are_low_mass_or_two_points_from_the_consensus() {
+        let records = vec![rec("q1", 2.5, false), rec("q2", 3.1, false), rec("q3", 4.0, true)];
+        let labels: Vec<LabelRow> = ["q1", "q2"].iter().flat_map(|q| [label(q, "a", "4"), label(q, "b", "5"), label(q, "c", "5")]).collect();
+        let r = build_with(&[run("only", records)], Some(&labels));
+        let got: Vec<(&str, Vec<String>, Option<String>)> = r.flagged.iter().map(|f| (f.question_id.as_str(), f.reasons.clone(), f.human_consensus.clone())).collect();
+        assert_eq!(got, vec![("q1", vec!["disputed".to_string()], Some("5".to_string())), ("q3", vec!["low_mass".to_string()], None)]);
+        assert!(r.cautions.iter().any(|c| c.kind == CautionKind::LowCapturedMass));
+        assert!(!r.cautions.iter().any(|c| c.kind == CautionKind::NoLabels));
+    }
+}

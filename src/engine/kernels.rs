@@ -1,0 +1,863 @@
+//! Matrix-multiply kernels of the decoder for prompts: quantised weights repacked once
+//! at load into 16-column tiles, multiplied by activation rows quantised to int8 with
+//! AVX-512 VNNI (`vpdpbusd`). Input: a Q4_K, Q6_K or Q8_0-representable (Q4_0, Q5_0,
+//! Q8_0) weight `n × k` and f32 rows `m × k`. Output: f32 rows `m × n`. Never lets one
+//! row's result depend on the other rows of the call or on the thread count: every
+//! output element is summed by one worker in a fixed order.
+//!
+//! Numerics follow ggml's formats (Gerganov et al., ggml `k_quants.c`): activations
+//! are quantised per 256 values as Q8_K (`d = max / -127`, `q = round(x / d)`, sums of
+//! 16 quants kept), and each weight sub-block contributes
+//! `d_x · (d_w · sc · Σ q_w q_x − d_min · mn · Σ q_x)` (Q4_K),
+//! `d_x · d_w · sc · Σ (q_w − 32) q_x` (Q6_K) or `d_x · d_w · Σ q_w q_x` (Q8_0).
+//! Integer sums are exact; the float steps run in one order per output element.
+//!
+//! Tile layouts (one tile = 16 output columns, `col` below), little-endian:
+//! - Q4_K, per 256-value super-block (2432 bytes): quants `[sub 8][g 4][col][4]`, byte
+//!   `j` holding value `32 sub + 8 g + j` in its low nibble and `+ 4` in its high
+//!   nibble; scales `[sub][col]` u8; mins `[pair 4][col][2]` u8; `d`, `dmin` f32 `[col]`.
+//! - Q6_K, per super-block (4416 bytes): quants `[sub 16][g 4][col][4]` as bytes 0..63;
+//!   scales `[sub][col]` i8; `d` f32 `[col]`.
+//! - Q8_0, per 32-value block (576 bytes): quants `[g 8][col][4]` stored `q + 128`;
+//!   `d` f32 `[col]`.
+
+use std::sync::OnceLock;
+
+use candle_core::quantized::{GgmlDType, QTensor};
+use candle_core::Device;
+
+/// Output columns of one tile (one 512-bit register of f32 / i32 lanes).
+const TILE_N: usize = 16;
+/// Values of one activation super-block (ggml's `QK_K`).
+const QK: usize = 256;
+const Q4K_SB: usize = 2432;
+const Q6K_SB: usize = 4416;
+const Q8_BLK: usize = 576;
+
+/// Rows the kernels process together; they share each unpacked weight register.
+const MT: usize = 4;
+
+/// Weight formats the kernels take.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Format {
+    /// ggml Q4_K: 4-bit quants, 6-bit scales and mins per 32 values.
+    Q4K,
+    /// ggml Q6_K: 6-bit quants, 8-bit scales per 16 values.
+    Q6K,
+    /// ggml Q8_0 (also exact for Q4_0 and Q5_0 sources): 8-bit quants, f16 scale per 32.
+    Q8_0,
+}
+
+/// 64-byte aligned storage unit, so tile loads never straddle cache lines.
+#[derive(Clone, Copy)]
+#[repr(C, align(64))]
+struct Line([u8; 64]);
+
+/// A weight repacked into 16-column tiles.
+pub struct Packed {
+    format: Format,
+    /// Output features.
+    pub n: usize,
+    /// Input features.
+    pub k: usize,
+    tile_bytes: usize,
+    data: Vec<Line>,
+}
+
+/// Whether this processor runs the kernels (AVX-512 F/BW and VNNI).
+pub fn available() -> bool {
+    #[cfg(target_arch = "x86_64")]
+    {
+        static AVAILABLE: OnceLock<bool> = OnceLock::new();
+        *AVAILABLE.get_or_init(|| {
+            is_x86_feature_detected!("avx512f")
+                && is_x86_feature_detected!("avx512bw")
+                && is_x86_feature_detected!("avx512vnni")
+        })
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    false
+}
+
+/// Whether loads should repack weights for these kernels: the processor has them and
+/// `ASSIZE_KERNELS=candle` (candle's own kernels, for comparison) is not set. Read once.
+pub fn enabled() -> bool {
+    static ENABLED: OnceLock<bool> = OnceLock::new();
+    *ENABLED.get_or_init(|| {
+        available() && std::env::var("ASSIZE_KERNELS").map_or(true, |v| v != "candle")
+    })
+}
+
+/// IEEE 754 binary16 to f32 (exact; subnormals included).
+fn f16_to_f32(bits: u16) -> f32 {
+    let sign = ((bits >> 15) as u32) << 31;
+    let exp = ((bits >> 10) & 0x1f) as u32;
+    let man = (bits & 0x3ff) as u32;
+    let v = match (exp, man) {
+        (0, 0) => sign,
+        (0, _) => {
+            // Subnormal: man · 2^-24, exact in f32.
+            let f = man as f32 * (1.0 / 16_777_216.0);
+            return if sign != 0 { -f } else { f };
+        }
+        (31, 0) => sign | 0x7f80_0000,
+        (31, _) => sign | 0x7fc0_0000 | (man << 13),
+        _ => sign | ((exp + 112) << 23) | (man << 13),
+    };
+    f32::from_bits(v)
+}
+
+fn f16_at(b: &[u8], at: usize) -> f32 {
+    f16_to_f32(u16::from_le_bytes([b[at], b[at + 1]]))
+}
+
+/// ggml's unpacking of the 6-bit scale and min of sub-block `j` of a Q4_K block.
+fn scale_min_k4(j: usize, s: &[u8]) -> (u8, u8) {
+    if j < 4 {
+        (s[j] & 63, s[j + 4] & 63)
+    } else {
+        (
+            (s[j + 4] & 0x0f) | ((s[j - 4] >> 6) << 4),
+            (s[j + 4] >> 4) | ((s[j] >> 6) << 4),
+        )
+    }
+}
+
+fn put_f32(dst: &mut [u8], v: f32) {
+    dst[..4].copy_from_slice(&v.to_le_bytes());
+}
+
+impl Packed {
+    /// Repack `qt` (`n × k`, GGUF order) for the kernels; `None` when its type or shape
+    /// is not covered (`n` must be a multiple of 16; `k` of 256 for Q4_K / Q6_K, of 32
+    /// for Q4_0 / Q5_0 / Q8_0).
+    pub fn new(qt: &QTensor) -> candle_core::Result<Option<Packed>> {
+        let (n, k) = qt.shape().dims2()?;
+        if n == 0 || k == 0 || !n.is_multiple_of(TILE_N) {
+            return Ok(None);
+        }
+        let dtype = qt.dtype();
+        let (format, sb_bytes, sb_vals) = match dtype {
+            GgmlDType::Q4K if k.is_multiple_of(QK) => (Format::Q4K, Q4K_SB, QK),
+            GgmlDType::Q6K if k.is_multiple_of(QK) => (Format::Q6K, Q6K_SB, QK),
+            GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0 if k.is_multiple_of(32) => {
+                (Format::Q8_0, Q8_BLK, 32)
+            }
+            _ => return Ok(None),
+        };
+        let blocks = k / sb_vals;
+        let tile_bytes = blocks * sb_bytes;
+        let mut data = vec![Line([0; 64]); n / TILE_N * tile_bytes / 64];
+        let src = qt.data()?;
+        let src_block = dtype.type_size();
+        // Q4_0 / Q5_0 values come dequantised from candle and are requantised exactly
+        // with the block's own scale (each is d · q with an integer |q| <= 16).
+        let values = if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0) {
+            Some(
+                qt.dequantize(&Device::Cpu)?
+                    .flatten_all()?
+                    .to_vec1::<f32>()?,
+            )
+        } else {
+            None
+        };
+        // SAFETY: `Line` is 64 plain bytes; the byte view covers exactly `data`.
+        let out = unsafe {
+            std::slice::from_raw_parts_mut(data.as_mut_ptr() as *mut u8, data.len() * 64)
+        };
+        for row in 0..n {
+            let (tile, col) = (row / TILE_N, row % TILE_N);
+            for b in 0..blocks {
+                let blk = &src[(row * blocks + b) * src_block..][..src_block];
+                let dst = &mut out[tile * tile_bytes + b * sb_bytes..][..sb_bytes];
+                match format {
+                    Format::Q4K => pack_q4k(blk, dst, col),
+                    Format::Q6K => pack_q6k(blk, dst, col),
+                    Format::Q8_0 => {
+                        let d = f16_at(blk, 0);
+                        let mut q = [0i8; 32];
+                        match &values {
+                            Some(v) => {
+                                for (i, qi) in q.iter_mut().enumerate() {
+                                    let y = v[row * k + b * 32 + i];
+                                    *qi = if d == 0.0 { 0 } else { (y / d).round() as i8 };
+                                }
+                            }
+                            None => q.iter_mut().zip(&blk[2..34]).for_each(|(q, &b)| {
+                                *q = b as i8;
+                            }),
+                        }
+                        pack_q8_0(d, &q, dst, col);
+                    }
+                }
+            }
+        }
+        Ok(Some(Packed {
+            format,
+            n,
+            k,
+            tile_bytes,
+            data,
+        }))
+    }
+
+    /// Bytes held by the repacked weight.
+    pub fn bytes(&self) -> usize {
+        self.data.len() * 64
+    }
+
+    /// The weight format of the tiles.
+    pub fn format(&self) -> Format {
+        self.format
+    }
+
+    /// `y = x · Wᵀ` for `m` rows of `x` (`m × k`, row-major): `m × n`, on candle's
+    /// worker pool.
+    pub fn forward(&self, x: &[f32], m: usize) -> Vec<f32> {
+        self.run(x, m, true)
+    }
+
+    /// `forward` with the work split over the pool (`parallel`) or run on this thread.
+    fn run(&self, x: &[f32], m: usize, parallel: bool) -> Vec<f32> {
+        assert_eq!(x.len(), m * self.k, "activation rows of the wrong width");
+        let acts = Acts::quantise(x, m, self.k, parallel);
+        let mut out = vec![0f32; m * self.n];
+        let shared = SharedOut(out.as_mut_ptr());
+        let tiles = self.n / TILE_N;
+        let unit = |range: std::ops::Range<usize>| {
+            for t in range {
+                // SAFETY: tile t writes only columns [16 t, 16 t + 16) of each row of
+                // `out`, which outlives this call; features checked by `enabled()`.
+                unsafe { self.tile(t, &acts, shared.ptr()) };
+            }
+        };
+        if parallel {
+            candle_core::utils::barrier_pool().execute_chunked(tiles, unit);
+        } else {
+            unit(0..tiles);
+        }
+        out
+    }
+
+    /// All rows of `acts` against tile `t`, `MT` rows at a time, then one by one; the
+    /// per-row instruction sequence is the same either way.
+    unsafe fn tile(&self, t: usize, acts: &Acts, out: *mut f32) {
+        let base = (self.data.as_ptr() as *const u8).add(t * self.tile_bytes);
+        let mut r = 0;
+        while r + MT <= acts.m {
+            self.rows::<MT>(base, acts, r, out.add(r * self.n + t * TILE_N));
+            r += MT;
+        }
+        while r < acts.m {
+            self.rows::<1>(base, acts, r, out.add(r * self.n + t * TILE_N));
+            r += 1;
+        }
+    }
+
+    #[inline(always)]
+    unsafe fn rows<const R: usize>(&self, w: *const u8, a: &Acts, r0: usize, out: *mut f32) {
+        #[cfg(target_arch = "x86_64")]
+        match self.format {
+            Format::Q4K => vnni::q4k::<R>(w, a, r0, self.n, out),
+            Format::Q6K => vnni::q6k::<R>(w, a, r0, self.n, out),
+            Format::Q8_0 => vnni::q8_0::<R>(w, a, r0, self.k / 32, self.n, out),
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        let _ = (w, a, r0, out);
+    }
+}
+
+fn pack_q4k(blk: &[u8], dst: &mut [u8], col: usize) {
+    let (d, dmin) = (f16_at(blk, 0), f16_at(blk, 2));
+    let scales = &blk[4..16];
+    let qs = &blk[16..144];
+    let mut v = [0u8; QK];
+    for c in 0..4 {
+        for j in 0..32 {
+            v[c * 64 + j] = qs[c * 32 + j] & 0x0f;
+            v[c * 64 + 32 + j] = qs[c * 32 + j] >> 4;
+        }
+    }
+    for s in 0..8 {
+        for g in 0..4 {
+            for j in 0..4 {
+                let i = s * 32 + g * 8 + j;
+                dst[(s * 4 + g) * 64 + col * 4 + j] = v[i] | (v[i + 4] << 4);
+            }
+        }
+        let (sc, mn) = scale_min_k4(s, scales);
+        dst[2048 + s * 16 + col] = sc;
+        dst[2176 + (s / 2) * 32 + col * 2 + s % 2] = mn;
+    }
+    put_f32(&mut dst[2304 + col * 4..], d);
+    put_f32(&mut dst[2368 + col * 4..], dmin);
+}
+
+fn pack_q6k(blk: &[u8], dst: &mut [u8], col: usize) {
+    let (ql, qh, scales) = (&blk[..128], &blk[128..192], &blk[192..208]);
+    let d = f16_at(blk, 208);
+    let mut v = [0u8; QK];
+    for h in 0..2 {
+        let (ql, qh) = (&ql[h * 64..], &qh[h * 32..]);
+        for j in 0..32 {
+            v[h * 128 + j] = (ql[j] & 0x0f) | ((qh[j] & 3) << 4);
+            v[h * 128 + j + 32] = (ql[j + 32] & 0x0f) | (((qh[j] >> 2) & 3) << 4);
+            v[h * 128 + j + 64] = (ql[j] >> 4) | (((qh[j] >> 4) & 3) << 4);
+            v[h * 128 + j + 96] = (ql[j + 32] >> 4) | (((qh[j] >> 6) & 3) << 4);
+        }
+    }
+    for s in 0..16 {
+        for g in 0..4 {
+            for j in 0..4 {
+                dst[(s * 4 + g) * 64 + col * 4 + j] = v[s * 16 + g * 4 + j];
+            }
+        }
+        dst[4096 + s * 16 + col] = scales[s];
+    }
+    put_f32(&mut dst[4352 + col * 4..], d);
+}
+
+fn pack_q8_0(d: f32, q: &[i8; 32], dst: &mut [u8], col: usize) {
+    for g in 0..8 {
+        for j in 0..4 {
+            dst[g * 64 + col * 4 + j] = (q[g * 4 + j] as i16 + 128) as u8;
+        }
+    }
+    put_f32(&mut dst[512 + col * 4..], d);
+}
+
+/// Activation rows quantised to Q8_K, zero-padded to whole super-blocks, with the
+/// per-sub-block sums each weight format needs for its offset or min term.
+struct Acts {
+    m: usize,
+    /// Super-blocks per row.
+    kb: usize,
+    /// Quants, `m × kb × 256`.
+    q: Vec<i8>,
+    /// Scale per super-block, `m × kb`.
+    d: Vec<f32>,
+    /// Q4_K mins: sums of sub-blocks 2p and 2p+1 (32 values each) as two i16 halves
+    /// of one i32, `m × kb × 4`.
+    sum32_pairs: Vec<i32>,
+    /// Q6_K offset: −32 · sum of each 16 quants, `m × kb × 16`.
+    corr16: Vec<i32>,
+    /// Q8_0 offset: −128 · sum of each 32 quants, `m × kb × 8`.
+    corr32: Vec<i32>,
+}
+
+impl Acts {
+    fn quantise(x: &[f32], m: usize, k: usize, parallel: bool) -> Acts {
+        let kb = k.div_ceil(QK);
+        let mut a = Acts {
+            m,
+            kb,
+            q: vec![0; m * kb * QK],
+            d: vec![0.0; m * kb],
+            sum32_pairs: vec![0; m * kb * 4],
+            corr16: vec![0; m * kb * 16],
+            corr32: vec![0; m * kb * 8],
+        };
+        let ptrs = ActsPtrs {
+            q: a.q.as_mut_ptr(),
+            d: a.d.as_mut_ptr(),
+            p: a.sum32_pairs.as_mut_ptr(),
+            c16: a.corr16.as_mut_ptr(),
+            c32: a.corr32.as_mut_ptr(),
+        };
+        let unit = |rows: std::ops::Range<usize>| {
+            for r in rows {
+                // SAFETY: row r writes only its own slices of the buffers.
+                unsafe { ptrs.row(r, &x[r * k..(r + 1) * k], kb) };
+            }
+        };
+        if parallel && m > 1 {
+            candle_core::utils::barrier_pool().execute_chunked(m, unit);
+        } else {
+            unit(0..m);
+        }
+        a
+    }
+}
+
+/// Raw views of the `Acts` buffers, each row written by one worker.
+struct ActsPtrs {
+    q: *mut i8,
+    d: *mut f32,
+    p: *mut i32,
+    c16: *mut i32,
+    c32: *mut i32,
+}
+// SAFETY: workers write disjoint rows.
+unsafe impl Sync for ActsPtrs {}
+
+impl ActsPtrs {
+    unsafe fn row(&self, r: usize, x: &[f32], kb: usize) {
+        let q = std::slice::from_raw_parts_mut(self.q.add(r * kb * QK), kb * QK);
+        for (b, xs) in x.chunks(QK).enumerate() {
+            let qb = &mut q[b * QK..(b + 1) * QK];
+            let d = quantise_block(xs, qb);
+            *self.d.add(r * kb + b) = d;
+            let mut s16 = [0i32; 16];
+            for (j, s) in s16.iter_mut().enumerate() {
+                *s = qb[j * 16..(j + 1) * 16].iter().map(|&v| v as i32).sum();
+            }
+            for p in 0..4 {
+                let lo = (s16[4 * p] + s16[4 * p + 1]) as i16 as u16 as u32;
+                let hi = (s16[4 * p + 2] + s16[4 * p + 3]) as i16 as u16 as u32;
+                *self.p.add((r * kb + b) * 4 + p) = (lo | (hi << 16)) as i32;
+            }
+            for (j, s) in s16.iter().enumerate() {
+                *self.c16.add((r * kb + b) * 16 + j) = -32 * s;
+            }
+            for j in 0..8 {
+                *self.c32.add((r * kb + b) * 8 + j) = -128 * (s16[2 * j] + s16[2 * j + 1]);
+            }
+        }
+    }
+}
+
+/// ggml's Q8_K rule for up to 256 values (the rest of `q` stays zero): the value of
+/// largest magnitude maps to ∓127. Returns the scale `d`.
+fn quantise_block(xs: &[f32], q: &mut [i8]) -> f32 {
+    let (mut max, mut amax) = (0f32, 0f32);
+    for &v in xs {
+        if amax < v.abs() {
+            amax = v.abs();
+            max = v;
+        }
+    }
+    if amax == 0.0 {
+        return 0.0;
+    }
+    let iscale = -127.0 / max;
+    #[cfg(target_arch = "x86_64")]
+    if available() {
+        // SAFETY: features checked just above.
+        unsafe { vnni::quantise(xs, iscale, q) };
+        return 1.0 / iscale;
+    }
+    for (q, &v) in q.iter_mut().zip(xs) {
+        *q = (iscale * v).round_ties_even().clamp(-128.0, 127.0) as i8;
+    }
+    1.0 / iscale
+}
+
+/// Output buffer shared by tile workers; each writes its own 16 columns.
+struct SharedOut(*mut f32);
+// SAFETY: workers write disjoint column ranges.
+unsafe impl Sync for SharedOut {}
+impl SharedOut {
+    fn ptr(&self) -> *mut f32 {
+        self.0
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+mod vnni {
+    use super::{Acts, QK};
+    use std::arch::x86_64::*;
+
+    /// Broadcast 4 activation quants (one i32) to all lanes.
+    #[inline(always)]
+    unsafe fn bcast(p: *const i8) -> __m512i {
+        _mm512_set1_epi32((p as *const i32).read_unaligned())
+    }
+
+    #[inline(always)]
+    unsafe fn load(p: *const u8) -> __m512i {
+        _mm512_load_si512(p as *const __m512i)
+    }
+
+    /// `q = round_ties_even(iscale · x)` clamped to i8, 16 values at a time.
+    #[target_feature(enable = "avx512f,avx512bw")]
+    pub(super) unsafe fn quantise(xs: &[f32], iscale: f32, q: &mut [i8]) {
+        let s = _mm512_set1_ps(iscale);
+        let lo = _mm512_set1_epi32(-128);
+        let hi = _mm512_set1_epi32(127);
+        for (i, chunk) in xs.chunks_exact(16).enumerate() {
+            let v = _mm512_mul_ps(_mm512_loadu_ps(chunk.as_ptr()), s);
+            let r = _mm512_cvtps_epi32(v); // MXCSR default: nearest, ties to even
+            let r = _mm512_min_epi32(_mm512_max_epi32(r, lo), hi);
+            _mm_storeu_si128(q.as_mut_ptr().add(i * 16) as *mut __m128i, _mm512_cvtepi32_epi8(r));
+        }
+    }
+
+    /// Q4_K: `R` rows from `r0` against one tile.
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
+    pub(super) unsafe fn q4k<const R: usize>(
+        w: *const u8,
+        a: &Acts,
+        r0: usize,
+        n: usize,
+        out: *mut f32,
+    ) {
+        let mask = _mm512_set1_epi8(0x0f);
+        let kb = a.kb;
+        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
+        let mut acc = [_mm512_setzero_ps(); R];
+        for b in 0..kb {
+            let sb = w.add(b * super::Q4K_SB);
+            let mut sumi = [_mm512_setzero_si512(); R];
+            for sp in 0..4 {
+                let mut ia = [_mm512_setzero_si512(); R];
+                let mut ib = [_mm512_setzero_si512(); R];
+                for g in 0..4 {
+                    let wa = load(sb.add((sp * 8 + g) * 64));
+                    let wb = load(sb.add((sp * 8 + 4 + g) * 64));
+                    let la = _mm512_and_si512(wa, mask);
+                    let ha = _mm512_and_si512(_mm512_srli_epi16::<4>(wa), mask);
+                    let lb = _mm512_and_si512(wb, mask);
+                    let hb = _mm512_and_si512(_mm512_srli_epi16::<4>(wb), mask);
+                    let off = b * QK + sp * 64 + g * 8;
+                    for i in 0..R {
+                        let x = xq[i].add(off);
+                        ia[i] = _mm512_dpbusd_epi32(ia[i], la, bcast(x));
+                        ia[i] = _mm512_dpbusd_epi32(ia[i], ha, bcast(x.add(4)));
+                        ib[i] = _mm512_dpbusd_epi32(ib[i], lb, bcast(x.add(32)));
+                        ib[i] = _mm512_dpbusd_epi32(ib[i], hb, bcast(x.add(36)));
+                    }
+                }
+                let sa = _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32) as *const _));
+                let sbv =
+                    _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32 + 16) as *const _));
+                for i in 0..R {
+                    let t = _mm512_add_epi32(
+                        _mm512_mullo_epi32(ia[i], sa),
+                        _mm512_mullo_epi32(ib[i], sbv),
+                    );
+                    sumi[i] = _mm512_add_epi32(sumi[i], t);
+                }
+            }
+            let mut mins = [_mm512_setzero_si512(); R];
+            for p in 0..4 {
+                let mn = _mm512_cvtepu8_epi16(_mm256_load_si256(sb.add(2176 + p * 32) as *const _));
+                for i in 0..R {
+                    let s = *a.sum32_pairs.get_unchecked(((r0 + i) * kb + b) * 4 + p);
+                    mins[i] = _mm512_dpwssd_epi32(mins[i], mn, _mm512_set1_epi32(s));
+                }
+            }
+            let d = _mm512_load_ps(sb.add(2304) as *const f32);
+            let dmin = _mm512_load_ps(sb.add(2368) as *const f32);
+            for i in 0..R {
+                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
+                let f = _mm512_cvtepi32_ps(sumi[i]);
+                acc[i] = _mm512_fmadd_ps(f, _mm512_mul_ps(d, dx), acc[i]);
+                let fm = _mm512_cvtepi32_ps(mins[i]);
+                acc[i] = _mm512_fnmadd_ps(fm, _mm512_mul_ps(dmin, dx), acc[i]);
+            }
+        }
+        for (i, v) in acc.iter().enumerate() {
+            _mm512_storeu_ps(out.add(i * n), *v);
+        }
+    }
+
+    /// Q6_K: `R` rows from `r0` against one tile.
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
+    pub(super) unsafe fn q6k<const R: usize>(
+        w: *const u8,
+        a: &Acts,
+        r0: usize,
+        n: usize,
+        out: *mut f32,
+    ) {
+        let kb = a.kb;
+        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
+        let mut acc = [_mm512_setzero_ps(); R];
+        for b in 0..kb {
+            let sb = w.add(b * super::Q6K_SB);
+            let mut sumi = [_mm512_setzero_si512(); R];
+            for sp in 0..8 {
+                let c = |i: usize, s: usize| {
+                    _mm512_set1_epi32(*a.corr16.get_unchecked(((r0 + i) * kb + b) * 16 + s))
+                };
+                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * sp));
+                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * sp + 1));
+                for g in 0..4 {
+                    let wa = load(sb.add((sp * 8 + g) * 64));
+                    let wb = load(sb.add((sp * 8 + 4 + g) * 64));
+                    let off = b * QK + sp * 32 + g * 4;
+                    for i in 0..R {
+                        let x = xq[i].add(off);
+                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(x));
+                        ib[i] = _mm512_dpbusd_epi32(ib[i], wb, bcast(x.add(16)));
+                    }
+                }
+                let sa = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(4096 + sp * 32) as *const _));
+                let sbv =
+                    _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(4096 + sp * 32 + 16) as *const _));
+                for i in 0..R {
+                    let t = _mm512_add_epi32(
+                        _mm512_mullo_epi32(ia[i], sa),
+                        _mm512_mullo_epi32(ib[i], sbv),
+                    );
+                    sumi[i] = _mm512_add_epi32(sumi[i], t);
+                }
+            }
+            let d = _mm512_load_ps(sb.add(4352) as *const f32);
+            for i in 0..R {
+                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
+                let f = _mm512_cvtepi32_ps(sumi[i]);
+                acc[i] = _mm512_fmadd_ps(f, _mm512_mul_ps(d, dx), acc[i]);
+            }
+        }
+        for (i, v) in acc.iter().enumerate() {
+            _mm512_storeu_ps(out.add(i * n), *v);
+        }
+    }
+
+    /// Q8_0 (`nb` 32-value blocks per row): `R` rows from `r0` against one tile.
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
+    pub(super) unsafe fn q8_0<const R: usize>(
+        w: *const u8,
+        a: &Acts,
+        r0: usize,
+        nb: usize,
+        n: usize,
+        out: *mut f32,
+    ) {
+        let kb = a.kb;
+        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
+        let c = |i: usize, blk: usize| {
+            _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk))
+        };
+        let mut acc = [_mm512_setzero_ps(); R];
+        for b in 0..kb {
+            let end = nb.min(b * 8 + 8);
+            let mut f = [_mm512_setzero_ps(); R];
+            let mut j = b * 8;
+            while j + 2 <= end {
+                let (pa, pb) = (w.add(j * super::Q8_BLK), w.add((j + 1) * super::Q8_BLK));
+                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, j));
+                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, j + 1));
+                for g in 0..8 {
+                    let (wa, wb) = (load(pa.add(g * 64)), load(pb.add(g * 64)));
+                    for i in 0..R {
+                        let x = xq[i].add(j * 32 + g * 4);
+                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(x));
+                        ib[i] = _mm512_dpbusd_epi32(ib[i], wb, bcast(x.add(32)));
+                    }
+                }
+                let da = _mm512_load_ps(pa.add(512) as *const f32);
+                let db = _mm512_load_ps(pb.add(512) as *const f32);
+                for i in 0..R {
+                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), da, f[i]);
+                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ib[i]), db, f[i]);
+                }
+                j += 2;
+            }
+            if j < end {
+                let pa = w.add(j * super::Q8_BLK);
+                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, j));
+                for g in 0..8 {
+                    let wa = load(pa.add(g * 64));
+                    for i in 0..R {
+                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(xq[i].add(j * 32 + g * 4)));
+                    }
+                }
+                let da = _mm512_load_ps(pa.add(512) as *const f32);
+                for i in 0..R {
+                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), da, f[i]);
+                }
+            }
+            for i in 0..R {
+                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
+                acc[i] = _mm512_fmadd_ps(f[i], dx, acc[i]);
+            }
+        }
+        for (i, v) in acc.iter().enumerate() {
+            _mm512_storeu_ps(out.add(i * n), *v);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use candle_core::Tensor;
+
+    /// Pseudo-random values in (-1, 1) with a per-row magnitude, from `seed`.
+    fn values(rows: usize, cols: usize, seed: u64) -> Vec<f32> {
+        let mut s = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
+        (0..rows * cols)
+            .map(|i| {
+                s ^= s << 13;
+                s ^= s >> 7;
+                s ^= s << 17;
+                let u = (s >> 40) as f32 / (1u64 << 24) as f32 * 2.0 - 1.0;
+                u * (0.2 + (i / cols % 5) as f32 * 0.3)
+            })
+            .collect()
+    }
+
+    fn quantised(dtype: GgmlDType, n: usize, k: usize, seed: u64) -> QTensor {
+        let t = Tensor::from_vec(values(n, k, seed), (n, k), &Device::Cpu).expect("tensor");
+        QTensor::quantize(&t, dtype).expect("quantize")
+    }
+
+    fn bits(v: &[f32]) -> Vec<u32> {
+        v.iter().map(|x| x.to_bits()).collect()
+    }
+
+    /// f64 products of candle's dequantised weights with the dequantised Q8_K rows
+    /// (`d · q`), and the sum of |terms| of each product for the error bound.
+    fn reference(qt: &QTensor, x: &[f32], m: usize) -> (Vec<f64>, Vec<f64>) {
+        let (n, k) = qt.shape().dims2().expect("2-d");
+        let w = qt
+            .dequantize(&Device::Cpu)
+            .and_then(|t| t.flatten_all())
+            .and_then(|t| t.to_vec1::<f32>())
+            .expect("dequantize");
+        let a = Acts::quantise(x, m, k, false);
+        let mut y = vec![0f64; m * n];
+        let mut mag = vec![0f64; m * n];
+        for r in 0..m {
+            let xr: Vec<f64> = (0..k)
+                .map(|i| a.d[r * a.kb + i / QK] as f64 * a.q[r * a.kb * QK + i] as f64)
+                .collect();
+            for c in 0..n {
+                for i in 0..k {
+                    let t = w[c * k + i] as f64 * xr[i];
+                    y[r * n + c] += t;
+                    mag[r * n + c] += t.abs();
+                }
+            }
+        }
+        (y, mag)
+    }
+
+    fn check_against_reference(dtype: GgmlDType, n: usize, k: usize, m: usize) {
+        if !available() {
+            return;
+        }
+        let qt = quantised(dtype, n, k, 7);
+        let p = Packed::new(&qt).expect("pack").expect("covered");
+        let x = values(m, k, 11);
+        let y = p.forward(&x, m);
+        let (want, mag) = reference(&qt, &x, m);
+        for (i, ((&y, &w), &g)) in y.iter().zip(&want).zip(&mag).enumerate() {
+            let err = (y as f64 - w).abs();
+            assert!(
+                err <= 2e-6 * g + 1e-6,
+                "{dtype:?} element {i}: kernel {y}, reference {w}, |terms| {g}"
+            );
+        }
+    }
+
+    /// Q4_K layout of ggml (`block_q4_K`, Gerganov et al.): the kernel equals the f64
+    /// product of candle's dequantised weights with the same Q8_K activations, up to
+    /// f32 rounding.
+    #[test]
+    fn q4k_gemm_matches_dequantised_reference() {
+        check_against_reference(GgmlDType::Q4K, 48, 512, 6);
+    }
+
+    /// ggml `block_q6_K`: as for Q4_K.
+    #[test]
+    fn q6k_gemm_matches_dequantised_reference() {
+        check_against_reference(GgmlDType::Q6K, 32, 768, 5);
+    }
+
+    /// ggml `block_q8_0`, with an inner width (640) that ends in a partial activation
+    /// super-block.
+    #[test]
+    fn q8_0_gemm_with_partial_superblock_matches_dequantised_reference() {
+        check_against_reference(GgmlDType::Q8_0, 32, 640, 7);
+    }
+
+    /// ggml `block_q5_0` and `block_q4_0` weights become Q8_0 tiles exactly: the
+    /// reference uses candle's dequantisation of the original Q5_0 / Q4_0 weight.
+    #[test]
+    fn q5_0_and_q4_0_weights_repack_exactly_as_q8_0() {
+        check_against_reference(GgmlDType::Q5_0, 16, 896, 4);
+        check_against_reference(GgmlDType::Q4_0, 16, 320, 3);
+    }
+
+    /// Activation quantisation is ggml's Q8_K rule as candle implements it
+    /// (`BlockQ8K::from_float`): same dequantised values.
+    #[test]
+    fn activation_quantisation_matches_candle_q8k() {
+        let (m, k) = (3, 512);
+        let x = values(m, k, 5);
+        let t = Tensor::from_vec(x.clone(), (m, k), &Device::Cpu).expect("tensor");
+        let want = QTensor::quantize(&t, GgmlDType::Q8K)
+            .and_then(|q| q.dequantize(&Device::Cpu))
+            .and_then(|t| t.flatten_all())
+            .and_then(|t| t.to_vec1::<f32>())
+            .expect("candle q8k");
+        let a = Acts::quantise(&x, m, k, false);
+        let ours: Vec<f32> = (0..m * k)
+            .map(|i| a.d[i / QK] * a.q[i] as f32)
+            .collect();
+        assert_eq!(bits(&ours), bits(&want));
+    }
+
+    /// A row's result does not depend on the other rows of the call: each of 37 rows
+    /// (9 groups of four and a remainder) equals the same row multiplied alone, bit
+    /// for bit, for every format.
+    #[test]
+    fn row_result_is_identical_alone_and_in_a_batch_of_37() {
+        if !available() {
+            return;
+        }
+        for (dtype, k) in [
+            (GgmlDType::Q4K, 512),
+            (GgmlDType::Q6K, 256),
+            (GgmlDType::Q8_0, 320),
+        ] {
+            let (n, m) = (32, 37);
+            let p = Packed::new(&quantised(dtype, n, k, 3))
+                .expect("pack")
+                .expect("covered");
+            let x = values(m, k, 9);
+            let batch = p.forward(&x, m);
+            for r in 0..m {
+                let alone = p.forward(&x[r * k..(r + 1) * k], 1);
+                assert_eq!(
+                    bits(&alone),
+                    bits(&batch[r * n..(r + 1) * n]),
+                    "{dtype:?} row {r}"
+                );
+            }
+        }
+    }
+
+    /// The same bits whether the tiles run on candle's worker pool or on one thread.
+    #[test]
+    fn pooled_and_single_thread_runs_are_bit_identical() {
+        if !available() {
+            return;
+        }
+        for dtype in [GgmlDType::Q4K, GgmlDType::Q6K, GgmlDType::Q8_0] {
+            let (n, k, m) = (256, 512, 37);
+            let p = Packed::new(&quantised(dtype, n, k, 4))
+                .expect("pack")
+                .expect("covered");
+            let x = values(m, k, 8);
+            assert_eq!(
+                bits(&p.run(&x, m, true)),
+                bits(&p.run(&x, m, false)),
+                "{dtype:?}"
+            );
+        }
+    }
+
+    /// Shapes the tiles cannot hold are declined, not mispacked.
+    #[test]
+    fn uncovered_shapes_and_types_are_declined() {
+        let odd_n = quantised(GgmlDType::Q4K, 24, 256, 1);
+        assert!(Packed::new(&odd_n).expect("pack").is_none());
+        let q4_1 = quantised(GgmlDType::Q4_1, 16, 256, 1);
+        assert!(Packed::new(&q4_1).expect("pack").is_none());
+    }
+
+    /// binary16 edge values convert exactly (IEEE 754-2008 encodings).
+    #[test]
+    fn f16_conversion_is_exact_on_edge_values() {
+        assert_eq!(f16_to_f32(0x3c00), 1.0);
+        assert_eq!(f16_to_f32(0xc000), -2.0);
+        assert_eq!(f16_to_f32(0x0001), 2f32.powi(-24));
+        assert_eq!(f16_to_f32(0x7bff), 65504.0);
+        assert_eq!(f16_to_f32(0x8000).to_bits(), (-0.0f32).to_bits());
+        assert!(f16_to_f32(0x7c00).is_infinite());
+    }
+}
