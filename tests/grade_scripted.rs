@@ -164,3 +164,41 @@ fn generated_steps_are_cached_and_used_in_forms() {
         assert_eq!(r.rationale.as_deref(), Some("Check every fact.\n2. Decide."));
     }
 }
+
+/// Few-shot anchors from the human labels are shown in every form, chosen the same
+/// way on every run (seeded), and never taken from the graded item's own question.
+#[test]
+fn anchors_are_shown_seeded_and_never_from_the_same_question() {
+    use assize::data::{read_answers, read_labels};
+    use assize::judge::anchors::AnchorPool;
+    use assize::rubric::load_rubric;
+    let answers = read_answers(&root().join("demo-data/answers.jsonl")).expect("answers");
+    let labels = read_labels(&root().join("demo-data/labels.csv")).expect("labels");
+    let rubric = load_rubric(&root().join("judge-templates/rubrics/quick.toml")).expect("rubric");
+    let pool = AnchorPool::build(&answers, &labels, &rubric, 3, 7);
+    let again = AnchorPool::build(&answers, &labels, &rubric, 3, 7);
+    for q in ["q01", "q02", "q10", "q33"] {
+        let shown = pool.for_item("correctness", q);
+        assert_eq!(shown.len(), 3);
+        let own = answers.iter().find(|a| a.question_id == q).expect("question").question.clone();
+        assert!(shown.iter().all(|a| a.question != own), "anchor from the item's own question");
+        let same: Vec<String> = again.for_item("correctness", q).iter().map(|a| a.answer.clone()).collect();
+        assert_eq!(shown.iter().map(|a| a.answer.clone()).collect::<Vec<_>>(), same);
+    }
+    let labels_shown: std::collections::HashSet<String> =
+        pool.for_item("correctness", "q99").iter().map(|a| a.label.clone()).collect();
+    assert!(labels_shown.len() >= 2, "anchors cover different labels: {labels_shown:?}");
+
+    let dir = tempfile::tempdir().expect("tmp");
+    let mut a = args(dir.path().join("run"));
+    a.anchors = Some(root().join("demo-data/labels.csv"));
+    a.limit = Some(2);
+    let p = prepare(&a).expect("inputs");
+    let judge = ScriptedJudge {
+        rules: vec![("Graded examples for this criterion".into(), vec![-0.01, -9.0, -9.0, -9.0, -9.0])],
+        ..Default::default()
+    };
+    grade_run(&a, &p, &judge).expect("run");
+    let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
+    assert!(recs.iter().all(|r| r.argmax == "1"), "every form showed anchors");
+}
