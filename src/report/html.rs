@@ -33,7 +33,16 @@ fn num(v: Option<f64>, digits: Option<usize>) -> String {
 /// `signed(v, digits)`: like `num`, with an explicit sign.
 fn signed(v: Option<f64>, digits: Option<usize>) -> String {
     match v {
-        Some(x) if x.is_finite() => format!("{:+.*}", digits.unwrap_or(2), x),
+        // A value that rounds to zero prints as +0.00, never -0.00.
+        Some(x) if x.is_finite() => {
+            let d = digits.unwrap_or(2);
+            let shown = format!("{x:+.d$}");
+            if shown.trim_start_matches(['-', '+']).chars().all(|c| c == '0' || c == '.') {
+                shown.replacen('-', "+", 1)
+            } else {
+                shown
+            }
+        }
         _ => "n/a".into(),
     }
 }
@@ -90,6 +99,8 @@ mod tests {
         assert_eq!(num(Some(f64::NAN), Some(1)), "n/a");
         assert_eq!(num(Some(0.126), Some(2)), "0.13");
         assert_eq!(signed(Some(0.5), Some(1)), "+0.5");
+        assert_eq!(signed(Some(-0.001), Some(2)), "+0.00");
+        assert_eq!(signed(Some(-0.05), Some(2)), "-0.05");
     }
 
     #[test]

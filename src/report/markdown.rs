@@ -19,6 +19,16 @@ fn num(v: f64, digits: usize) -> String {
     }
 }
 
+/// Signed, with a value that rounds to zero written `+0.00`, never `-0.00`.
+fn signed(v: f64) -> String {
+    let s = format!("{v:+.2}");
+    if s == "-0.00" {
+        "+0.00".into()
+    } else {
+        s
+    }
+}
+
 fn opt(v: Option<f64>, digits: usize) -> String {
     v.map_or_else(|| "n/a".into(), |x| num(x, digits))
 }
@@ -77,14 +87,14 @@ fn deltas_table(s: &mut String, r: &Report) {
         let ci = d.ci.map_or("no interval".to_string(), |(lo, hi)| format!("[{}, {}]", num(lo, 2), num(hi, 2)));
         let _ = writeln!(
             s,
-            "| `{}` | {} | {} → {} | {} | {} | {:+.2} {} | {} |",
+            "| `{}` | {} | {} → {} | {} | {} | {} {} | {} |",
             cell(&d.system),
             d.criterion,
             cell(&d.baseline),
             cell(&d.run),
             num(d.before, 2),
             num(d.after, 2),
-            d.difference,
+            signed(d.difference),
             ci,
             if d.beyond_ci { "**yes**" } else { "no" }
         );
@@ -107,7 +117,7 @@ fn trust_table(s: &mut String, r: &Report) {
     for run in vetted {
         for t in &run.trust {
             let verdict = if t.thin_evidence { format!("**{}** (thin evidence)", t.verdict) } else { format!("**{}**", t.verdict) };
-            let gap = t.gap.map_or("n/a".to_string(), |g| format!("{:+.2} [{}, {}]", g.estimate, num(g.low, 2), num(g.high, 2)));
+            let gap = t.gap.map_or("n/a".to_string(), |g| format!("{} [{}, {}]", signed(g.estimate), num(g.low, 2), num(g.high, 2)));
             let _ = writeln!(
                 s,
                 "{}| {} | {} | {} | {} | {} | {} |",
