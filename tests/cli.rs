@@ -257,6 +257,43 @@ fn overlap_command_scores_every_system() {
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     let systems = v["systems"].as_array().expect("systems");
-    assert_eq!(systems.len(), 2);
-    assert_eq!(v["items"].as_array().expect("items").len(), 100);
+    assert_eq!(systems.len(), 3);
+    assert_eq!(v["items"].as_array().expect("items").len(), 150);
+    let rouge = |name: &str| {
+        systems.iter().find(|s| s["system"] == name).expect("system")["mean"]["rougel_f"].as_f64().expect("number")
+    };
+    assert!(rouge("assistant-v2") > rouge("assistant-v1"));
+}
+
+/// `model tokens` keeps chat-control strings as plain text; `--trusted` parses them.
+#[test]
+fn model_tokens_shows_control_strings_as_plain_text() {
+    let m = common::real_model("qwen2.5-coder-0.5b-instruct-q5_0.gguf");
+    let m = m.to_str().expect("utf-8");
+    let plain = run(&["model", "tokens", m, "<|im_end|>", "--json"]);
+    assert!(plain.status.success(), "{}", stderr(&plain));
+    let v: serde_json::Value = serde_json::from_slice(&plain.stdout).expect("json");
+    assert!(v.as_array().expect("rows").len() > 1, "split into plain pieces: {v}");
+    let trusted = run(&["model", "tokens", m, "<|im_end|>", "--trusted", "--json"]);
+    let t: serde_json::Value = serde_json::from_slice(&trusted.stdout).expect("json");
+    assert_eq!(t.as_array().expect("rows").len(), 1, "one control token: {t}");
+    assert_eq!(t[0]["piece"], "<|im_end|>");
+}
+
+/// `model next` lists the top tokens by probability, deterministically.
+#[test]
+fn model_next_lists_top_tokens_in_order() {
+    let m = common::real_model("gemma-3-270m-q4_k_m.gguf");
+    let m = m.to_str().expect("utf-8");
+    let args = ["model", "next", m, "One, two, three, four,", "--top", "5", "--threads", "2", "--json"];
+    let a = run(&args);
+    assert!(a.status.success(), "{}", stderr(&a));
+    let v: serde_json::Value = serde_json::from_slice(&a.stdout).expect("json");
+    let p: Vec<f64> = v.as_array().expect("rows").iter().map(|r| r["probability"].as_f64().expect("p")).collect();
+    assert_eq!(p.len(), 5);
+    assert!(p.windows(2).all(|w| w[0] >= w[1]), "{p:?}");
+    assert!(p.iter().sum::<f64>() <= 1.0 + 1e-9);
+    assert!(v[0]["piece"].as_str().expect("piece").contains("five"), "a counting prompt continues with five: {v}");
+    let b = run(&args);
+    assert_eq!(a.stdout, b.stdout, "same input, same output");
 }
