@@ -108,8 +108,8 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
     let o = Command::new(env!("CARGO_BIN_EXE_assize"))
         .args([
             "report", "--grades", "tests/fixtures/report/before", "--grades", "tests/fixtures/report/after",
-            "--compare", "tests/fixtures/report/compare", "--labels", "demo-data/labels.csv",
-            "--preferences", "demo-data/preferences.csv", "--answers", "demo-data/answers.jsonl",
+            "--compare", "tests/fixtures/report/compare", "--labels", "tests/fixtures/report/labels.csv",
+            "--preferences", "tests/fixtures/report/preferences.csv", "--answers", "tests/fixtures/report/answers.jsonl",
             "--resamples", "300", "--html",
         ])
         .arg(&page)

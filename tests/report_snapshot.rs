@@ -57,7 +57,7 @@ fn peaked(values: &[f64], centre: f64, sharpness: f64, mass: f64) -> Vec<f64> {
 
 fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
     GradeArgs {
-        answers: root().join("demo-data/answers.jsonl"),
+        answers: root().join("tests/fixtures/report/answers.jsonl"),
         rubric: root().join("judge-templates/rubrics/support.toml"),
         criteria: CRITERIA.iter().map(|c| c.0.to_string()).collect(),
         model: ModelArgs { model: "scripted".into(), threads: 1, context: None },
@@ -129,8 +129,8 @@ fn pair_judge(answers: &[AnswerRecord], labels: &[LabelRow]) -> ScriptedJudge {
 
 /// Write the three fixture runs under `dir` with the scripted judges.
 fn generate(dir: &Path) {
-    let answers: Vec<AnswerRecord> = read_answers(&root().join("demo-data/answers.jsonl")).expect("demo answers").into_iter().take(ITEMS).collect();
-    let labels = read_labels(&root().join("demo-data/labels.csv")).expect("demo labels");
+    let answers: Vec<AnswerRecord> = read_answers(&root().join("tests/fixtures/report/answers.jsonl")).expect("demo answers").into_iter().take(ITEMS).collect();
+    let labels = read_labels(&root().join("tests/fixtures/report/labels.csv")).expect("demo labels");
     for (name, after) in [("before", false), ("after", true)] {
         let args = grade_args(dir.join(name), after);
         let p = prepare(&args).expect("grading inputs");
@@ -138,7 +138,7 @@ fn generate(dir: &Path) {
         assert!(report.failed.is_empty());
     }
     let args = CompareArgs {
-        answers: root().join("demo-data/answers.jsonl"),
+        answers: root().join("tests/fixtures/report/answers.jsonl"),
         systems: vec![],
         criterion: None,
         rubric: root().join("judge-templates/rubrics/support.toml"),
@@ -181,8 +181,8 @@ fn fixture_runs_are_what_the_scripted_judge_writes() {
 fn report(extra: &[&str]) -> String {
     let mut args = vec![
         "report", "--grades", "tests/fixtures/report/before", "--grades", "tests/fixtures/report/after",
-        "--compare", "tests/fixtures/report/compare", "--labels", "demo-data/labels.csv",
-        "--preferences", "demo-data/preferences.csv", "--answers", "demo-data/answers.jsonl", "--resamples", "300",
+        "--compare", "tests/fixtures/report/compare", "--labels", "tests/fixtures/report/labels.csv",
+        "--preferences", "tests/fixtures/report/preferences.csv", "--answers", "tests/fixtures/report/answers.jsonl", "--resamples", "300",
     ];
     args.extend_from_slice(extra);
     let o = Command::new(env!("CARGO_BIN_EXE_assize"))

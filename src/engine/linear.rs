@@ -5,12 +5,13 @@
 //! between two calls with the same input and thread count, and never holds more than
 //! two copies of one weight.
 //!
-//! Why several paths: candle's repacked int8 kernels only take Q4_K, Q6_K (several rows)
-//! and Q8_0 weights whose inner dimension is a multiple of 256. Every other weight
-//! (Q5_0, Q4_0, inner dimension 640 or 896) falls back to a row-by-row dot product that
-//! is slow for prompts of many rows; those weights also get a dequantised copy for
-//! prompts, while single-row generation keeps the quantised dot product, which reads
-//! fewer bytes.
+//! Why several paths: on processors with AVX-512 VNNI, Q4_K, Q6_K, Q8_0, Q5_0 and Q4_0
+//! weights are repacked once into this crate's int8 tiles (`kernels`), which serve
+//! every row count and replace the file's copy. Elsewhere, or with
+//! `ASSIZE_KERNELS=candle`, candle's repacked int8 kernels take Q4_K, Q6_K (several
+//! rows) and Q8_0 weights whose inner dimension is a multiple of 256; Q5_0 / Q4_0 are
+//! rewritten as such Q8_0, and any other weight falls back to a row-by-row dot product
+//! plus a dequantised copy for prompts.
 
 use std::borrow::Cow;
 use std::fs::File;
@@ -22,6 +23,7 @@ use candle_core::{DType, Device, Module, Tensor};
 
 use super::decoder::Activation;
 use super::gguf::GgufFile;
+use super::kernels::{self, Packed};
 use super::EngineError;
 
 /// How weights are multiplied.
@@ -40,7 +42,9 @@ const DENSE_MIN_ROWS: usize = 4;
 
 /// One weight matrix `n × k` (GGUF stores it as out-features by in-features).
 pub struct Linear {
-    /// Quantised kernel; serves every row count unless `dense` is set.
+    /// This crate's int8 tiles; when set they serve every row count.
+    packed: Option<Packed>,
+    /// Quantised kernel; serves every row count unless `dense` or `packed` is set.
     quant: Option<QMatMul>,
     /// Dequantised f16 copy for prompts of `DENSE_MIN_ROWS` rows or more; only for
     /// weight types that can be neither packed nor requantised exactly.
@@ -112,6 +116,15 @@ impl Linear {
         if policy == MatmulPolicy::Reference || float {
             return Self::dense_f32(&qt);
         }
+        if kernels::enabled() {
+            if let Some(p) = Packed::new(&qt)? {
+                return Ok(Linear {
+                    packed: Some(p),
+                    quant: None,
+                    ..Self::quantised(QMatMul::QTensor(qt), n, k)
+                });
+            }
+        }
         if packed_kernel(dtype, n, k) {
             return Ok(Self::quantised(QMatMul::QTensor(qt), n, k));
         }
@@ -119,6 +132,7 @@ impl Linear {
             let (q8, k_pad) = requantise_q8_0(&qt, n, k)?;
             let quant = Some(QMatMul::QTensor(Arc::new(q8)));
             return Ok(Linear {
+                packed: None,
                 quant,
                 dense: None,
                 k_pad,
@@ -138,6 +152,7 @@ impl Linear {
     /// candle's `CANDLE_DEQUANTIZE_ALL` variables cannot change the kernels chosen here.
     fn quantised(q: QMatMul, n: usize, k: usize) -> Self {
         Linear {
+            packed: None,
             quant: Some(q),
             dense: None,
             k_pad: k,
@@ -192,12 +207,22 @@ impl Linear {
             .dense
             .as_ref()
             .map_or(0, |t| t.elem_count() * t.dtype().size_in_bytes());
-        q + d
+        q + d + self.packed.as_ref().map_or(0, Packed::bytes)
     }
 
     /// Multiply `m` rows of `x` (`m × k`, row-major) by the weight: `m × n`.
     pub fn forward(&self, x: &[f32], m: usize) -> Result<Vec<f32>, EngineError> {
         let ctx = "matrix multiply";
+        if x.len() != m * self.k {
+            return Err(EngineError::Invalid(format!(
+                "{} activation values for {m} rows of width {}",
+                x.len(),
+                self.k
+            )));
+        }
+        if let Some(p) = &self.packed {
+            return Ok(p.forward(x, m));
+        }
         #[cfg(target_arch = "x86_64")]
         if let (true, Some(QMatMul::QTensor(t))) = (self.vnni, &self.quant) {
             let data = t.data().map_err(EngineError::candle(ctx))?;

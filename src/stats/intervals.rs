@@ -3,7 +3,7 @@
 //! score interval and the exact two-sided binomial p-value. Never does I/O and
 //! never approximates the binomial test with a normal curve.
 
-use statrs::distribution::{Binomial, ContinuousCDF, Discrete, Normal};
+use statrs::distribution::{Binomial, Discrete};
 
 use crate::stats::StatsError;
 
@@ -12,7 +12,8 @@ use crate::stats::StatsError;
 /// probabilities (e.g. k and n − k when p = 0.5) does not drop a tail.
 const BINOM_RELATIVE_TOLERANCE: f64 = 1e-7;
 
-/// Standard normal quantile Φ⁻¹(p) for p in (0, 1), via statrs 0.18.
+/// Standard normal quantile Φ⁻¹(p) for p in (0, 1), checked; the value comes from
+/// [`crate::stats::bootstrap::normal_quantile`] (statrs polished by Newton steps).
 pub fn normal_quantile(p: f64) -> Result<f64, StatsError> {
     if !(p > 0.0 && p < 1.0) {
         return Err(StatsError::OutOfRange {
@@ -20,7 +21,7 @@ pub fn normal_quantile(p: f64) -> Result<f64, StatsError> {
             allowed: "a probability in (0, 1)".into(),
         });
     }
-    Ok(Normal::standard().inverse_cdf(p))
+    Ok(crate::stats::bootstrap::normal_quantile(p))
 }
 
 /// Two-sided critical value z_{1−α/2} for a (1 − α) interval.
