@@ -313,6 +313,9 @@ pub fn compare_text(r: &CompareReport) -> String {
     match &r.ranking {
         Ok(k) => {
             s.push_str("\nranking (debiased verdicts, Bradley-Terry on the Elo scale, 95% bootstrap CI over questions)\n");
+            if let Some(p) = &k.prior {
+                s.push_str(&format!("  note: {p}\n"));
+            }
             for row in &k.rows {
                 s.push_str(&format!(
                     "  {:<20} {:>7.0} [{:>5.0}, {:>5.0}]  wins {:>3}  ties {:>3}  losses {:>3}\n",

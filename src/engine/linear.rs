@@ -118,10 +118,15 @@ impl Linear {
         }
         if kernels::enabled() {
             if let Some(p) = Packed::new(&qt)? {
+                // The file's copy of the weight is dropped with `qt`.
                 return Ok(Linear {
                     packed: Some(p),
                     quant: None,
-                    ..Self::quantised(QMatMul::QTensor(qt), n, k)
+                    dense: None,
+                    k_pad: k,
+                    vnni: false,
+                    n,
+                    k,
                 });
             }
         }

@@ -2,7 +2,9 @@
 //! likelihood (Hunter 2004, MM algorithm; ties as half wins) on the Elo scale, with
 //! seeded bootstrap intervals over questions, and the win/tie/loss matrix. Input:
 //! `PairOutcome`s. Output: `Ranking`. Never hides a disconnected comparison graph:
-//! it says which systems cannot be placed.
+//! it says which systems cannot be placed. When a system won (or lost) every
+//! comparison the plain estimate is infinite; then one virtual tie per compared pair
+//! is added as a weak prior, and the ranking says so.
 
 use std::collections::BTreeSet;
 
@@ -48,6 +50,24 @@ pub struct Ranking {
     pub resamples: usize,
     /// Resamples skipped because the resampled graph had no finite estimate.
     pub skipped: usize,
+    /// Set when the plain maximum-likelihood estimate does not exist (a system won or
+    /// lost every comparison) and one virtual tie was added to every pair of systems
+    /// that met, as a weak prior that keeps the estimate finite; says why.
+    pub prior: Option<String>,
+}
+
+/// One virtual tie (half a win each way) between every pair of systems that met.
+fn with_virtual_ties(mut w: Vec<Vec<f64>>) -> Vec<Vec<f64>> {
+    let n = w.len();
+    for i in 0..n {
+        for j in i + 1..n {
+            if w[i][j] + w[j][i] > 0.0 {
+                w[i][j] += 0.5;
+                w[j][i] += 0.5;
+            }
+        }
+    }
+    w
 }
 
 fn wins_matrix(outcomes: &[&PairOutcome], systems: &[String]) -> Vec<Vec<f64>> {
@@ -76,7 +96,15 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
         .into_iter()
         .collect();
     let all: Vec<&PairOutcome> = outcomes.iter().collect();
-    let bt = bradley_terry(&wins_matrix(&all, &systems), 1e-10, 10_000)?;
+    let (bt, prior) = match bradley_terry(&wins_matrix(&all, &systems), 1e-10, 10_000) {
+        Ok(bt) => (bt, None),
+        Err(e) => {
+            // A disconnected graph stays an error: virtual ties only join systems that met.
+            let bt = bradley_terry(&with_virtual_ties(wins_matrix(&all, &systems)), 1e-10, 10_000)?;
+            (bt, Some(format!("{e}; added one virtual tie per compared pair of systems")))
+        }
+    };
+    let smooth = prior.is_some();
     let n = systems.len();
     let mut matrix = vec![vec![[0usize; 3]; n]; n];
     for o in outcomes {
@@ -106,9 +134,9 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
                 .iter()
                 .flat_map(|&q| outcomes.iter().filter(move |o| o.question_id == questions[q]))
                 .collect();
-            bradley_terry(&wins_matrix(&chosen, &systems), 1e-8, 10_000)
-                .ok()
-                .map(|b| b.elo_scale[i])
+            let w = wins_matrix(&chosen, &systems);
+            let w = if smooth { with_virtual_ties(w) } else { w };
+            bradley_terry(&w, 1e-8, 10_000).ok().map(|b| b.elo_scale[i])
         })?;
         skipped = skipped.max(reps.skipped);
         let (lo, hi) = if reps.values.len() >= 2 {
@@ -136,5 +164,53 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
         systems,
         resamples,
         skipped,
+        prior,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::pairwise::{IdentityProbs, SlotProbs};
+
+    fn outcome(q: &str, a: &str, b: &str, w: Winner) -> PairOutcome {
+        let p = SlotProbs { first: 0.4, second: 0.4, tie: 0.2 };
+        PairOutcome {
+            question_id: q.into(),
+            criterion: "overall".into(),
+            a: a.into(),
+            b: b.into(),
+            original: p,
+            swapped: p,
+            original_winner: w,
+            swapped_winner: w,
+            debiased: IdentityProbs { a: 0.4, b: 0.4, tie: 0.2 },
+            debiased_winner: w,
+            conservative_winner: w,
+        }
+    }
+
+    /// A system that wins every comparison has no finite Bradley-Terry estimate
+    /// (Hunter 2004, Assumption 1); the virtual-tie prior keeps it first and says so.
+    #[test]
+    fn undefeated_system_ranks_first_under_the_stated_prior() {
+        let o = vec![
+            outcome("q1", "best", "mid", Winner::A),
+            outcome("q2", "best", "low", Winner::A),
+            outcome("q3", "mid", "low", Winner::A),
+            outcome("q4", "mid", "low", Winner::B),
+        ];
+        let r = rank(&o, 50, 1).expect("ranking");
+        assert!(r.prior.is_some());
+        assert_eq!(r.rows[0].system, "best");
+        assert_eq!(r.rows[0].wins, 2);
+        assert!(r.rows[0].rating > r.rows[1].rating);
+    }
+
+    /// Systems that never met cannot be placed: an error, not a guess.
+    #[test]
+    fn disconnected_systems_are_an_error() {
+        let o = vec![outcome("q1", "a", "b", Winner::A), outcome("q2", "a", "b", Winner::B), outcome("q3", "c", "d", Winner::A), outcome("q4", "c", "d", Winner::B)];
+        assert!(rank(&o, 10, 1).is_err());
+    }
 }

@@ -149,6 +149,9 @@ fn pairwise(s: &mut String, r: &Report) {
     }
     match (&p.ranking, &p.ranking_note) {
         (Some(k), _) => {
+            if let Some(prior) = &k.prior {
+                let _ = writeln!(s, "Note: {prior}.\n");
+            }
             let _ = writeln!(s, "| rank | system | rating [95% CI] | wins–ties–losses |\n|---|---|---|---|");
             for (i, row) in k.rows.iter().enumerate() {
                 let _ = writeln!(
