@@ -98,10 +98,11 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
     let all: Vec<&PairOutcome> = outcomes.iter().collect();
     let (bt, prior) = match bradley_terry(&wins_matrix(&all, &systems), 1e-10, 10_000) {
         Ok(bt) => (bt, None),
-        Err(e) => {
+        Err(_) => {
             // A disconnected graph stays an error: virtual ties only join systems that met.
             let bt = bradley_terry(&with_virtual_ties(wins_matrix(&all, &systems)), 1e-10, 10_000)?;
-            (bt, Some(format!("{e}; added one virtual tie per compared pair of systems")))
+            let note = "a system won or lost every comparison, so the plain Bradley-Terry estimate is infinite; one virtual tie per compared pair of systems keeps it finite and pulls ratings slightly together";
+            (bt, Some(note.to_string()))
         }
     };
     let smooth = prior.is_some();
