@@ -150,8 +150,10 @@ fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
         graded, judged,
         "every rater-a label is a labelled item the judge graded"
     );
-    assert_eq!(p.human_pairs, 50);
-    assert_eq!(p.criteria[0].n_pairs, 50);
+    // Every question of the demo has all three system pairs judged by the raters.
+    let questions = prefs_questions();
+    assert_eq!(p.human_pairs, 3 * questions);
+    assert_eq!(p.criteria[0].n_pairs, 3 * questions);
     assert_eq!(p.criteria[0].methods.len(), 3);
 
     let text = report_text(&r, Some(&p));
@@ -173,4 +175,11 @@ fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
         b.categorical.as_ref().map(|c| c.kappa_quadratic)
     );
     assert_ne!(json(&r, &p).0, json(&other, &p).0);
+}
+
+/// Distinct questions in the demo preferences file.
+fn prefs_questions() -> usize {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/preferences.csv");
+    let prefs = crate::data::read_preferences(&path).expect("demo preferences");
+    prefs.iter().map(|p| p.question_id.clone()).collect::<std::collections::HashSet<_>>().len()
 }
