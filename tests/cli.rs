@@ -297,3 +297,42 @@ fn model_next_lists_top_tokens_in_order() {
     let b = run(&args);
     assert_eq!(a.stdout, b.stdout, "same input, same output");
 }
+
+/// `estimate` on a fixed grading run: every labelled system and criterion gets a
+/// judge-only, human-only, PPI and PPI++ estimate; the held-out human mean equals the
+/// mean of the consensus labels computed here from the labels file (lower median).
+#[test]
+fn estimate_reports_corrected_means_per_system_and_criterion() {
+    let o = run(&[
+        "estimate", "--grades", "tests/fixtures/report/before", "--labels", "tests/fixtures/report/labels.csv",
+        "--label-share", "0.5", "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    let rows = v["rows"].as_array().expect("rows");
+    assert_eq!(rows.len(), 6, "3 systems x 2 labelled criteria");
+    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/report/labels.csv")).expect("labels");
+    for row in rows {
+        let (sys, crit) = (row["system"].as_str().expect("s"), row["criterion"].as_str().expect("c"));
+        let mut per_item: std::collections::BTreeMap<String, Vec<u32>> = Default::default();
+        for line in text.lines().skip(1) {
+            let f: Vec<&str> = line.split(',').collect();
+            if f[1] == sys && f[2] == crit {
+                per_item.entry(f[0].to_string()).or_default().push(f[4].parse().expect("score"));
+            }
+        }
+        let consensus: Vec<f64> = per_item
+            .values_mut()
+            .map(|v| {
+                v.sort();
+                v[(v.len() - 1) / 2] as f64
+            })
+            .collect();
+        let mean = consensus.iter().sum::<f64>() / consensus.len() as f64;
+        assert!((row["held_out_human_mean"].as_f64().expect("mean") - mean).abs() < 1e-12, "{row}");
+        assert_eq!(row["n_labelled"].as_u64().expect("n") + row["n_unlabelled"].as_u64().expect("n"), 4);
+        let ppi = &row["ppi_plus_plus"];
+        assert!(ppi["ci_low"].as_f64().expect("lo") <= ppi["estimate"].as_f64().expect("est"));
+        assert!(ppi["lambda"].as_f64().expect("lambda") >= 0.0 && ppi["lambda"].as_f64().expect("lambda") <= 1.0);
+    }
+}

@@ -141,11 +141,11 @@ pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
             }
         }
         if labelled.len() < 2 || unlabelled.is_empty() {
-            skipped.push(format!(
-                "{system}/{criterion}: {} labelled and {} unlabelled items; needs at least 2 and 1 (try `--label-share 0.3`)",
-                labelled.len(),
-                unlabelled.len()
-            ));
+            skipped.push(if labelled.len() < 2 {
+                format!("{system}/{criterion}: {} labelled item(s); label at least 2", labelled.len())
+            } else {
+                format!("{system}/{criterion}: every item is labelled, so there is nothing to correct; use the human mean, or `--label-share 0.3` to see how the estimate behaves")
+            });
             continue;
         }
         let y: Vec<f64> = labelled.iter().map(|p| p.0).collect();
@@ -197,6 +197,9 @@ pub fn run(args: EstimateArgs) -> anyhow::Result<ExitCode> {
         );
     }
     println!("\nthe judge column is uncorrected; PPI corrects it with the labelled items and its interval accounts for both samples");
+    if r.rows.iter().any(|row| row.n_labelled < 30) {
+        println!("caution: with fewer than 30 labelled items per row the normal intervals are rough, and a corrected estimate can even leave the scale; label more items");
+    }
     for s in &r.skipped {
         eprintln!("warning: skipped {s}");
     }

@@ -35,7 +35,7 @@ const Q6K_SB: usize = 4416;
 const Q8_BLK: usize = 576;
 
 /// Rows the kernels process together; they share each unpacked weight register.
-const MT: usize = 4;
+const MT: usize = 6;
 
 /// Weight formats the kernels take.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
