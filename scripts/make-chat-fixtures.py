@@ -3,7 +3,7 @@
 
 Reads `tokenizer.chat_template` and the BOS/EOS token texts from each GGUF file's
 header (a small reader below, no model weights are loaded), renders a fixed set of
-conversations with Python jinja2 configured as Hugging Face `apply_chat_template`
+conversations with Python jinja2 configured as the reference Python chat-template renderer
 configures it (trim_blocks, lstrip_blocks, `raise_exception`), and writes
 tests/fixtures/chat/<model-file-stem>.json. A model without a template (a base model)
 gets a fixture with `"template": false` and renderings in assize's plain format

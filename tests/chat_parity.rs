@@ -243,7 +243,7 @@ fn invented_templates_match_jinja2_and_drop_leading_bos() {
     }
 }
 
-/// jinja2's `raise_exception` convention (Hugging Face chat templates) surfaces as a
+/// jinja2's `raise_exception` convention (chat templates of published models) surfaces as a
 /// template error carrying the message.
 #[test]
 fn raise_exception_in_template_becomes_template_error() {

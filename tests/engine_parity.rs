@@ -319,7 +319,7 @@ fn appending_past_context_limit_is_context_overflow() {
 /// Positions further back than the window do not reach a local layer: with only local
 /// layers, changing the token `window` places back leaves the last logits unchanged,
 /// changing the one `window - 1` back does not (window counts the current token, as in
-/// Hugging Face's Gemma 3 and llama.cpp).
+/// the reference Python Gemma 3 implementation and llama.cpp).
 #[test]
 fn sliding_window_hides_tokens_beyond_the_window() {
     let dir = tempfile::tempdir().expect("tempdir");

@@ -23,7 +23,7 @@ pub enum ModelCommand {
     ///
     /// Uses the usual hub cache layout (`models--OWNER--NAME/snapshots/REV/FILE`).
     /// The cache folder is `--cache-dir`, else `$HF_HUB_CACHE`, else `$HF_HOME/hub`,
-    /// else `~/.cache/huggingface/hub`. With `--offline` or `HF_HUB_OFFLINE=1`
+    /// else the hub client's default folder in your home cache. With `--offline` or `HF_HUB_OFFLINE=1`
     /// nothing is downloaded and a file missing from the cache is an error.
     Pull(PullArgs),
     /// Show how the judge's tokenizer splits a text: ids and pieces
@@ -119,7 +119,7 @@ pub struct PullArgs {
     /// Branch, tag or commit
     #[arg(long, value_name = "REV", default_value = "main")]
     pub revision: String,
-    /// Hub cache folder (default: `$HF_HUB_CACHE`, `$HF_HOME/hub`, `~/.cache/huggingface/hub`)
+    /// Hub cache folder (default: `$HF_HUB_CACHE`, `$HF_HOME/hub`, then the hub client's default)
     #[arg(long, value_name = "DIR")]
     pub cache_dir: Option<PathBuf>,
     /// Never download; only look in the cache (also set by `HF_HUB_OFFLINE=1`)

@@ -208,7 +208,7 @@ impl ChatFormat {
     }
 }
 
-/// Compile a template with the settings Hugging Face `apply_chat_template` gives
+/// Compile a template with the settings the reference Python chat-template renderer gives
 /// jinja2 (`trim_blocks`, `lstrip_blocks`, `raise_exception`) and Python string methods.
 fn compile(source: String) -> Result<Environment<'static>, Error> {
     let mut env = Environment::new();

@@ -35,7 +35,7 @@ const Q6K_SB: usize = 4416;
 const Q8_BLK: usize = 576;
 
 /// Rows the kernels process together; they share each unpacked weight register.
-const MT: usize = 6;
+const MT: usize = 4;
 
 /// Weight formats the kernels take.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -867,43 +867,3 @@ mod tests {
     }
 }
 
-#[cfg(test)]
-mod scratch_timing {
-    use super::*;
-    use candle_core::Tensor;
-
-    fn cpu_ns() -> f64 {
-        let s = std::fs::read_to_string("/proc/thread-self/schedstat").unwrap();
-        s.split_whitespace().next().unwrap().parse::<f64>().unwrap()
-    }
-
-    #[test]
-    #[ignore]
-    fn timing() {
-        let m = 256;
-        for (dtype, n, k) in [
-            (GgmlDType::Q4K, 2048, 1536),
-            (GgmlDType::Q6K, 256, 8960),
-            (GgmlDType::Q4K, 256, 8960),
-            (GgmlDType::Q8_0, 1024, 896),
-        ] {
-            let w: Vec<f32> = (0..n * k).map(|i| ((i * 7919 % 1000) as f32 - 500.0) / 700.0).collect();
-            let t = Tensor::from_vec(w, (n, k), &Device::Cpu).unwrap();
-            let qt = QTensor::quantize(&t, dtype).unwrap();
-            let p = Packed::new(&qt).unwrap().unwrap();
-            let x: Vec<f32> = (0..m * k).map(|i| ((i * 31 % 977) as f32 - 488.0) / 500.0).collect();
-            let macs = (m * n * k) as f64;
-            let mut best = 0f64;
-            for _ in 0..3 {
-                let t0 = cpu_ns();
-                for _ in 0..10 { let _ = p.run(&x, m, false); }
-                best = best.max(10.0 * macs / (cpu_ns() - t0));
-            }
-            let a = Acts::quantise(&x, m, k, false);
-            let t0 = cpu_ns();
-            for _ in 0..50 { let _ = Acts::quantise(&x, m, k, false); }
-            let tq = (cpu_ns() - t0) / 50.0;
-            eprintln!("{dtype:?} n{n} k{k}: {:.1} GMAC per cpu-s; quantise {:.2} ms {}", best, tq / 1e6, a.m);
-        }
-    }
-}

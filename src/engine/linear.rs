@@ -512,7 +512,7 @@ impl SharedOut {
 /// Causal scaled dot-product attention (Vaswani et al. 2017) of `m` query rows starting
 /// at position `pos0` over the cached keys/values, with grouped key/value heads and an
 /// optional sliding window of `w` tokens (the current one included, as llama.cpp and
-/// Hugging Face Gemma 3 count it). Each (row, head) unit runs on one worker in a fixed
+/// the reference Python Gemma 3 implementation counts it). Each (row, head) unit runs on one worker in a fixed
 /// order, so results do not depend on scheduling.
 pub(crate) fn attention(
     q: &[f32],

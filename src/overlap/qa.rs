@@ -4,7 +4,7 @@
 //! or 1) and token F1 (0..=1), each the maximum over the gold answers. Must never
 //! do I/O or panic; empty answers follow the rule of the v2.0 evaluation script.
 //!
-//! From Rajpurkar, Zhang, Lopyrev & Liang (2016), "SQuAD: 100,000+ Questions for
+//! From Rajpurkar, Zhang, Lopyrev & Liang (2016), "100,000+ Questions for
 //! Machine Comprehension of Text", EMNLP, and the authors' v2.0 evaluation script
 //! (Rajpurkar, Jia & Liang 2018).
 
@@ -104,11 +104,11 @@ pub fn token_f1(prediction: &str, golds: &[&str]) -> f64 {
 mod tests {
     use super::*;
 
-    /// SQuAD v2.0 evaluation script values [lib], METHODS.md section 12 table:
+    /// Question-answering evaluation script (v2.0, Rajpurkar et al. 2018) values [lib], METHODS.md section 12 table:
     /// (gold, prediction, EM, F1) for six pairs including the empty-answer rule and
     /// the multiset count ("cat cat" vs "cat").
     #[test]
-    fn matches_squad_v2_script_table() {
+    fn matches_qa_v2_script_table() {
         let rows = [
             ("The Eiffel Tower", "eiffel tower", 1.0, 1.0),
             ("Denver Broncos", "The Denver Broncos!", 1.0, 1.0),
