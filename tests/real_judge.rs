@@ -75,6 +75,26 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
     }
 }
 
+fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> CompareArgs {
+    CompareArgs {
+        answers,
+        systems: vec![],
+        criterion: criterion.map(str::to_string),
+        rubric: root().join("judge-templates/rubrics/support.toml"),
+        model: ModelArgs { model: "default".into(), threads: 2, context: None },
+        judge_name: None,
+        preferences: None,
+        grades: None,
+        labels: None,
+        resamples: 50,
+        seed: 7,
+        run_dir: Some(run_dir),
+        limit: None,
+        templates: None,
+        output: OutputArgs { json: true, quiet: true },
+    }
+}
+
 fn records(dir: &std::path::Path) -> Vec<GradeRecord> {
     let mut r: Vec<GradeRecord> = read_records(&dir.join("grades.jsonl")).expect("records");
     r.sort_by_key(GradeRecord::key);
@@ -165,23 +185,7 @@ fn identical_answers_give_a_debiased_tie() {
         }
     }
     drop(f);
-    let args = CompareArgs {
-        answers: path,
-        systems: vec![],
-        criterion: None,
-        rubric: root().join("judge-templates/rubrics/support.toml"),
-        model: ModelArgs { model: "default".into(), threads: 2, context: None },
-        judge_name: None,
-        preferences: None,
-        grades: None,
-        labels: None,
-        resamples: 50,
-        seed: 7,
-        run_dir: Some(tmp.path().join("run")),
-        limit: None,
-        templates: None,
-        output: OutputArgs { json: true, quiet: true },
-    };
+    let args = compare_args(path, tmp.path().join("run"), None);
     let report = compare_run(&args, judge()).expect("compare");
     assert_eq!(report.pairs, 3);
     for o in &report.outcomes {
@@ -202,23 +206,7 @@ fn identical_answers_give_a_debiased_tie() {
 #[test]
 fn wrong_answers_lose_in_debiased_pairwise_verdicts() {
     let (tmp, answers) = subset(&["q01", "q09", "q44", "q49"]);
-    let args = CompareArgs {
-        answers,
-        systems: vec![],
-        criterion: Some("correctness".into()),
-        rubric: root().join("judge-templates/rubrics/support.toml"),
-        model: ModelArgs { model: "default".into(), threads: 2, context: None },
-        judge_name: None,
-        preferences: None,
-        grades: None,
-        labels: None,
-        resamples: 50,
-        seed: 7,
-        run_dir: Some(tmp.path().join("run")),
-        limit: None,
-        templates: None,
-        output: OutputArgs { json: true, quiet: true },
-    };
+    let args = compare_args(answers, tmp.path().join("run"), Some("correctness"));
     let report = compare_run(&args, judge()).expect("compare");
     let right = |q: &str| if q == "q49" { "assistant-v1" } else { "assistant-v2" };
     let wins = report
