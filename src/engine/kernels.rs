@@ -481,7 +481,10 @@ mod vnni {
             let r = _mm512_cvtps_epi32(v); // MXCSR default: nearest, ties to even
             let r = _mm512_min_epi32(_mm512_max_epi32(r, lo), hi);
             sums[i] = _mm512_reduce_add_epi32(r);
-            _mm_storeu_si128(q.as_mut_ptr().add(i * 16) as *mut __m128i, _mm512_cvtepi32_epi8(r));
+            _mm_storeu_si128(
+                q.as_mut_ptr().add(i * 16) as *mut __m128i,
+                _mm512_cvtepi32_epi8(r),
+            );
         }
         1.0 / iscale
     }
@@ -535,9 +538,9 @@ mod vnni {
             let mut mins = [_mm512_setzero_si512(); R];
             for p in 0..4 {
                 let mn = _mm512_cvtepu8_epi16(_mm256_load_si256(sb.add(2176 + p * 32) as *const _));
-                for i in 0..R {
+                for (i, acc) in mins.iter_mut().enumerate() {
                     let s = *a.sum32_pairs.get_unchecked(((r0 + i) * kb + b) * 4 + p);
-                    mins[i] = _mm512_dpwssd_epi32(mins[i], mn, _mm512_set1_epi32(s));
+                    *acc = _mm512_dpwssd_epi32(*acc, mn, _mm512_set1_epi32(s));
                 }
             }
             let d = _mm512_load_ps(sb.add(2304) as *const f32);
@@ -789,9 +792,7 @@ mod tests {
             .and_then(|t| t.to_vec1::<f32>())
             .expect("candle q8k");
         let a = Acts::quantise(&x, m, k, false);
-        let ours: Vec<f32> = (0..m * k)
-            .map(|i| a.d[i / QK] * a.q[i] as f32)
-            .collect();
+        let ours: Vec<f32> = (0..m * k).map(|i| a.d[i / QK] * a.q[i] as f32).collect();
         // Compared as values: ggml's opposite sign turns some zero products into -0.
         assert_eq!(ours, want);
     }
@@ -866,4 +867,3 @@ mod tests {
         assert!(f16_to_f32(0x7c00).is_infinite());
     }
 }
-
