@@ -336,3 +336,28 @@ fn estimate_reports_corrected_means_per_system_and_criterion() {
         assert!(ppi["lambda"].as_f64().expect("lambda") >= 0.0 && ppi["lambda"].as_f64().expect("lambda") <= 1.0);
     }
 }
+
+/// `vet` prints trust cards for a finished run; `--min-kappa` above what the judge
+/// reaches fails the gate with exit code 1, and a reachable bar passes with 0.
+#[test]
+fn vet_gate_fails_with_exit_code_one() {
+    let base = [
+        "vet", "--grades", "tests/fixtures/report/before", "--labels", "tests/fixtures/report/labels.csv",
+        "--resamples", "200",
+    ];
+    let ok = run(&base);
+    assert!(ok.status.success(), "{}", stderr(&ok));
+    let text = String::from_utf8_lossy(&ok.stdout);
+    assert!(text.contains("trust card for `correctness`"), "{text}");
+    let mut strict = base.to_vec();
+    strict.extend(["--min-kappa", "0.99"]);
+    let o = run(&strict);
+    assert_eq!(o.status.code(), Some(1), "{}", stderr(&o));
+    assert!(stderr(&o).contains("gate failed"), "{}", stderr(&o));
+    let mut lenient = base.to_vec();
+    lenient.extend(["--min-kappa=-1", "--json"]);
+    let o = run(&lenient);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
+    assert_eq!(v["gate_failures"], serde_json::json!([]));
+}
