@@ -121,7 +121,8 @@ pub struct Prepared {
 
 /// Load and check inputs; every missing field of every item is reported at once.
 pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
-    let mut answers = read_answers(&args.answers)?;
+    let all_answers = read_answers(&args.answers)?;
+    let mut answers = all_answers.clone();
     if let Some(n) = args.limit {
         answers.truncate(n);
     }
@@ -161,7 +162,6 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
                 .iter()
                 .map(|c| (c.key.clone(), c.scale.labels()))
                 .collect();
-            let all_answers = read_answers(&args.answers)?;
             let relevant: Vec<_> = labels
                 .iter()
                 .filter(|l| scales.contains_key(&l.criterion))

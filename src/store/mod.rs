@@ -76,8 +76,8 @@ pub struct RunDir {
 }
 
 impl RunDir {
-    /// Open `dir` for `manifest`: create it, or resume it when its manifest is equal.
-    /// With `fresh`, an existing different run is an error naming what differs.
+    /// Open `dir` for `manifest`: create it, or resume it when its manifest is equal;
+    /// a folder holding a different run is an error naming what differs.
     pub fn open(dir: &Path, manifest: Manifest) -> Result<Self, StoreError> {
         std::fs::create_dir_all(dir).map_err(io(dir))?;
         let mpath = dir.join(MANIFEST);
