@@ -253,3 +253,22 @@ fn overlong_item_is_named_and_others_are_kept() {
     assert!(report.failed[0].error.contains("more than the context limit of 600"), "{}", report.failed[0].error);
     assert_eq!(report.records, 1);
 }
+
+/// Reasoning first with the real judge: the assessment is stored with the score and
+/// the judge still answers in the scale's labels after writing it.
+#[test]
+fn reasoning_first_stores_the_assessment() {
+    let (tmp, answers) = subset(&["q09"]);
+    let mut a = grade_args(answers, tmp.path().join("run"), &["correctness"]);
+    a.reasoning = true;
+    a.reasoning_tokens = 32;
+    let p = prepare(&a).expect("inputs");
+    grade_run(&a, &p, judge()).expect("grading");
+    let recs = records(&tmp.path().join("run"));
+    assert_eq!(recs.len(), 2);
+    for r in &recs {
+        let text = r.rationale.as_deref().expect("rationale stored");
+        assert!(!text.trim().is_empty(), "empty assessment");
+        assert!(r.captured_mass > 0.5, "mass {} after the assessment", r.captured_mass);
+    }
+}
