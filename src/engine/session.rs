@@ -373,7 +373,63 @@ impl JudgeModel {
         seed: u64,
     ) -> Result<Generated, EngineError> {
         self.check_len(item, prompt.len() + max_tokens)?;
-        let (mut cache, mut logits) = self.prefill(item, prompt)?;
+        let (cache, logits) = self.prefill(item, prompt)?;
+        self.generate_from(cache, logits, max_tokens, stops, temperature, seed)
+    }
+
+    /// Generate after each of several prompts that share a prefix (the forms of one
+    /// item): the shared prefix is computed once and forked, each prompt's own part
+    /// runs as one chunk from the fork. Results equal in any run, like `generate`'s.
+    pub fn generate_batch(
+        &self,
+        item: &str,
+        prompts: &[Vec<u32>],
+        max_tokens: usize,
+        stops: &[&str],
+        temperature: f64,
+        seed: u64,
+    ) -> Result<Vec<Generated>, EngineError> {
+        let Some(first) = prompts.first() else {
+            return Ok(Vec::new());
+        };
+        if prompts.len() == 1 || !self.reuse {
+            return prompts
+                .iter()
+                .map(|p| self.generate(item, p, max_tokens, stops, temperature, seed))
+                .collect();
+        }
+        let longest = prompts.iter().map(Vec::len).max().unwrap_or(0);
+        self.check_len(item, longest + max_tokens)?;
+        // Every prompt keeps at least one token of its own after the shared part.
+        let shortest = prompts.iter().map(Vec::len).min().unwrap_or(0);
+        let shared = prompts
+            .iter()
+            .skip(1)
+            .fold(first.len(), |acc, p| acc.min(lcp(first, p)))
+            .min(shortest.saturating_sub(1))
+            .max(1);
+        let (base, _) = self.prefill(item, &first[..shared])?;
+        prompts
+            .iter()
+            .map(|p| {
+                let mut cache = base.clone();
+                let logits = self.decoder.forward_last(&mut cache, &p[shared..])?;
+                self.count((p.len() - shared) as u64, shared as u64, 0);
+                self.generate_from(cache, logits, max_tokens, stops, temperature, seed)
+            })
+            .collect()
+    }
+
+    /// The generation loop from a cache and the logits at its last position.
+    fn generate_from(
+        &self,
+        mut cache: KvCache,
+        mut logits: Vec<f32>,
+        max_tokens: usize,
+        stops: &[&str],
+        temperature: f64,
+        seed: u64,
+    ) -> Result<Generated, EngineError> {
         let eos = self.tokenizer.eos();
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
         let mut ids: Vec<u32> = Vec::new();

@@ -77,14 +77,8 @@ pub fn grade_item(
     }
     let mut rationales = vec![None; built.len()];
     if opts.reasoning {
-        for (i, f) in built.iter_mut().enumerate() {
-            let text = backend.continue_form(
-                &format!("{id} ({})", rubric.criteria[i].key),
-                f,
-                opts.reasoning_tokens,
-                &["Score:", "score:"],
-                opts.seed,
-            )?;
+        let texts = backend.continue_forms(&id, &built, opts.reasoning_tokens, &["Score:", "score:"], opts.seed)?;
+        for ((i, f), text) in built.iter_mut().enumerate().zip(texts) {
             let text = text.trim().to_string();
             f.prefill = format!("{}{}{}\n{}", f.prefill, if text.is_empty() { "" } else { " " }, text, SCORE_PREFILL);
             rationales[i] = Some(text);

@@ -30,6 +30,22 @@ pub trait Backend {
         forms: &[Form],
         labels: &[Vec<String>],
     ) -> Result<Vec<Vec<f64>>, EngineError>;
+    /// Text the judge writes after each form's prefill; forms of one item share
+    /// their prefix. The default runs `continue_form` on each.
+    fn continue_forms(
+        &self,
+        item: &str,
+        forms: &[Form],
+        max_tokens: usize,
+        stops: &[&str],
+        seed: u64,
+    ) -> Result<Vec<String>, EngineError> {
+        forms
+            .iter()
+            .map(|f| self.continue_form(item, f, max_tokens, stops, seed))
+            .collect()
+    }
+
     /// Text the judge writes after a form's prefill (reasoning-first mode).
     fn continue_form(
         &self,
@@ -65,6 +81,28 @@ impl Backend for JudgeModel {
             .map(|(f, l)| self.slot_request(&f.system, &f.user, &f.prefill, l))
             .collect::<Result<Vec<_>, _>>()?;
         self.label_logprobs(item, &requests)
+    }
+
+    fn continue_forms(
+        &self,
+        item: &str,
+        forms: &[Form],
+        max_tokens: usize,
+        stops: &[&str],
+        seed: u64,
+    ) -> Result<Vec<String>, EngineError> {
+        if let Some(f) = forms.first() {
+            self.warm_preamble(&f.system)?;
+        }
+        let prompts = forms
+            .iter()
+            .map(|f| self.encode_chat(&f.system, &f.user, &f.prefill))
+            .collect::<Result<Vec<_>, _>>()?;
+        Ok(self
+            .generate_batch(item, &prompts, max_tokens, stops, 0.0, seed)?
+            .into_iter()
+            .map(|g| g.text)
+            .collect())
     }
 
     fn continue_form(
