@@ -54,7 +54,8 @@ pub enum DataError {
     Empty { kind: &'static str, path: PathBuf },
 }
 
-fn list(problems: &[LineProblem]) -> String {
+/// Problems as an indented list for an error message: the first 25, then a count.
+pub fn list<T: fmt::Display>(problems: &[T]) -> String {
     const SHOWN: usize = 25;
     let mut s: Vec<String> = problems
         .iter()

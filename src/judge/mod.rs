@@ -113,9 +113,8 @@ impl Backend for JudgeModel {
         stops: &[&str],
         seed: u64,
     ) -> Result<String, EngineError> {
-        self.warm_preamble(&form.system)?;
-        let prompt = self.encode_chat(&form.system, &form.user, &form.prefill)?;
-        Ok(self.generate(item, &prompt, max_tokens, stops, 0.0, seed)?.text)
+        let mut texts = self.continue_forms(item, std::slice::from_ref(form), max_tokens, stops, seed)?;
+        Ok(texts.pop().expect("one form gives one text"))
     }
 }
 

@@ -186,13 +186,13 @@ pub enum VetError {
     #[error("no human labels")]
     NoLabels,
     /// Label rows that cannot be used; all are listed.
-    #[error("{} human label row(s) cannot be used:\n{}", problems.len(), listed(problems))]
+    #[error("{} human label row(s) cannot be used:\n{}", problems.len(), crate::data::list(problems))]
     BadLabels { problems: Vec<String> },
     /// Human preference rows that cannot be used; all are listed.
-    #[error("{} human preference row(s) cannot be used:\n{}", problems.len(), listed(problems))]
+    #[error("{} human preference row(s) cannot be used:\n{}", problems.len(), crate::data::list(problems))]
     BadPreferences { problems: Vec<String> },
     /// Judge records that cannot be used; all are listed.
-    #[error("{} record(s) of variant `{variant}` cannot be used:\n{}", problems.len(), listed(problems))]
+    #[error("{} record(s) of variant `{variant}` cannot be used:\n{}", problems.len(), crate::data::list(problems))]
     BadRecords {
         variant: String,
         problems: Vec<String>,
@@ -215,7 +215,7 @@ pub enum VetError {
     #[error("none of the {judged} judged pairs is among the {preferred} pairs humans compared")]
     NoPairOverlap { judged: usize, preferred: usize },
     /// Pair records that cannot be used; all are listed.
-    #[error("{} pair record(s) cannot be used:\n{}", problems.len(), listed(problems))]
+    #[error("{} pair record(s) cannot be used:\n{}", problems.len(), crate::data::list(problems))]
     BadPairs { problems: Vec<String> },
     /// A statistic failed on input that passed the checks above.
     #[error("cannot compute {what}")]
@@ -224,19 +224,6 @@ pub enum VetError {
         #[source]
         source: StatsError,
     },
-}
-
-fn listed(problems: &[String]) -> String {
-    const SHOWN: usize = 25;
-    let mut s: Vec<String> = problems
-        .iter()
-        .take(SHOWN)
-        .map(|p| format!("    {p}"))
-        .collect();
-    if problems.len() > SHOWN {
-        s.push(format!("    ... and {} more", problems.len() - SHOWN));
-    }
-    s.join("\n")
 }
 
 /// The fix line for a vetting error, when one is known.
