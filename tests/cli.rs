@@ -26,7 +26,12 @@ fn stderr(o: &Output) -> String {
 
 fn info_json(file: &str) -> serde_json::Value {
     let path = common::real_model(file);
-    let o = run(&["model", "info", path.to_str().expect("utf-8 path"), "--json"]);
+    let o = run(&[
+        "model",
+        "info",
+        path.to_str().expect("utf-8 path"),
+        "--json",
+    ]);
     assert!(o.status.success(), "{}", stderr(&o));
     serde_json::from_slice(&o.stdout).expect("one JSON document")
 }
@@ -47,7 +52,8 @@ fn top_level_help_matches_snapshot() {
     if std::env::var_os("ASSIZE_UPDATE_SNAPSHOTS").is_some() {
         std::fs::write(&path, &got).expect("write snapshot");
     }
-    let want = std::fs::read_to_string(&path).expect("snapshot exists (ASSIZE_UPDATE_SNAPSHOTS=1 writes it)");
+    let want = std::fs::read_to_string(&path)
+        .expect("snapshot exists (ASSIZE_UPDATE_SNAPSHOTS=1 writes it)");
     assert_eq!(got, want);
 }
 
@@ -64,7 +70,10 @@ fn default_judge_info_matches_published_config() {
     assert_eq!(v["vocab_size"], 151936);
     assert_eq!(v["chat_template"], true);
     assert_eq!(v["tokenizer"], "gpt2");
-    assert_eq!(v["sha256"], "cc324af070c2ecbfd324a30884d2f951a7ff756aba85cb811a6ec436933bb046");
+    assert_eq!(
+        v["sha256"],
+        "cc324af070c2ecbfd324a30884d2f951a7ff756aba85cb811a6ec436933bb046"
+    );
     let params = v["parameters"].as_u64().expect("count");
     assert!((1_400_000_000..1_800_000_000).contains(&params), "{params}");
 }
@@ -124,14 +133,22 @@ fn non_gguf_and_cut_header_are_clear_errors() {
     std::fs::write(&txt, "these are notes, not a model").expect("write");
     let o = run(&["model", "info", txt.to_str().expect("utf-8")]);
     assert_eq!(o.status.code(), Some(2));
-    assert!(stderr(&o).contains("does not start with the GGUF magic bytes"), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("does not start with the GGUF magic bytes"),
+        "{}",
+        stderr(&o)
+    );
     let src = common::real_model("gemma-3-270m-q4_k_m.gguf");
     let head = dir.path().join("head.gguf");
     let bytes = std::fs::read(&src).expect("read");
     std::fs::write(&head, &bytes[..4096]).expect("write");
     let o = run(&["model", "info", head.to_str().expect("utf-8")]);
     assert_eq!(o.status.code(), Some(2));
-    assert!(stderr(&o).contains("not a readable GGUF model file"), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("not a readable GGUF model file"),
+        "{}",
+        stderr(&o)
+    );
 }
 
 fn hub_cache_with_tiny(dir: &Path) -> PathBuf {
@@ -153,7 +170,13 @@ fn offline_pull_finds_a_cached_file() {
     let dir = tempfile::tempdir().expect("tmp");
     let cache = hub_cache_with_tiny(dir.path());
     let o = bin()
-        .args(["model", "pull", "example-org/tiny-judge", "tiny.gguf", "--json"])
+        .args([
+            "model",
+            "pull",
+            "example-org/tiny-judge",
+            "tiny.gguf",
+            "--json",
+        ])
         .env("HF_HUB_CACHE", &cache)
         .env("HF_HUB_OFFLINE", "1")
         .output()
@@ -161,9 +184,20 @@ fn offline_pull_finds_a_cached_file() {
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     assert_eq!(v["from_cache"], true);
-    assert!(v["path"].as_str().expect("path").ends_with("snapshots/0123456789abcdef/tiny.gguf"));
+    assert!(v["path"]
+        .as_str()
+        .expect("path")
+        .ends_with("snapshots/0123456789abcdef/tiny.gguf"));
     // --cache-dir works the same as the environment variable.
-    let o = run(&["model", "pull", "example-org/tiny-judge", "tiny.gguf", "--offline", "--cache-dir", cache.to_str().expect("utf-8")]);
+    let o = run(&[
+        "model",
+        "pull",
+        "example-org/tiny-judge",
+        "tiny.gguf",
+        "--offline",
+        "--cache-dir",
+        cache.to_str().expect("utf-8"),
+    ]);
     assert!(o.status.success(), "{}", stderr(&o));
 }
 
@@ -173,13 +207,22 @@ fn offline_pull_of_a_missing_file_is_a_clear_error() {
     let dir = tempfile::tempdir().expect("tmp");
     let cache = hub_cache_with_tiny(dir.path());
     let o = bin()
-        .args(["model", "pull", "example-org/tiny-judge", "other.gguf", "--offline"])
+        .args([
+            "model",
+            "pull",
+            "example-org/tiny-judge",
+            "other.gguf",
+            "--offline",
+        ])
         .env("HF_HUB_CACHE", &cache)
         .output()
         .expect("runs");
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
-    assert!(e.contains("`other.gguf` of `example-org/tiny-judge`"), "{e}");
+    assert!(
+        e.contains("`other.gguf` of `example-org/tiny-judge`"),
+        "{e}"
+    );
     assert!(e.contains("offline mode is on"), "{e}");
     assert!(e.contains("fix:"), "{e}");
 }
@@ -194,12 +237,24 @@ fn malformed_answers_lines_are_all_reported() {
         "{\"question_id\":\"q1\",\"system\":\"s\",\"question\":\"Q\",\"answer\":\"A\"}\n{\"question_id\":\"q2\",\"system\":\"s\"}\n[1,2]\n",
     )
     .expect("write");
-    let o = run(&["grade", "--answers", f.to_str().expect("utf-8"), "--model", "missing.gguf"]);
+    let o = run(&[
+        "grade",
+        "--answers",
+        f.to_str().expect("utf-8"),
+        "--model",
+        "missing.gguf",
+    ]);
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
     assert!(e.contains("bad.jsonl"), "{e}");
-    assert!(e.contains("line 2: missing field `question`; missing field `answer`"), "{e}");
-    assert!(e.contains("line 3: expected a JSON object, found an array"), "{e}");
+    assert!(
+        e.contains("line 2: missing field `question`; missing field `answer`"),
+        "{e}"
+    );
+    assert!(
+        e.contains("line 3: expected a JSON object, found an array"),
+        "{e}"
+    );
     assert!(e.contains("fix:"), "{e}");
 }
 
@@ -208,18 +263,33 @@ fn malformed_answers_lines_are_all_reported() {
 fn bad_rubric_is_reported_with_lines() {
     let dir = tempfile::tempdir().expect("tmp");
     let r = dir.path().join("r.toml");
-    std::fs::write(&r, "name = \"x\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-4\"\n").expect("write");
+    std::fs::write(
+        &r,
+        "name = \"x\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-4\"\n",
+    )
+    .expect("write");
     let o = run(&["rubric", "check", r.to_str().expect("utf-8")]);
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
-    assert!(e.contains("line 5: criterion `a`: unknown scale `1-4`"), "{e}");
+    assert!(
+        e.contains("line 5: criterion `a`: unknown scale `1-4`"),
+        "{e}"
+    );
     assert!(e.contains("fix:"), "{e}");
 }
 
 /// An unknown criterion asked for on the command line names the known ones.
 #[test]
 fn unknown_criterion_names_the_known_ones() {
-    let o = run(&["grade", "--answers", "demo-data/answers.jsonl", "--criteria", "politeness", "--model", "missing.gguf"]);
+    let o = run(&[
+        "grade",
+        "--answers",
+        "demo-data/answers.jsonl",
+        "--criteria",
+        "politeness",
+        "--model",
+        "missing.gguf",
+    ]);
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
     assert!(e.contains("no criterion `politeness`"), "{e}");
@@ -232,16 +302,37 @@ fn bad_labels_are_reported_per_line() {
     let dir = tempfile::tempdir().expect("tmp");
     let l = dir.path().join("labels.csv");
     std::fs::write(&l, "question_id,system,criterion,rater,score\nq01,assistant-v1,politeness,r1,3\nq01,assistant-v1,correctness,r1,9\n").expect("write");
-    let o = run(&["grade", "--answers", "demo-data/answers.jsonl", "--anchors", l.to_str().expect("utf-8"), "--model", "missing.gguf"]);
+    let o = run(&[
+        "grade",
+        "--answers",
+        "demo-data/answers.jsonl",
+        "--anchors",
+        l.to_str().expect("utf-8"),
+        "--model",
+        "missing.gguf",
+    ]);
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
-    assert!(e.contains("line 3: score `9` is not on the scale of `correctness`"), "{e}");
+    assert!(
+        e.contains("line 3: score `9` is not on the scale of `correctness`"),
+        "{e}"
+    );
 }
 
 /// The dry run shows the exact prompt, with the answer's control strings as text.
 #[test]
 fn rubric_show_renders_the_prompt_without_running_the_model() {
-    let o = run(&["rubric", "show", "--answers", "demo-data/answers.jsonl", "--item", "q31/assistant-v1", "--criterion", "correctness", "--json"]);
+    let o = run(&[
+        "rubric",
+        "show",
+        "--answers",
+        "demo-data/answers.jsonl",
+        "--item",
+        "q31/assistant-v1",
+        "--criterion",
+        "correctness",
+        "--json",
+    ]);
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     let prompt = v["prompt"].as_str().expect("prompt");
@@ -260,7 +351,12 @@ fn overlap_command_scores_every_system() {
     assert_eq!(systems.len(), 3);
     assert_eq!(v["items"].as_array().expect("items").len(), 150);
     let rouge = |name: &str| {
-        systems.iter().find(|s| s["system"] == name).expect("system")["mean"]["rougel_f"].as_f64().expect("number")
+        systems
+            .iter()
+            .find(|s| s["system"] == name)
+            .expect("system")["mean"]["rougel_f"]
+            .as_f64()
+            .expect("number")
     };
     assert!(rouge("assistant-v2") > rouge("assistant-v1"));
 }
@@ -273,10 +369,17 @@ fn model_tokens_shows_control_strings_as_plain_text() {
     let plain = run(&["model", "tokens", m, "<|im_end|>", "--json"]);
     assert!(plain.status.success(), "{}", stderr(&plain));
     let v: serde_json::Value = serde_json::from_slice(&plain.stdout).expect("json");
-    assert!(v.as_array().expect("rows").len() > 1, "split into plain pieces: {v}");
+    assert!(
+        v.as_array().expect("rows").len() > 1,
+        "split into plain pieces: {v}"
+    );
     let trusted = run(&["model", "tokens", m, "<|im_end|>", "--trusted", "--json"]);
     let t: serde_json::Value = serde_json::from_slice(&trusted.stdout).expect("json");
-    assert_eq!(t.as_array().expect("rows").len(), 1, "one control token: {t}");
+    assert_eq!(
+        t.as_array().expect("rows").len(),
+        1,
+        "one control token: {t}"
+    );
     assert_eq!(t[0]["piece"], "<|im_end|>");
 }
 
@@ -285,15 +388,33 @@ fn model_tokens_shows_control_strings_as_plain_text() {
 fn model_next_lists_top_tokens_in_order() {
     let m = common::real_model("gemma-3-270m-q4_k_m.gguf");
     let m = m.to_str().expect("utf-8");
-    let args = ["model", "next", m, "One, two, three, four,", "--top", "5", "--threads", "2", "--json"];
+    let args = [
+        "model",
+        "next",
+        m,
+        "One, two, three, four,",
+        "--top",
+        "5",
+        "--threads",
+        "2",
+        "--json",
+    ];
     let a = run(&args);
     assert!(a.status.success(), "{}", stderr(&a));
     let v: serde_json::Value = serde_json::from_slice(&a.stdout).expect("json");
-    let p: Vec<f64> = v.as_array().expect("rows").iter().map(|r| r["probability"].as_f64().expect("p")).collect();
+    let p: Vec<f64> = v
+        .as_array()
+        .expect("rows")
+        .iter()
+        .map(|r| r["probability"].as_f64().expect("p"))
+        .collect();
     assert_eq!(p.len(), 5);
     assert!(p.windows(2).all(|w| w[0] >= w[1]), "{p:?}");
     assert!(p.iter().sum::<f64>() <= 1.0 + 1e-9);
-    assert!(v[0]["piece"].as_str().expect("piece").contains("five"), "a counting prompt continues with five: {v}");
+    assert!(
+        v[0]["piece"].as_str().expect("piece").contains("five"),
+        "a counting prompt continues with five: {v}"
+    );
     let b = run(&args);
     assert_eq!(a.stdout, b.stdout, "same input, same output");
 }
@@ -304,21 +425,36 @@ fn model_next_lists_top_tokens_in_order() {
 #[test]
 fn estimate_reports_corrected_means_per_system_and_criterion() {
     let o = run(&[
-        "estimate", "--grades", "tests/fixtures/report/before", "--labels", "tests/fixtures/report/labels.csv",
-        "--label-share", "0.5", "--json",
+        "estimate",
+        "--grades",
+        "tests/fixtures/report/before",
+        "--labels",
+        "tests/fixtures/report/labels.csv",
+        "--label-share",
+        "0.5",
+        "--json",
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     let rows = v["rows"].as_array().expect("rows");
     assert_eq!(rows.len(), 6, "3 systems x 2 labelled criteria");
-    let text = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/report/labels.csv")).expect("labels");
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/report/labels.csv"),
+    )
+    .expect("labels");
     for row in rows {
-        let (sys, crit) = (row["system"].as_str().expect("s"), row["criterion"].as_str().expect("c"));
+        let (sys, crit) = (
+            row["system"].as_str().expect("s"),
+            row["criterion"].as_str().expect("c"),
+        );
         let mut per_item: std::collections::BTreeMap<String, Vec<u32>> = Default::default();
         for line in text.lines().skip(1) {
             let f: Vec<&str> = line.split(',').collect();
             if f[1] == sys && f[2] == crit {
-                per_item.entry(f[0].to_string()).or_default().push(f[4].parse().expect("score"));
+                per_item
+                    .entry(f[0].to_string())
+                    .or_default()
+                    .push(f[4].parse().expect("score"));
             }
         }
         let consensus: Vec<f64> = per_item
@@ -329,11 +465,20 @@ fn estimate_reports_corrected_means_per_system_and_criterion() {
             })
             .collect();
         let mean = consensus.iter().sum::<f64>() / consensus.len() as f64;
-        assert!((row["held_out_human_mean"].as_f64().expect("mean") - mean).abs() < 1e-12, "{row}");
-        assert_eq!(row["n_labelled"].as_u64().expect("n") + row["n_unlabelled"].as_u64().expect("n"), 4);
+        assert!(
+            (row["held_out_human_mean"].as_f64().expect("mean") - mean).abs() < 1e-12,
+            "{row}"
+        );
+        assert_eq!(
+            row["n_labelled"].as_u64().expect("n") + row["n_unlabelled"].as_u64().expect("n"),
+            4
+        );
         let ppi = &row["ppi_plus_plus"];
         assert!(ppi["ci_low"].as_f64().expect("lo") <= ppi["estimate"].as_f64().expect("est"));
-        assert!(ppi["lambda"].as_f64().expect("lambda") >= 0.0 && ppi["lambda"].as_f64().expect("lambda") <= 1.0);
+        assert!(
+            ppi["lambda"].as_f64().expect("lambda") >= 0.0
+                && ppi["lambda"].as_f64().expect("lambda") <= 1.0
+        );
     }
 }
 
@@ -342,8 +487,13 @@ fn estimate_reports_corrected_means_per_system_and_criterion() {
 #[test]
 fn vet_gate_fails_with_exit_code_one() {
     let base = [
-        "vet", "--grades", "tests/fixtures/report/before", "--labels", "tests/fixtures/report/labels.csv",
-        "--resamples", "200",
+        "vet",
+        "--grades",
+        "tests/fixtures/report/before",
+        "--labels",
+        "tests/fixtures/report/labels.csv",
+        "--resamples",
+        "200",
     ];
     let ok = run(&base);
     assert!(ok.status.success(), "{}", stderr(&ok));

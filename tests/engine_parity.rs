@@ -13,6 +13,7 @@ use std::sync::Mutex;
 use assize::engine::decoder::{log_softmax, Activation, Decoder, LoadOptions, Numerics};
 use assize::engine::linear::MatmulPolicy;
 use assize::engine::{EngineError, GgufFile};
+use candle_core::quantized::gguf_file::Value;
 use candle_core::{Device, Tensor};
 use candle_transformers::models::{quantized_gemma3, quantized_llama, quantized_qwen2};
 use common::tiny_gguf::{Tiny, VOCAB};
@@ -546,4 +547,74 @@ fn real_forked_prefix_equals_full_recompute() {
         eprintln!("{file} fast: fork vs recompute max |Δ log p| {full} (top 10: {top})");
         assert!(top < 0.1, "{file} fast: top-10 difference {top}");
     }
+}
+
+/// RoPE scaling read from the file. Linear scaling (position interpolation, Chen et al.
+/// 2023, `rope.scaling.type = linear`, factor 2) and a `rope_freqs.weight` tensor of
+/// divisors all equal to 2 (llama.cpp's per-frequency form) both halve every rotation
+/// speed, so they must give the same logits bit for bit, and logits unlike the unscaled
+/// model's on prompts longer than one token (a decoder that ignored scaling would fail
+/// here).
+#[test]
+fn rope_scaling_from_the_file_changes_positions() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let plain = Tiny::new("llama");
+    let linear = Tiny {
+        extra: vec![
+            (
+                "llama.rope.scaling.type".into(),
+                Value::String("linear".into()),
+            ),
+            ("llama.rope.scaling.factor".into(), Value::F32(2.0)),
+        ],
+        ..plain.clone()
+    };
+    let factors = Tiny {
+        rope_freqs: Some(vec![2.0; 32]),
+        ..plain.clone()
+    };
+    let prompts = tiny_prompts();
+    let run = |spec: &Tiny| {
+        let path = spec.write(dir.path());
+        our_log_probs(&path, &prompts, fast_numerics("llama"))
+    };
+    let (base, lin, fac) = (run(&plain), run(&linear), run(&factors));
+    let dec = load(&linear.write(dir.path()), fast_numerics("llama"), None);
+    assert_eq!(dec.config().rope_position_scale, 0.5);
+    for (((b, l), f), p) in base.iter().zip(&lin).zip(&fac).zip(&prompts) {
+        assert_eq!(l, f, "linear factor 2 and divisors of 2 disagree");
+        if p.len() == 1 {
+            // Position 0 is not rotated, scaled or not.
+            assert_eq!(b, l, "a lone first token changed under scaling");
+        } else {
+            assert!(max_abs_diff(b, l) > 1e-3, "scaling made no difference");
+        }
+    }
+}
+
+/// RoPE scaling kinds the decoder does not implement (YaRN) are refused with an error
+/// naming the metadata key, never run with wrong positions.
+#[test]
+fn unsupported_rope_scaling_is_refused() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = Tiny {
+        extra: vec![
+            (
+                "qwen2.rope.scaling.type".into(),
+                Value::String("yarn".into()),
+            ),
+            ("qwen2.rope.scaling.factor".into(), Value::F32(4.0)),
+        ],
+        ..Tiny::new("qwen2")
+    };
+    let path = spec.write(dir.path());
+    let gguf = GgufFile::open(&path).expect("open");
+    let err = Decoder::load(&gguf, &LoadOptions::default())
+        .err()
+        .expect("yarn must be refused");
+    let text = err.to_string();
+    assert!(
+        text.contains("qwen2.rope.scaling.type") && text.contains("yarn"),
+        "{text}"
+    );
 }

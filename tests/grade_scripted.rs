@@ -53,14 +53,24 @@ fn expected_score_of_a_fixed_distribution_equals_the_hand_value() {
     let a = args(dir.path().join("run"));
     let p = prepare(&a).expect("inputs");
     let judge = ScriptedJudge {
-        rules: vec![("Criterion: Correctness".into(), vec![-4.0, -2.5, -1.2, -0.7, -3.0])],
+        rules: vec![(
+            "Criterion: Correctness".into(),
+            vec![-4.0, -2.5, -1.2, -0.7, -3.0],
+        )],
         ..Default::default()
     };
     let report = grade_run(&a, &p, &judge).expect("run");
     assert_eq!(report.records, 12);
     let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
-    let c = recs.iter().find(|r| r.criterion == "correctness").expect("a correctness record");
-    assert!((c.expected - 3.5036494440471637).abs() < 1e-12, "{}", c.expected);
+    let c = recs
+        .iter()
+        .find(|r| r.criterion == "correctness")
+        .expect("a correctness record");
+    assert!(
+        (c.expected - 3.5036494440471637).abs() < 1e-12,
+        "{}",
+        c.expected
+    );
     assert!((c.captured_mass - 0.9479672215841085).abs() < 1e-12);
     assert_eq!(c.argmax, "4");
     assert!(!c.low_mass);
@@ -75,7 +85,10 @@ fn low_captured_mass_is_flagged_not_dropped() {
     let a = args(dir.path().join("run"));
     let p = prepare(&a).expect("inputs");
     let judge = ScriptedJudge {
-        rules: vec![("Criterion: Helpfulness".into(), vec![-6.0, -6.0, -5.0, -6.0, -6.0])],
+        rules: vec![(
+            "Criterion: Helpfulness".into(),
+            vec![-6.0, -6.0, -5.0, -6.0, -6.0],
+        )],
         ..Default::default()
     };
     let report = grade_run(&a, &p, &judge).expect("run");
@@ -89,16 +102,35 @@ fn low_captured_mass_is_flagged_not_dropped() {
 #[test]
 fn resumed_run_equals_uninterrupted_run() {
     let dir = tempfile::tempdir().expect("tmp");
-    let script = || vec![
-        ("Criterion: Correctness".to_string(), vec![-3.0, -2.0, -1.0, -0.5, -2.5]),
-        ("Criterion: Helpfulness".to_string(), vec![-0.2, -2.0, -3.0, -4.0, -5.0]),
-    ];
+    let script = || {
+        vec![
+            (
+                "Criterion: Correctness".to_string(),
+                vec![-3.0, -2.0, -1.0, -0.5, -2.5],
+            ),
+            (
+                "Criterion: Helpfulness".to_string(),
+                vec![-0.2, -2.0, -3.0, -4.0, -5.0],
+            ),
+        ]
+    };
     let full = args(dir.path().join("full"));
     let p = prepare(&full).expect("inputs");
-    grade_run(&full, &p, &ScriptedJudge { rules: script(), ..Default::default() }).expect("run");
+    grade_run(
+        &full,
+        &p,
+        &ScriptedJudge {
+            rules: script(),
+            ..Default::default()
+        },
+    )
+    .expect("run");
 
     let part = args(dir.path().join("part"));
-    let crashing = ScriptedJudge { rules: script(), ..Default::default() };
+    let crashing = ScriptedJudge {
+        rules: script(),
+        ..Default::default()
+    };
     crashing
         .fail_on
         .borrow_mut()
@@ -111,12 +143,16 @@ fn resumed_run_equals_uninterrupted_run() {
     let mut text = std::fs::read_to_string(&path).expect("read");
     text.push_str("{\"question_id\":\"q0");
     std::fs::write(&path, text).expect("write");
-    let healthy = ScriptedJudge { rules: script(), ..Default::default() };
+    let healthy = ScriptedJudge {
+        rules: script(),
+        ..Default::default()
+    };
     let second = grade_run(&part, &p, &healthy).expect("resume");
     assert_eq!(second.computed, 2, "only the failed item is graded again");
     assert_eq!(*healthy.calls.borrow(), vec![2]);
 
-    let mut a: Vec<GradeRecord> = read_records(&dir.path().join("full/grades.jsonl")).expect("read");
+    let mut a: Vec<GradeRecord> =
+        read_records(&dir.path().join("full/grades.jsonl")).expect("read");
     let mut b: Vec<GradeRecord> = read_records(&path).expect("read");
     a.sort_by_key(GradeRecord::key);
     b.sort_by_key(GradeRecord::key);
@@ -149,19 +185,30 @@ fn generated_steps_are_cached_and_used_in_forms() {
     a.limit = Some(2);
     let p = prepare(&a).expect("inputs");
     let judge = ScriptedJudge {
-        rules: vec![("1. Check every fact.".into(), vec![-9.0, -9.0, -9.0, -9.0, -0.01])],
+        rules: vec![(
+            "1. Check every fact.".into(),
+            vec![-9.0, -9.0, -9.0, -9.0, -0.01],
+        )],
         assessment: " Check every fact.\n2. Decide.".into(),
         ..Default::default()
     };
     grade_run(&a, &p, &judge).expect("run");
-    let steps: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(dir.path().join("run/steps.json")).expect("steps saved")).expect("json");
-    assert_eq!(steps["correctness"], serde_json::json!(["Check every fact.", "Decide."]));
+    let steps: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(dir.path().join("run/steps.json")).expect("steps saved"),
+    )
+    .expect("json");
+    assert_eq!(
+        steps["correctness"],
+        serde_json::json!(["Check every fact.", "Decide."])
+    );
     let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
     assert_eq!(recs.len(), 4);
     for r in &recs {
         assert_eq!(r.argmax, "5", "the form showed the generated steps");
-        assert_eq!(r.rationale.as_deref(), Some("Check every fact.\n2. Decide."));
+        assert_eq!(
+            r.rationale.as_deref(),
+            Some("Check every fact.\n2. Decide.")
+        );
     }
 }
 
@@ -180,14 +227,35 @@ fn anchors_are_shown_seeded_and_never_from_the_same_question() {
     for q in ["q01", "q02", "q10", "q33"] {
         let shown = pool.for_item("correctness", q);
         assert_eq!(shown.len(), 3);
-        let own = answers.iter().find(|a| a.question_id == q).expect("question").question.clone();
-        assert!(shown.iter().all(|a| a.question != own), "anchor from the item's own question");
-        let same: Vec<String> = again.for_item("correctness", q).iter().map(|a| a.answer.clone()).collect();
-        assert_eq!(shown.iter().map(|a| a.answer.clone()).collect::<Vec<_>>(), same);
+        let own = answers
+            .iter()
+            .find(|a| a.question_id == q)
+            .expect("question")
+            .question
+            .clone();
+        assert!(
+            shown.iter().all(|a| a.question != own),
+            "anchor from the item's own question"
+        );
+        let same: Vec<String> = again
+            .for_item("correctness", q)
+            .iter()
+            .map(|a| a.answer.clone())
+            .collect();
+        assert_eq!(
+            shown.iter().map(|a| a.answer.clone()).collect::<Vec<_>>(),
+            same
+        );
     }
-    let labels_shown: std::collections::HashSet<String> =
-        pool.for_item("correctness", "q99").iter().map(|a| a.label.clone()).collect();
-    assert!(labels_shown.len() >= 2, "anchors cover different labels: {labels_shown:?}");
+    let labels_shown: std::collections::HashSet<String> = pool
+        .for_item("correctness", "q99")
+        .iter()
+        .map(|a| a.label.clone())
+        .collect();
+    assert!(
+        labels_shown.len() >= 2,
+        "anchors cover different labels: {labels_shown:?}"
+    );
 
     let dir = tempfile::tempdir().expect("tmp");
     let mut a = args(dir.path().join("run"));
@@ -195,10 +263,16 @@ fn anchors_are_shown_seeded_and_never_from_the_same_question() {
     a.limit = Some(2);
     let p = prepare(&a).expect("inputs");
     let judge = ScriptedJudge {
-        rules: vec![("Graded examples for this criterion".into(), vec![-0.01, -9.0, -9.0, -9.0, -9.0])],
+        rules: vec![(
+            "Graded examples for this criterion".into(),
+            vec![-0.01, -9.0, -9.0, -9.0, -9.0],
+        )],
         ..Default::default()
     };
     grade_run(&a, &p, &judge).expect("run");
     let recs: Vec<GradeRecord> = read_records(&dir.path().join("run/grades.jsonl")).expect("read");
-    assert!(recs.iter().all(|r| r.argmax == "1"), "every form showed anchors");
+    assert!(
+        recs.iter().all(|r| r.argmax == "1"),
+        "every form showed anchors"
+    );
 }

@@ -34,7 +34,14 @@ fn judge() -> &'static JudgeModel {
             "default judge missing at `{}`: run `scripts/fetch-models --all`",
             path.display()
         );
-        JudgeModel::load(&path, &LoadOptions { threads: 2, context_cap: None }).expect("default judge loads")
+        JudgeModel::load(
+            &path,
+            &LoadOptions {
+                threads: 2,
+                context_cap: None,
+            },
+        )
+        .expect("default judge loads")
     })
 }
 
@@ -42,7 +49,8 @@ fn judge() -> &'static JudgeModel {
 fn subset(ids: &[&str]) -> (tempfile::TempDir, PathBuf) {
     let dir = tempfile::tempdir().expect("tmp");
     let path = dir.path().join("answers.jsonl");
-    let text = std::fs::read_to_string(root().join("demo-data/answers.jsonl")).expect("demo answers");
+    let text =
+        std::fs::read_to_string(root().join("demo-data/answers.jsonl")).expect("demo answers");
     let mut f = std::fs::File::create(&path).expect("create");
     for line in text.lines() {
         let v: serde_json::Value = serde_json::from_str(line).expect("json");
@@ -59,7 +67,11 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         answers,
         rubric: root().join("judge-templates/rubrics/support.toml"),
         criteria: criteria.iter().map(|s| s.to_string()).collect(),
-        model: ModelArgs { model: "default".into(), threads: 2, context: None },
+        model: ModelArgs {
+            model: "default".into(),
+            threads: 2,
+            context: None,
+        },
         reasoning: false,
         generate_steps: false,
         reasoning_tokens: 48,
@@ -71,7 +83,10 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         limit: None,
         no_prefix_reuse: false,
         templates: None,
-        output: OutputArgs { json: true, quiet: true },
+        output: OutputArgs {
+            json: true,
+            quiet: true,
+        },
     }
 }
 
@@ -81,7 +96,11 @@ fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> 
         systems: vec![],
         criterion: criterion.map(str::to_string),
         rubric: root().join("judge-templates/rubrics/support.toml"),
-        model: ModelArgs { model: "default".into(), threads: 2, context: None },
+        model: ModelArgs {
+            model: "default".into(),
+            threads: 2,
+            context: None,
+        },
         judge_name: None,
         preferences: None,
         grades: None,
@@ -91,7 +110,10 @@ fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> 
         run_dir: Some(run_dir),
         limit: None,
         templates: None,
-        output: OutputArgs { json: true, quiet: true },
+        output: OutputArgs {
+            json: true,
+            quiet: true,
+        },
     }
 }
 
@@ -126,12 +148,24 @@ fn plainly_correct_answers_outscore_plainly_wrong_ones() {
         ("q44", "assistant-v2", "assistant-v1"),
         ("q49", "assistant-v1", "assistant-v2"),
     ];
-    let diffs: Vec<f64> = pairs.iter().map(|(q, right, wrong)| score(q, right) - score(q, wrong)).collect();
+    let diffs: Vec<f64> = pairs
+        .iter()
+        .map(|(q, right, wrong)| score(q, right) - score(q, wrong))
+        .collect();
     let ordered = diffs.iter().filter(|d| **d > 0.0).count();
     let mean = diffs.iter().sum::<f64>() / diffs.len() as f64;
-    assert!(ordered * 2 > pairs.len(), "correct answer ahead in only {ordered} of 6 pairs: {diffs:?}");
-    assert!(mean > 0.3, "mean lead of correct answers {mean:.3}: {diffs:?}");
-    assert!(recs.iter().all(|r| r.captured_mass > 0.9), "the judge follows the form");
+    assert!(
+        ordered * 2 > pairs.len(),
+        "correct answer ahead in only {ordered} of 6 pairs: {diffs:?}"
+    );
+    assert!(
+        mean > 0.3,
+        "mean lead of correct answers {mean:.3}: {diffs:?}"
+    );
+    assert!(
+        recs.iter().all(|r| r.captured_mass > 0.9),
+        "the judge follows the form"
+    );
 }
 
 /// The same run twice, in fresh folders, gives bit-identical records.
@@ -139,11 +173,18 @@ fn plainly_correct_answers_outscore_plainly_wrong_ones() {
 fn grading_twice_gives_identical_records() {
     let (tmp, answers) = subset(&["q02", "q03"]);
     for run in ["one", "two"] {
-        let a = grade_args(answers.clone(), tmp.path().join(run), &["correctness", "clarity"]);
+        let a = grade_args(
+            answers.clone(),
+            tmp.path().join(run),
+            &["correctness", "clarity"],
+        );
         let p = prepare(&a).expect("inputs");
         grade_run(&a, &p, judge()).expect("grading");
     }
-    assert_eq!(records(&tmp.path().join("one")), records(&tmp.path().join("two")));
+    assert_eq!(
+        records(&tmp.path().join("one")),
+        records(&tmp.path().join("two"))
+    );
 }
 
 /// A run interrupted after two answers and resumed equals an uninterrupted run.
@@ -166,7 +207,10 @@ fn resumed_run_equals_uninterrupted_run() {
     let p3 = prepare(&part).expect("inputs");
     let report = grade_run(&part, &p3, judge()).expect("resume");
     assert_eq!(report.computed, 2);
-    assert_eq!(records(&tmp.path().join("full")), records(&tmp.path().join("part")));
+    assert_eq!(
+        records(&tmp.path().join("full")),
+        records(&tmp.path().join("part"))
+    );
 }
 
 /// Two identical answers: the debiased verdict is a tie by construction, and any
@@ -177,7 +221,11 @@ fn identical_answers_give_a_debiased_tie() {
     let path = tmp.path().join("same.jsonl");
     let text = std::fs::read_to_string(root().join("demo-data/answers.jsonl")).expect("demo");
     let mut f = std::fs::File::create(&path).expect("create");
-    for line in text.lines().filter(|l| l.contains("\"assistant-v2\"")).take(3) {
+    for line in text
+        .lines()
+        .filter(|l| l.contains("\"assistant-v2\""))
+        .take(3)
+    {
         let mut v: serde_json::Value = serde_json::from_str(line).expect("json");
         for sys in ["copy-a", "copy-b"] {
             v["system"] = sys.into();
@@ -195,9 +243,16 @@ fn identical_answers_give_a_debiased_tie() {
         assert!((o.original.first - o.swapped.first).abs() < 1e-9);
     }
     let p = report.position.expect("position report");
-    let lean = report.outcomes.iter().map(|o| o.original.first - o.original.second).sum::<f64>();
+    let lean = report
+        .outcomes
+        .iter()
+        .map(|o| o.original.first - o.original.second)
+        .sum::<f64>();
     if lean.abs() > 0.3 {
-        assert!(p.first_slot_win_rate > 0.0 || p.second_slot_wins > 0, "a slot preference is reported");
+        assert!(
+            p.first_slot_win_rate > 0.0 || p.second_slot_wins > 0,
+            "a slot preference is reported"
+        );
     }
 }
 
@@ -208,17 +263,35 @@ fn wrong_answers_lose_in_debiased_pairwise_verdicts() {
     let (tmp, answers) = subset(&["q01", "q09", "q44", "q49"]);
     let args = compare_args(answers, tmp.path().join("run"), Some("correctness"));
     let report = compare_run(&args, judge()).expect("compare");
-    let right = |q: &str| if q == "q49" { "assistant-v1" } else { "assistant-v2" };
+    let right = |q: &str| {
+        if q == "q49" {
+            "assistant-v1"
+        } else {
+            "assistant-v2"
+        }
+    };
     let wins = report
         .outcomes
         .iter()
         .filter(|o| {
-            let p_right = if o.a == right(&o.question_id) { o.debiased.a } else { o.debiased.b };
-            let p_wrong = if o.a == right(&o.question_id) { o.debiased.b } else { o.debiased.a };
+            let p_right = if o.a == right(&o.question_id) {
+                o.debiased.a
+            } else {
+                o.debiased.b
+            };
+            let p_wrong = if o.a == right(&o.question_id) {
+                o.debiased.b
+            } else {
+                o.debiased.a
+            };
             p_right > p_wrong
         })
         .count();
-    assert!(wins * 2 > report.outcomes.len(), "correct answer ahead in {wins} of {}", report.outcomes.len());
+    assert!(
+        wins * 2 > report.outcomes.len(),
+        "correct answer ahead in {wins} of {}",
+        report.outcomes.len()
+    );
 }
 
 /// An item longer than the context cap is an error naming the item, and the other
@@ -226,10 +299,15 @@ fn wrong_answers_lose_in_debiased_pairwise_verdicts() {
 #[test]
 fn overlong_item_is_named_and_others_are_kept() {
     let model = {
-        let dir = std::env::var_os("ASSIZE_MODELS_DIR").map(PathBuf::from).unwrap_or_else(|| root().join("models"));
+        let dir = std::env::var_os("ASSIZE_MODELS_DIR")
+            .map(PathBuf::from)
+            .unwrap_or_else(|| root().join("models"));
         JudgeModel::load(
             &dir.join("qwen2.5-coder-1.5b-instruct-q4_k_m.gguf"),
-            &LoadOptions { threads: 2, context_cap: Some(600) },
+            &LoadOptions {
+                threads: 2,
+                context_cap: Some(600),
+            },
         )
         .expect("judge loads")
     };
@@ -250,7 +328,13 @@ fn overlong_item_is_named_and_others_are_kept() {
     let report = grade_run(&a, &p, &model).expect("run finishes");
     assert_eq!(report.failed.len(), 1);
     assert_eq!(report.failed[0].item, "long/s");
-    assert!(report.failed[0].error.contains("more than the context limit of 600"), "{}", report.failed[0].error);
+    assert!(
+        report.failed[0]
+            .error
+            .contains("more than the context limit of 600"),
+        "{}",
+        report.failed[0].error
+    );
     assert_eq!(report.records, 1);
 }
 
@@ -269,6 +353,10 @@ fn reasoning_first_stores_the_assessment() {
     for r in &recs {
         let text = r.rationale.as_deref().expect("rationale stored");
         assert!(!text.trim().is_empty(), "empty assessment");
-        assert!(r.captured_mass > 0.5, "mass {} after the assessment", r.captured_mass);
+        assert!(
+            r.captured_mass > 0.5,
+            "mass {} after the assessment",
+            r.captured_mass
+        );
     }
 }

@@ -23,7 +23,8 @@ fn root() -> PathBuf {
 }
 
 fn chromium() -> PathBuf {
-    let p = std::env::var_os("ASSIZE_CHROMIUM").map_or_else(|| PathBuf::from("/usr/bin/chromium"), PathBuf::from);
+    let p = std::env::var_os("ASSIZE_CHROMIUM")
+        .map_or_else(|| PathBuf::from("/usr/bin/chromium"), PathBuf::from);
     assert!(
         p.exists(),
         "headless Chromium is needed for this test and `{}` does not exist; install it with `apt-get install -y chromium` (or point ASSIZE_CHROMIUM at a Chromium binary)",
@@ -52,7 +53,9 @@ fn browse(page: &Path, work: &Path, extra: &[String]) -> String {
     .args(extra)
     .arg(format!("file://{}", page.display()))
     // stdout goes to a file: a pipe would fill up with the DOM while we wait.
-    .stdout(Stdio::from(std::fs::File::create(&out_path).expect("stdout file")))
+    .stdout(Stdio::from(
+        std::fs::File::create(&out_path).expect("stdout file"),
+    ))
     .stderr(Stdio::null());
     let mut child = cmd.spawn().expect("start chromium");
     let start = Instant::now();
@@ -71,8 +74,12 @@ fn browse(page: &Path, work: &Path, extra: &[String]) -> String {
 
 /// URLs of network requests the page itself started, from a Chromium net log.
 fn page_requests(net_log: &Path) -> Vec<String> {
-    let log: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(net_log).expect("net log written")).expect("net log is JSON");
-    let start_job = log["constants"]["logEventTypes"]["URL_REQUEST_START_JOB"].as_u64().expect("event type constant");
+    let log: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(net_log).expect("net log written"))
+            .expect("net log is JSON");
+    let start_job = log["constants"]["logEventTypes"]["URL_REQUEST_START_JOB"]
+        .as_u64()
+        .expect("event type constant");
     log["events"]
         .as_array()
         .expect("events")
@@ -92,7 +99,10 @@ fn outside_references(html: &str) -> Vec<String> {
         let mut rest = html;
         while let Some(i) = rest.find(key) {
             rest = &rest[i + key.len()..];
-            let target: String = rest.chars().take_while(|c| !matches!(c, '"' | '\'' | ')' | ' ')).collect();
+            let target: String = rest
+                .chars()
+                .take_while(|c| !matches!(c, '"' | '\'' | ')' | ' '))
+                .collect();
             if !target.starts_with('#') {
                 out.push(format!("{key}{target}"));
             }
@@ -107,26 +117,60 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
     let page = work.path().join("report.html");
     let o = Command::new(env!("CARGO_BIN_EXE_assize"))
         .args([
-            "report", "--grades", "tests/fixtures/report/before", "--grades", "tests/fixtures/report/after",
-            "--compare", "tests/fixtures/report/compare", "--labels", "tests/fixtures/report/labels.csv",
-            "--preferences", "tests/fixtures/report/preferences.csv", "--answers", "tests/fixtures/report/answers.jsonl",
-            "--resamples", "300", "--html",
+            "report",
+            "--grades",
+            "tests/fixtures/report/before",
+            "--grades",
+            "tests/fixtures/report/after",
+            "--compare",
+            "tests/fixtures/report/compare",
+            "--labels",
+            "tests/fixtures/report/labels.csv",
+            "--preferences",
+            "tests/fixtures/report/preferences.csv",
+            "--answers",
+            "tests/fixtures/report/answers.jsonl",
+            "--resamples",
+            "300",
+            "--html",
         ])
         .arg(&page)
         .current_dir(root())
         .output()
         .expect("run assize");
-    assert!(o.status.success(), "assize report failed:\n{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        o.status.success(),
+        "assize report failed:\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     let html = std::fs::read_to_string(&page).expect("html written");
-    assert_eq!(outside_references(&html), Vec::<String>::new(), "the page refers to something outside itself");
+    assert_eq!(
+        outside_references(&html),
+        Vec::<String>::new(),
+        "the page refers to something outside itself"
+    );
     for tag in ["<script", "<link", "<iframe", "<object", "<embed"] {
         assert!(!html.contains(tag), "the page holds `{tag}`");
     }
 
     let net = work.path().join("net.json");
-    let dom = browse(&page, work.path(), &["--dump-dom".into(), format!("--log-net-log={}", net.display())]);
-    assert!(dom.contains("Read this first"), "the browser rendered the page");
-    assert_eq!(page_requests(&net), Vec::<String>::new(), "the page requested these over the network");
+    let dom = browse(
+        &page,
+        work.path(),
+        &[
+            "--dump-dom".into(),
+            format!("--log-net-log={}", net.display()),
+        ],
+    );
+    assert!(
+        dom.contains("Read this first"),
+        "the browser rendered the page"
+    );
+    assert_eq!(
+        page_requests(&net),
+        Vec::<String>::new(),
+        "the page requested these over the network"
+    );
 
     // Fixture: 3 criteria graded in 2 runs, 2 of them labelled, and a comparison run:
     // 3 distribution charts, 2 x 2 heatmaps, 2 x 2 reliability diagrams, and the
@@ -134,11 +178,27 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
     let mut ids = Vec::new();
     for (i, _) in dom.match_indices("<svg") {
         let tag = &dom[i..i + dom[i..].find('>').expect("closed tag")];
-        assert!(tag.contains("class=\"chart "), "an svg without the chart class: {tag}");
-        let id = tag.split("id=\"").nth(1).and_then(|s| s.split('"').next()).expect("every chart has an id");
+        assert!(
+            tag.contains("class=\"chart "),
+            "an svg without the chart class: {tag}"
+        );
+        let id = tag
+            .split("id=\"")
+            .nth(1)
+            .and_then(|s| s.split('"').next())
+            .expect("every chart has an id");
         ids.push(id.to_string());
     }
-    let mut want: Vec<String> = ["dist-correctness", "dist-helpfulness", "dist-safety", "deltas", "position-bias", "ranking"].map(String::from).to_vec();
+    let mut want: Vec<String> = [
+        "dist-correctness",
+        "dist-helpfulness",
+        "dist-safety",
+        "deltas",
+        "position-bias",
+        "ranking",
+    ]
+    .map(String::from)
+    .to_vec();
     for run in 0..2 {
         for c in ["correctness", "helpfulness"] {
             want.push(format!("confusion-{run}-{c}"));
@@ -151,13 +211,31 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
     assert_eq!(dom.matches("class=\"chart chart-dist\"").count(), 3);
     assert_eq!(dom.matches("class=\"chart chart-confusion\"").count(), 4);
     assert_eq!(dom.matches("class=\"chart chart-reliability\"").count(), 4);
-    assert_eq!(dom.matches("<details class=\"flag\"").count(), 3, "one <details> per flagged item");
+    assert_eq!(
+        dom.matches("<details class=\"flag\"").count(),
+        3,
+        "one <details> per flagged item"
+    );
 
     let shot = work.path().join("report.png");
-    browse(&page, work.path(), &[format!("--screenshot={}", shot.display()), "--window-size=1100,6000".into()]);
+    browse(
+        &page,
+        work.path(),
+        &[
+            format!("--screenshot={}", shot.display()),
+            "--window-size=1100,6000".into(),
+        ],
+    );
     let png = std::fs::read(&shot).expect("screenshot written");
-    assert!(png.starts_with(b"\x89PNG\r\n\x1a\n"), "the screenshot is a PNG");
-    assert!(png.len() > 50_000, "the screenshot is not a blank page ({} bytes)", png.len());
+    assert!(
+        png.starts_with(b"\x89PNG\r\n\x1a\n"),
+        "the screenshot is a PNG"
+    );
+    assert!(
+        png.len() > 50_000,
+        "the screenshot is not a blank page ({} bytes)",
+        png.len()
+    );
     let keep = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("report-browser");
     std::fs::create_dir_all(&keep).expect("mkdir");
     std::fs::copy(&shot, keep.join("report.png")).expect("keep the screenshot");
@@ -168,9 +246,26 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
 fn network_check_catches_a_page_that_loads_a_remote_image() {
     let work = tempfile::tempdir().expect("tmp");
     let page = work.path().join("remote.html");
-    std::fs::write(&page, "<!DOCTYPE html><p>control page</p><img src=\"http://assize-check.invalid/pixel.png\">").expect("write page");
-    assert_eq!(outside_references(&std::fs::read_to_string(&page).expect("read")), vec!["src=\"http://assize-check.invalid/pixel.png"]);
+    std::fs::write(
+        &page,
+        "<!DOCTYPE html><p>control page</p><img src=\"http://assize-check.invalid/pixel.png\">",
+    )
+    .expect("write page");
+    assert_eq!(
+        outside_references(&std::fs::read_to_string(&page).expect("read")),
+        vec!["src=\"http://assize-check.invalid/pixel.png"]
+    );
     let net = work.path().join("net.json");
-    browse(&page, work.path(), &["--dump-dom".into(), format!("--log-net-log={}", net.display())]);
-    assert_eq!(page_requests(&net), vec!["http://assize-check.invalid/pixel.png"]);
+    browse(
+        &page,
+        work.path(),
+        &[
+            "--dump-dom".into(),
+            format!("--log-net-log={}", net.display()),
+        ],
+    );
+    assert_eq!(
+        page_requests(&net),
+        vec!["http://assize-check.invalid/pixel.png"]
+    );
 }

@@ -36,13 +36,19 @@ fn updating() -> bool {
 
 /// Answers graded in the fixture: the first six questions, both systems.
 const ITEMS: usize = 12;
-const CRITERIA: [(&str, &str); 3] = [("correctness", "Correctness"), ("helpfulness", "Helpfulness"), ("safety", "Safety")];
+const CRITERIA: [(&str, &str); 3] = [
+    ("correctness", "Correctness"),
+    ("helpfulness", "Helpfulness"),
+    ("safety", "Safety"),
+];
 
 /// Lower-median human score of an item (as `vet` defines the consensus), 1-5 criteria.
 fn consensus(labels: &[LabelRow], a: &AnswerRecord, criterion: &str) -> Option<f64> {
     let pos: Vec<usize> = labels
         .iter()
-        .filter(|l| l.question_id == a.question_id && l.system == a.system && l.criterion == criterion)
+        .filter(|l| {
+            l.question_id == a.question_id && l.system == a.system && l.criterion == criterion
+        })
         .filter_map(|l| l.score.parse::<usize>().ok().map(|v| v - 1))
         .collect();
     consensus_index(&pos).map(|i| i as f64 + 1.0)
@@ -50,7 +56,10 @@ fn consensus(labels: &[LabelRow], a: &AnswerRecord, criterion: &str) -> Option<f
 
 /// Log-probabilities of a distribution peaked at `centre`, with total mass `mass`.
 fn peaked(values: &[f64], centre: f64, sharpness: f64, mass: f64) -> Vec<f64> {
-    let w: Vec<f64> = values.iter().map(|v| (-sharpness * (v - centre).powi(2)).exp()).collect();
+    let w: Vec<f64> = values
+        .iter()
+        .map(|v| (-sharpness * (v - centre).powi(2)).exp())
+        .collect();
     let total: f64 = w.iter().sum();
     w.iter().map(|x| (mass * x / total).ln()).collect()
 }
@@ -60,7 +69,11 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         answers: root().join("tests/fixtures/report/answers.jsonl"),
         rubric: root().join("judge-templates/rubrics/support.toml"),
         criteria: CRITERIA.iter().map(|c| c.0.to_string()).collect(),
-        model: ModelArgs { model: "scripted".into(), threads: 1, context: None },
+        model: ModelArgs {
+            model: "scripted".into(),
+            threads: 1,
+            context: None,
+        },
         reasoning,
         generate_steps: false,
         reasoning_tokens: 64,
@@ -72,7 +85,10 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         limit: Some(ITEMS),
         no_prefix_reuse: false,
         templates: None,
-        output: OutputArgs { json: true, quiet: true },
+        output: OutputArgs {
+            json: true,
+            quiet: true,
+        },
     }
 }
 
@@ -94,7 +110,11 @@ fn grading_judge(answers: &[AnswerRecord], labels: &[LabelRow], after: bool) -> 
                 if after && key == "correctness" && a.system == "assistant-v1" {
                     centre += 0.7;
                 }
-                let mass = if key == "helpfulness" && i == 5 && !after { 0.3 } else { 0.93 };
+                let mass = if key == "helpfulness" && i == 5 && !after {
+                    0.3
+                } else {
+                    0.93
+                };
                 peaked(&[1.0, 2.0, 3.0, 4.0, 5.0], centre, 1.3, mass)
             };
             rules.push((needle, lp));
@@ -102,7 +122,11 @@ fn grading_judge(answers: &[AnswerRecord], labels: &[LabelRow], after: bool) -> 
     }
     ScriptedJudge {
         rules,
-        assessment: if after { "Assessment: the answer gives the fare and its conditions; I checked each figure against the reference.".into() } else { String::new() },
+        assessment: if after {
+            "Assessment: the answer gives the fare and its conditions; I checked each figure against the reference.".into()
+        } else {
+            String::new()
+        },
         ..Default::default()
     }
 }
@@ -111,30 +135,55 @@ fn grading_judge(answers: &[AnswerRecord], labels: &[LabelRow], after: bool) -> 
 /// the answer shown first; one order of one pair puts little mass on the verdicts.
 fn pair_judge(answers: &[AnswerRecord], labels: &[LabelRow]) -> ScriptedJudge {
     let quality = |a: &AnswerRecord| {
-        let v: Vec<f64> = ["correctness", "faithfulness", "helpfulness", "clarity"].iter().filter_map(|c| consensus(labels, a, c)).collect();
+        let v: Vec<f64> = ["correctness", "faithfulness", "helpfulness", "clarity"]
+            .iter()
+            .filter_map(|c| consensus(labels, a, c))
+            .collect();
         v.iter().sum::<f64>() / v.len().max(1) as f64
     };
     let mut rules = Vec::new();
     for a in answers {
-        let Some(b) = answers.iter().find(|b| b.question_id == a.question_id && b.system != a.system) else { continue };
+        let Some(b) = answers
+            .iter()
+            .find(|b| b.question_id == a.question_id && b.system != a.system)
+        else {
+            continue;
+        };
         let d = quality(a) - quality(b);
         let s = [1.4 * d + 0.9, -1.4 * d, -0.3];
         let total: f64 = s.iter().map(|x| x.exp()).sum();
-        let mass = if a.question_id == "q03" && a.system == "assistant-v1" { 0.35 } else { 0.92 };
+        let mass = if a.question_id == "q03" && a.system == "assistant-v1" {
+            0.35
+        } else {
+            0.92
+        };
         let lp: Vec<f64> = s.iter().map(|x| (mass * x.exp() / total).ln()).collect();
-        rules.push((format!("## Answer 1\n<answer>\n{}\n</answer>", a.answer), lp));
+        rules.push((
+            format!("## Answer 1\n<answer>\n{}\n</answer>", a.answer),
+            lp,
+        ));
     }
-    ScriptedJudge { rules, ..Default::default() }
+    ScriptedJudge {
+        rules,
+        ..Default::default()
+    }
 }
 
 /// Write the three fixture runs under `dir` with the scripted judges.
 fn generate(dir: &Path) {
-    let answers: Vec<AnswerRecord> = read_answers(&root().join("tests/fixtures/report/answers.jsonl")).expect("demo answers").into_iter().take(ITEMS).collect();
-    let labels = read_labels(&root().join("tests/fixtures/report/labels.csv")).expect("demo labels");
+    let answers: Vec<AnswerRecord> =
+        read_answers(&root().join("tests/fixtures/report/answers.jsonl"))
+            .expect("demo answers")
+            .into_iter()
+            .take(ITEMS)
+            .collect();
+    let labels =
+        read_labels(&root().join("tests/fixtures/report/labels.csv")).expect("demo labels");
     for (name, after) in [("before", false), ("after", true)] {
         let args = grade_args(dir.join(name), after);
         let p = prepare(&args).expect("grading inputs");
-        let report = grade_run(&args, &p, &grading_judge(&answers, &labels, after)).expect("scripted grading");
+        let report = grade_run(&args, &p, &grading_judge(&answers, &labels, after))
+            .expect("scripted grading");
         assert!(report.failed.is_empty());
     }
     let args = CompareArgs {
@@ -142,7 +191,11 @@ fn generate(dir: &Path) {
         systems: vec![],
         criterion: None,
         rubric: root().join("judge-templates/rubrics/support.toml"),
-        model: ModelArgs { model: "scripted".into(), threads: 1, context: None },
+        model: ModelArgs {
+            model: "scripted".into(),
+            threads: 1,
+            context: None,
+        },
         judge_name: None,
         preferences: None,
         grades: None,
@@ -152,12 +205,21 @@ fn generate(dir: &Path) {
         run_dir: Some(dir.join("compare")),
         limit: Some(ITEMS / 2),
         templates: None,
-        output: OutputArgs { json: true, quiet: true },
+        output: OutputArgs {
+            json: true,
+            quiet: true,
+        },
     };
     compare_run(&args, &pair_judge(&answers, &labels)).expect("scripted comparison");
 }
 
-const RUN_FILES: [&str; 5] = ["before/manifest.json", "before/grades.jsonl", "after/manifest.json", "after/grades.jsonl", "compare/pairs.jsonl"];
+const RUN_FILES: [&str; 5] = [
+    "before/manifest.json",
+    "before/grades.jsonl",
+    "after/manifest.json",
+    "after/grades.jsonl",
+    "compare/pairs.jsonl",
+];
 
 /// The committed fixture runs are exactly what the scripted judges write.
 #[test]
@@ -172,17 +234,34 @@ fn fixture_runs_are_what_the_scripted_judge_writes() {
             std::fs::write(&committed, &fresh).expect("write fixture");
             continue;
         }
-        let old = std::fs::read_to_string(&committed).unwrap_or_else(|_| panic!("missing fixture `{f}`; run with ASSIZE_UPDATE_SNAPSHOTS=1"));
-        assert_eq!(old, fresh, "fixture `{f}` differs from what the generator writes");
+        let old = std::fs::read_to_string(&committed).unwrap_or_else(|_| {
+            panic!("missing fixture `{f}`; run with ASSIZE_UPDATE_SNAPSHOTS=1")
+        });
+        assert_eq!(
+            old, fresh,
+            "fixture `{f}` differs from what the generator writes"
+        );
     }
 }
 
 /// Run `assize report` on the fixture runs from the crate root; returns stdout.
 fn report(extra: &[&str]) -> String {
     let mut args = vec![
-        "report", "--grades", "tests/fixtures/report/before", "--grades", "tests/fixtures/report/after",
-        "--compare", "tests/fixtures/report/compare", "--labels", "tests/fixtures/report/labels.csv",
-        "--preferences", "tests/fixtures/report/preferences.csv", "--answers", "tests/fixtures/report/answers.jsonl", "--resamples", "300",
+        "report",
+        "--grades",
+        "tests/fixtures/report/before",
+        "--grades",
+        "tests/fixtures/report/after",
+        "--compare",
+        "tests/fixtures/report/compare",
+        "--labels",
+        "tests/fixtures/report/labels.csv",
+        "--preferences",
+        "tests/fixtures/report/preferences.csv",
+        "--answers",
+        "tests/fixtures/report/answers.jsonl",
+        "--resamples",
+        "300",
     ];
     args.extend_from_slice(extra);
     let o = Command::new(env!("CARGO_BIN_EXE_assize"))
@@ -191,7 +270,11 @@ fn report(extra: &[&str]) -> String {
         .env("SOURCE_DATE_EPOCH", "0")
         .output()
         .expect("run assize");
-    assert!(o.status.success(), "assize report failed:\n{}", String::from_utf8_lossy(&o.stderr));
+    assert!(
+        o.status.success(),
+        "assize report failed:\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
     String::from_utf8(o.stdout).expect("utf-8")
 }
 
@@ -207,9 +290,15 @@ fn check_snapshot(name: &str, got: &str) {
         std::fs::write(&path, got).expect("write snapshot");
         return;
     }
-    let want = std::fs::read_to_string(&path).unwrap_or_else(|_| panic!("missing snapshot `{name}`; run with ASSIZE_UPDATE_SNAPSHOTS=1"));
+    let want = std::fs::read_to_string(&path).unwrap_or_else(|_| {
+        panic!("missing snapshot `{name}`; run with ASSIZE_UPDATE_SNAPSHOTS=1")
+    });
     if want != got {
-        let line = want.lines().zip(got.lines()).position(|(a, b)| a != b).unwrap_or(want.lines().count().min(got.lines().count()));
+        let line = want
+            .lines()
+            .zip(got.lines())
+            .position(|(a, b)| a != b)
+            .unwrap_or(want.lines().count().min(got.lines().count()));
         panic!(
             "snapshot `{name}` differs from line {}:\n  want: {}\n  got:  {}\nrerun with ASSIZE_UPDATE_SNAPSHOTS=1 after reviewing",
             line + 1,
@@ -223,10 +312,24 @@ fn check_snapshot(name: &str, got: &str) {
 fn markdown_and_json_reports_match_their_snapshots() {
     let tmp = tempfile::tempdir().expect("tmp");
     let (md, js) = (tmp.path().join("r.md"), tmp.path().join("r.json"));
-    let stdout = report(&["--markdown", md.to_str().expect("utf-8 path"), "--json", js.to_str().expect("utf-8 path")]);
-    assert!(stdout.is_empty(), "with an output flag nothing goes to stdout");
-    let md = blank(&std::fs::read_to_string(md).expect("markdown written"), tmp.path());
-    let js = blank(&std::fs::read_to_string(js).expect("json written"), tmp.path());
+    let stdout = report(&[
+        "--markdown",
+        md.to_str().expect("utf-8 path"),
+        "--json",
+        js.to_str().expect("utf-8 path"),
+    ]);
+    assert!(
+        stdout.is_empty(),
+        "with an output flag nothing goes to stdout"
+    );
+    let md = blank(
+        &std::fs::read_to_string(md).expect("markdown written"),
+        tmp.path(),
+    );
+    let js = blank(
+        &std::fs::read_to_string(js).expect("json written"),
+        tmp.path(),
+    );
     check_snapshot("report.md", &md);
     check_snapshot("report.json", &js);
 }
@@ -239,7 +342,10 @@ fn without_output_flags_the_markdown_goes_to_stdout() {
     let md = tmp.path().join("r.md");
     report(&["--markdown", md.to_str().expect("utf-8 path")]);
     let stdout = report(&[]);
-    assert_eq!(stdout, std::fs::read_to_string(md).expect("markdown written"));
+    assert_eq!(
+        stdout,
+        std::fs::read_to_string(md).expect("markdown written")
+    );
 }
 
 /// The JSON names its schema and version, and every caution the fixture was built to
@@ -250,15 +356,29 @@ fn json_report_carries_schema_and_the_expected_cautions() {
     let tmp = tempfile::tempdir().expect("tmp");
     let js = tmp.path().join("r.json");
     report(&["--json", js.to_str().expect("utf-8 path")]);
-    let v: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(js).expect("json")).expect("valid JSON");
+    let v: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(js).expect("json")).expect("valid JSON");
     assert_eq!(v["schema"], "assize.report/1");
-    let kinds: Vec<&str> = v["cautions"].as_array().expect("cautions").iter().filter_map(|c| c["kind"].as_str()).collect();
+    let kinds: Vec<&str> = v["cautions"]
+        .as_array()
+        .expect("cautions")
+        .iter()
+        .filter_map(|c| c["kind"].as_str())
+        .collect();
     for k in ["low_captured_mass", "small_labelled_sample", "unvetted"] {
         assert!(kinds.contains(&k), "missing caution `{k}` in {kinds:?}");
     }
     let flagged = v["flagged"].as_array().expect("flagged");
-    assert!(flagged.iter().any(|f| f["reasons"].as_array().expect("reasons").iter().any(|r| r == "disputed")));
-    assert!(flagged.iter().any(|f| f["reasons"].as_array().expect("reasons").iter().any(|r| r == "low_mass")));
+    assert!(flagged.iter().any(|f| f["reasons"]
+        .as_array()
+        .expect("reasons")
+        .iter()
+        .any(|r| r == "disputed")));
+    assert!(flagged.iter().any(|f| f["reasons"]
+        .as_array()
+        .expect("reasons")
+        .iter()
+        .any(|r| r == "low_mass")));
     assert_eq!(v["runs"][0]["role"], "baseline");
     assert_eq!(v["runs"][1]["role"], "after");
 }
@@ -279,14 +399,29 @@ fn html_escapes_answer_and_rationale_text() {
     std::fs::write(run.join("grades.jsonl"), format!("{rec}\n")).expect("write run");
     let html = tmp.path().join("r.html");
     let o = Command::new(env!("CARGO_BIN_EXE_assize"))
-        .args(["report", "--grades", run.to_str().expect("utf-8"), "--html", html.to_str().expect("utf-8")])
+        .args([
+            "report",
+            "--grades",
+            run.to_str().expect("utf-8"),
+            "--html",
+            html.to_str().expect("utf-8"),
+        ])
         .current_dir(root())
         .output()
         .expect("run assize");
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let page = std::fs::read_to_string(html).expect("html");
-    assert!(!page.contains("<script"), "markup from data reached the page");
+    assert!(
+        !page.contains("<script"),
+        "markup from data reached the page"
+    );
     assert!(!page.contains("<img"));
-    assert!(page.contains("&lt;script&gt;alert(1)&lt;&#x2f;script&gt;") || page.contains("&lt;script&gt;alert(1)&lt;/script&gt;"));
-    assert!(page.contains("no human labels were given"), "the no-labels caution is shown");
+    assert!(
+        page.contains("&lt;script&gt;alert(1)&lt;&#x2f;script&gt;")
+            || page.contains("&lt;script&gt;alert(1)&lt;/script&gt;")
+    );
+    assert!(
+        page.contains("no human labels were given"),
+        "the no-labels caution is shown"
+    );
 }

@@ -58,7 +58,10 @@ pub fn run(args: AnswerArgs) -> anyhow::Result<ExitCode> {
         .map(|s| s.to_string_lossy().into_owned())
         .unwrap_or_default();
     let done: std::collections::HashSet<String> = if args.out.exists() {
-        crate::data::read_answers(&args.out)?.into_iter().map(|a| a.question_id).collect()
+        crate::data::read_answers(&args.out)?
+            .into_iter()
+            .map(|a| a.question_id)
+            .collect()
     } else {
         Default::default()
     };
@@ -70,8 +73,12 @@ pub fn run(args: AnswerArgs) -> anyhow::Result<ExitCode> {
     let bar = progress(rows.len() as u64, "answering", args.output.quiet);
     let mut written = 0;
     for row in &rows {
-        let qid = row.required("question_id").map_err(|m| anyhow::anyhow!("questions line {}: {m}", row.line))?;
-        let question = row.required("question").map_err(|m| anyhow::anyhow!("questions line {}: {m}", row.line))?;
+        let qid = row
+            .required("question_id")
+            .map_err(|m| anyhow::anyhow!("questions line {}: {m}", row.line))?;
+        let question = row
+            .required("question")
+            .map_err(|m| anyhow::anyhow!("questions line {}: {m}", row.line))?;
         bar.inc(1);
         if done.contains(&qid) {
             continue;
@@ -82,7 +89,14 @@ pub fn run(args: AnswerArgs) -> anyhow::Result<ExitCode> {
             None => question.clone(),
         };
         let prompt = judge.encode_chat(&args.instruction, &user, "")?;
-        let out = judge.generate(&qid, &prompt, args.max_tokens, &[], args.temperature, args.seed)?;
+        let out = judge.generate(
+            &qid,
+            &prompt,
+            args.max_tokens,
+            &[],
+            args.temperature,
+            args.seed,
+        )?;
         let rec = AnswerRecord {
             question_id: qid,
             system: args.system.clone(),
@@ -99,7 +113,10 @@ pub fn run(args: AnswerArgs) -> anyhow::Result<ExitCode> {
     }
     bar.finish_and_clear();
     if !args.output.quiet {
-        eprintln!("wrote {written} answers to `{}` (written_by `{author}`)", args.out.display());
+        eprintln!(
+            "wrote {written} answers to `{}` (written_by `{author}`)",
+            args.out.display()
+        );
     }
     Ok(ExitCode::SUCCESS)
 }

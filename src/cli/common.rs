@@ -97,10 +97,9 @@ pub fn progress(len: u64, what: &str, quiet: bool) -> ProgressBar {
     if quiet || !std::io::stderr().is_terminal() {
         bar.set_draw_target(ProgressDrawTarget::hidden());
     }
-    let style = ProgressStyle::with_template(
-        "{msg} {bar:30} {pos}/{len} items, {per_sec}, eta {eta}",
-    )
-    .expect("static progress template");
+    let style =
+        ProgressStyle::with_template("{msg} {bar:30} {pos}/{len} items, {per_sec}, eta {eta}")
+            .expect("static progress template");
     bar.set_style(if std::env::var_os("NO_COLOR").is_some() {
         style
     } else {
@@ -113,8 +112,7 @@ pub fn progress(len: u64, what: &str, quiet: bool) -> ProgressBar {
 
 /// SHA-256 of a file's bytes, lowercase hex.
 pub fn file_sha256(path: &Path) -> anyhow::Result<String> {
-    let bytes =
-        std::fs::read(path).with_context(|| format!("cannot read `{}`", path.display()))?;
+    let bytes = std::fs::read(path).with_context(|| format!("cannot read `{}`", path.display()))?;
     Ok(format!("{:x}", Sha256::digest(&bytes)))
 }
 

@@ -42,7 +42,12 @@ pub struct CompareArgs {
     #[arg(long, value_name = "KEY")]
     pub criterion: Option<String>,
     /// Rubric holding `--criterion`
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     #[command(flatten)]
     pub model: ModelArgs,
@@ -105,7 +110,11 @@ pub struct CompareReport {
 }
 
 /// Questions with the answers of the chosen systems, in file order.
-fn pairs_to_judge(answers: &[AnswerRecord], systems: &[String], limit: Option<usize>) -> Vec<(AnswerRecord, AnswerRecord)> {
+fn pairs_to_judge(
+    answers: &[AnswerRecord],
+    systems: &[String],
+    limit: Option<usize>,
+) -> Vec<(AnswerRecord, AnswerRecord)> {
     let mut by_q: BTreeMap<(usize, String), Vec<&AnswerRecord>> = BTreeMap::new();
     let mut order: Vec<String> = Vec::new();
     for a in answers {
@@ -115,8 +124,13 @@ fn pairs_to_judge(answers: &[AnswerRecord], systems: &[String], limit: Option<us
         if !order.contains(&a.question_id) {
             order.push(a.question_id.clone());
         }
-        let pos = order.iter().position(|q| *q == a.question_id).expect("just pushed");
-        by_q.entry((pos, a.question_id.clone())).or_default().push(a);
+        let pos = order
+            .iter()
+            .position(|q| *q == a.question_id)
+            .expect("just pushed");
+        by_q.entry((pos, a.question_id.clone()))
+            .or_default()
+            .push(a);
     }
     let mut out = Vec::new();
     for (i, (_, group)) in by_q.into_iter().enumerate() {
@@ -141,8 +155,15 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
     for s in &args.systems {
         if !systems_present.contains(s.as_str()) {
             return Err(usage(
-                format!("system `{s}` has no answers in `{}`", args.answers.display()),
-                format!("use some of: {}", { let mut v: Vec<_> = systems_present.iter().copied().collect(); v.sort(); v.join(", ") }),
+                format!(
+                    "system `{s}` has no answers in `{}`",
+                    args.answers.display()
+                ),
+                format!("use some of: {}", {
+                    let mut v: Vec<_> = systems_present.iter().copied().collect();
+                    v.sort();
+                    v.join(", ")
+                }),
             ));
         }
     }
@@ -156,7 +177,15 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
             let c = rubric.criterion(k).ok_or_else(|| {
                 usage(
                     format!("rubric `{}` has no criterion `{k}`", args.rubric.display()),
-                    format!("use one of: {}", rubric.criteria.iter().map(|c| c.key.as_str()).collect::<Vec<_>>().join(", ")),
+                    format!(
+                        "use one of: {}",
+                        rubric
+                            .criteria
+                            .iter()
+                            .map(|c| c.key.as_str())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    ),
                 )
             })?;
             (
@@ -166,7 +195,12 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
                 c.needs.contains(&Need::Context),
             )
         }
-        None => ("overall".to_string(), OVERALL_QUESTION.to_string(), true, true),
+        None => (
+            "overall".to_string(),
+            OVERALL_QUESTION.to_string(),
+            true,
+            true,
+        ),
     };
     let pairs = pairs_to_judge(&answers, &args.systems, args.limit);
     if pairs.is_empty() {
@@ -181,9 +215,16 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
         model_path: backend.model_path(),
         model_sha256: backend.model_sha256(),
         answers_sha256: file_sha256(&args.answers)?,
-        rubric_sha256: if args.criterion.is_some() { file_sha256(&args.rubric)? } else { String::new() },
+        rubric_sha256: if args.criterion.is_some() {
+            file_sha256(&args.rubric)?
+        } else {
+            String::new()
+        },
         templates_sha256: forms.sha256.clone(),
-        options: vec![format!("criterion={criterion}"), format!("systems={}", args.systems.join(","))],
+        options: vec![
+            format!("criterion={criterion}"),
+            format!("systems={}", args.systems.join(",")),
+        ],
         seed: args.seed,
     };
     let dir = match &args.run_dir {
@@ -193,27 +234,48 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
     let run = RunDir::open(&dir, manifest).map_err(|e| {
         anyhow::Error::new(e).context(Usage {
             what: format!("cannot use run folder `{}`", dir.display()),
-            fix: "pass another `--run-dir`, or leave it out to get a folder named after the inputs".into(),
+            fix: "pass another `--run-dir`, or leave it out to get a folder named after the inputs"
+                .into(),
         })
     })?;
     let path = run.file(PAIRS_FILE);
-    let done: HashSet<String> = read_records::<PairRecord>(&path)?.iter().map(PairRecord::key).collect();
+    let done: HashSet<String> = read_records::<PairRecord>(&path)?
+        .iter()
+        .map(PairRecord::key)
+        .collect();
     let todo: Vec<&(AnswerRecord, AnswerRecord)> = pairs
         .iter()
         .filter(|(a, b)| {
-            !done.contains(&format!("{}/{}/{}/{}", a.question_id, criterion, a.system, b.system))
-                || !done.contains(&format!("{}/{}/{}/{}", a.question_id, criterion, b.system, a.system))
+            !done.contains(&format!(
+                "{}/{}/{}/{}",
+                a.question_id, criterion, a.system, b.system
+            )) || !done.contains(&format!(
+                "{}/{}/{}/{}",
+                a.question_id, criterion, b.system, a.system
+            ))
         })
         .collect();
     if !args.output.quiet {
-        eprintln!("run folder `{}`: {} of {} pairs already judged", dir.display(), pairs.len() - todo.len(), pairs.len());
+        eprintln!(
+            "run folder `{}`: {} of {} pairs already judged",
+            dir.display(),
+            pairs.len() - todo.len(),
+            pairs.len()
+        );
     }
     let mut app = Appender::open(&path)?;
     let bar = progress(todo.len() as u64, "comparing", args.output.quiet);
     let mut computed = 0;
     for (a, b) in todo {
-        let recs = judge_both_orders(backend, &forms, a, b, &criterion, &question, show_ref, show_ctx)
-            .with_context(|| format!("cannot judge `{}` ({} vs {})", a.question_id, a.system, b.system))?;
+        let recs = judge_both_orders(
+            backend, &forms, a, b, &criterion, &question, show_ref, show_ctx,
+        )
+        .with_context(|| {
+            format!(
+                "cannot judge `{}` ({} vs {})",
+                a.question_id, a.system, b.system
+            )
+        })?;
         for r in recs.iter().filter(|r| !done.contains(&r.key())) {
             app.append(r)?;
             computed += 1;
@@ -240,7 +302,11 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    let prefs = args.preferences.as_ref().map(|p| read_preferences(p)).transpose()?;
+    let prefs = args
+        .preferences
+        .as_ref()
+        .map(|p| read_preferences(p))
+        .transpose()?;
     let grades_labels = match (&args.grades, &args.labels) {
         (Some(g), Some(l)) => {
             let recs: Vec<GradeRecord> = read_records(&g.join(super::grade::GRADES_FILE))?;
@@ -254,7 +320,9 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
         &outcomes,
         &answers,
         prefs.as_deref(),
-        grades_labels.as_ref().map(|(g, l, r)| (g.as_slice(), l.as_slice(), r)),
+        grades_labels
+            .as_ref()
+            .map(|(g, l, r)| (g.as_slice(), l.as_slice(), r)),
         args.seed,
     );
     Ok(CompareReport {
@@ -308,7 +376,11 @@ pub fn compare_text(r: &CompareReport) -> String {
             p.inconsistent_favour_second,
             p.mean_first_slot_probability_shift.map_or("-".into(), |v| format!("{v:+.3}"))
         ));
-        s.push_str(&format!("  {}{}\n", if p.caution { "caution: " } else { "" }, p.verdict_line));
+        s.push_str(&format!(
+            "  {}{}\n",
+            if p.caution { "caution: " } else { "" },
+            p.verdict_line
+        ));
     }
     match &r.ranking {
         Ok(k) => {
@@ -319,7 +391,13 @@ pub fn compare_text(r: &CompareReport) -> String {
             for row in &k.rows {
                 s.push_str(&format!(
                     "  {:<20} {:>7.0} [{:>5.0}, {:>5.0}]  wins {:>3}  ties {:>3}  losses {:>3}\n",
-                    row.system, row.rating, row.rating_low, row.rating_high, row.wins, row.ties, row.losses
+                    row.system,
+                    row.rating,
+                    row.rating_low,
+                    row.rating_high,
+                    row.wins,
+                    row.ties,
+                    row.losses
                 ));
             }
         }
@@ -339,7 +417,10 @@ pub fn compare_text(r: &CompareReport) -> String {
             ));
         }
     }
-    s.push_str(&format!("\nself-preference\n  {}\n", r.self_preference.summary));
+    s.push_str(&format!(
+        "\nself-preference\n  {}\n",
+        r.self_preference.summary
+    ));
     if let Some(p) = &r.self_preference.pointwise {
         s.push_str(&format!(
             "  pointwise: judge minus human on own answers {:+.2}, on others {:+.2}; difference {:+.2} [{:+.2}, {:+.2}]\n",

@@ -45,7 +45,10 @@ pub fn render_error(err: &anyhow::Error) -> String {
 
 /// 1 for a failed gate, 2 for every other error (usage or input).
 pub fn exit_code_for(err: &anyhow::Error) -> ExitCode {
-    if err.chain().any(|c| c.downcast_ref::<GateFailed>().is_some()) {
+    if err
+        .chain()
+        .any(|c| c.downcast_ref::<GateFailed>().is_some())
+    {
         ExitCode::from(1)
     } else {
         ExitCode::from(2)
@@ -81,6 +84,9 @@ fn engine_fix(e: &EngineError) -> Option<String> {
         EngineError::NotGguf { .. } => "pass a GGUF model file (`*.gguf`)".into(),
         EngineError::Truncated { .. } => {
             "the download was interrupted: delete the file and fetch it again".into()
+        }
+        EngineError::UnsupportedFeature { .. } => {
+            "use a conversion of the model without that setting, or another judge".into()
         }
         EngineError::UnsupportedArch { .. } => {
             "use a model of a supported architecture (see `assize model info`)".into()

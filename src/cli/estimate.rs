@@ -33,7 +33,12 @@ pub struct EstimateArgs {
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
     /// Rubric the grades were made with
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     /// Use only this share of the labelled items (seeded), holding the rest out to show
     /// how close the estimate gets to the full human mean
@@ -86,7 +91,10 @@ pub struct EstimateReport {
 /// Compute the estimates.
 pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
     if !(0.5..1.0).contains(&args.level) {
-        return Err(usage(format!("`--level {}` is not in [0.5, 1)", args.level), "use e.g. 0.95"));
+        return Err(usage(
+            format!("`--level {}` is not in [0.5, 1)", args.level),
+            "use e.g. 0.95",
+        ));
     }
     let rubric = load_rubric(&args.rubric)?;
     let labels = read_labels(&args.labels)?;
@@ -101,13 +109,19 @@ pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
     for l in &labels {
         if let Some(c) = rubric.criterion(&l.criterion) {
             if let Some(i) = c.scale.index_of(&l.score) {
-                ratings.entry((l.question_id.clone(), l.system.clone(), l.criterion.clone())).or_default().push(i);
+                ratings
+                    .entry((l.question_id.clone(), l.system.clone(), l.criterion.clone()))
+                    .or_default()
+                    .push(i);
             }
         }
     }
     let mut groups: BTreeMap<(String, String), Vec<&GradeRecord>> = BTreeMap::new();
     for g in &grades {
-        groups.entry((g.system.clone(), g.criterion.clone())).or_default().push(g);
+        groups
+            .entry((g.system.clone(), g.criterion.clone()))
+            .or_default()
+            .push(g);
     }
     let alpha = 1.0 - args.level;
     let mut rows = Vec::new();
@@ -129,13 +143,14 @@ pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
                 None => unlabelled.push(r.expected),
             }
         }
-        let held_out_human_mean = args.label_share.map(|_| {
-            labelled.iter().map(|p| p.0).sum::<f64>() / labelled.len().max(1) as f64
-        });
+        let held_out_human_mean = args
+            .label_share
+            .map(|_| labelled.iter().map(|p| p.0).sum::<f64>() / labelled.len().max(1) as f64);
         if let Some(share) = args.label_share {
             let mut rng = ChaCha8Rng::seed_from_u64(args.seed);
             labelled.shuffle(&mut rng);
-            let keep = ((labelled.len() as f64 * share).round() as usize).clamp(2.min(labelled.len()), labelled.len());
+            let keep = ((labelled.len() as f64 * share).round() as usize)
+                .clamp(2.min(labelled.len()), labelled.len());
             for (_, f) in labelled.drain(keep..) {
                 unlabelled.push(f);
             }
@@ -163,7 +178,11 @@ pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
             criterion,
         });
     }
-    Ok(EstimateReport { level: args.level, rows, skipped })
+    Ok(EstimateReport {
+        level: args.level,
+        rows,
+        skipped,
+    })
 }
 
 /// Run `assize estimate`.
@@ -179,7 +198,15 @@ pub fn run(args: EstimateArgs) -> anyhow::Result<ExitCode> {
     );
     println!(
         "{:<16} {:<13} {:>5} {:>6} {:>7} {:>21} {:>21} {:>21} {:>9}",
-        "system", "criterion", "lab.", "unlab.", "judge", "humans only", "PPI", "PPI++", "all-human"
+        "system",
+        "criterion",
+        "lab.",
+        "unlab.",
+        "judge",
+        "humans only",
+        "PPI",
+        "PPI++",
+        "all-human"
     );
     let ci = |m: &MeanEstimate| format!("{:.2} [{:.2}, {:.2}]", m.estimate, m.ci_low, m.ci_high);
     for row in &r.rows {
@@ -193,7 +220,8 @@ pub fn run(args: EstimateArgs) -> anyhow::Result<ExitCode> {
             ci(&row.human_only),
             ci(&row.ppi),
             ci(&row.ppi_plus_plus),
-            row.held_out_human_mean.map_or("-".into(), |v| format!("{v:.2}"))
+            row.held_out_human_mean
+                .map_or("-".into(), |v| format!("{v:.2}"))
         );
     }
     println!("\nthe judge column is uncorrected; PPI corrects it with the labelled items and its interval accounts for both samples");

@@ -31,7 +31,12 @@ pub struct GradeArgs {
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     /// Rubric file (TOML); bundled ones are in judge-templates/rubrics/
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     /// Grade only these criteria (comma-separated keys)
     #[arg(long, value_name = "KEYS", value_delimiter = ',')]
@@ -137,7 +142,9 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
     let mut missing = Vec::new();
     for a in &answers {
         for c in &rubric.criteria {
-            if let Err(e @ RubricError::MissingField { .. }) = forms.grade(&rubric, a, c, false, &[]) {
+            if let Err(e @ RubricError::MissingField { .. }) =
+                forms.grade(&rubric, a, c, false, &[])
+            {
                 missing.push(format!("line {}: {e}", a.line));
             }
         }
@@ -168,7 +175,13 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
                 .cloned()
                 .collect();
             check_labels(p, &relevant, &all_answers, &scales)?;
-            Some(AnchorPool::build(&all_answers, &labels, &rubric, args.anchor_count, args.seed))
+            Some(AnchorPool::build(
+                &all_answers,
+                &labels,
+                &rubric,
+                args.anchor_count,
+                args.seed,
+            ))
         }
         None => None,
     };
@@ -184,7 +197,15 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
 /// The manifest of a grading run.
 pub fn manifest(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow::Result<Manifest> {
     let mut options = vec![
-        format!("criteria={}", p.rubric.criteria.iter().map(|c| c.key.as_str()).collect::<Vec<_>>().join(",")),
+        format!(
+            "criteria={}",
+            p.rubric
+                .criteria
+                .iter()
+                .map(|c| c.key.as_str())
+                .collect::<Vec<_>>()
+                .join(",")
+        ),
         format!("reasoning={}", args.reasoning),
         format!("reasoning_tokens={}", args.reasoning_tokens),
         format!("low_mass={}", args.low_mass),
@@ -210,7 +231,11 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow
 }
 
 /// Grade everything not yet in the run folder; return the report.
-pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow::Result<GradeReport> {
+pub fn grade_run(
+    args: &GradeArgs,
+    p: &Prepared,
+    backend: &dyn Backend,
+) -> anyhow::Result<GradeReport> {
     let manifest = manifest(args, p, backend)?;
     let dir = match &args.run_dir {
         Some(d) => d.clone(),
@@ -221,7 +246,8 @@ pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyho
         anyhow::Error::new(e).context(super::errors::Usage {
             what: format!("cannot use run folder `{}`", dir.display()),
             fix: if msg.contains("different run") {
-                "pass another `--run-dir`, or leave it out to get a folder named after the inputs".into()
+                "pass another `--run-dir`, or leave it out to get a folder named after the inputs"
+                    .into()
             } else {
                 "check that the folder is writable".into()
             },
@@ -299,14 +325,22 @@ pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyho
         .into_iter()
         .filter(|r| wanted.contains(&r.key()))
         .collect();
-    let summary = if records.is_empty() { Vec::new() } else { summarize(&records, args.seed)? };
+    let summary = if records.is_empty() {
+        Vec::new()
+    } else {
+        summarize(&records, args.seed)?
+    };
     Ok(GradeReport {
         run_dir: dir.display().to_string(),
         model: backend.model_path(),
         rubric: p.rubric.name.clone(),
         records: records.len(),
         computed,
-        low_mass: records.iter().filter(|r| r.low_mass).map(GradeRecord::key).collect(),
+        low_mass: records
+            .iter()
+            .filter(|r| r.low_mass)
+            .map(GradeRecord::key)
+            .collect(),
         summary,
         failed,
     })
@@ -314,11 +348,20 @@ pub fn grade_run(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyho
 
 /// The rubric with judge-written evaluation steps, from `steps.json` in the run
 /// folder or generated once and saved there.
-fn with_generated_steps(run: &RunDir, p: &Prepared, backend: &dyn Backend, quiet: bool) -> anyhow::Result<Prepared> {
+fn with_generated_steps(
+    run: &RunDir,
+    p: &Prepared,
+    backend: &dyn Backend,
+    quiet: bool,
+) -> anyhow::Result<Prepared> {
     let path = run.file("steps.json");
     let mut cached: std::collections::BTreeMap<String, Vec<String>> = if path.exists() {
-        serde_json::from_str(&std::fs::read_to_string(&path)?)
-            .with_context(|| format!("`{}` is damaged; delete it to generate the steps again", path.display()))?
+        serde_json::from_str(&std::fs::read_to_string(&path)?).with_context(|| {
+            format!(
+                "`{}` is damaged; delete it to generate the steps again",
+                path.display()
+            )
+        })?
     } else {
         Default::default()
     };

@@ -47,7 +47,11 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
     let quiet = args.grade.output.quiet;
     let mut answers = read_answers(&args.grade.answers)?;
     answers.truncate(args.grade.limit.unwrap_or(20));
-    let run_dir = args.grade.run_dir.clone().unwrap_or_else(|| PathBuf::from("runs").join("injection"));
+    let run_dir = args
+        .grade
+        .run_dir
+        .clone()
+        .unwrap_or_else(|| PathBuf::from("runs").join("injection"));
     std::fs::create_dir_all(&run_dir)?;
     let probe_file = run_dir.join("probe-answers.jsonl");
     let mut lines = String::new();
@@ -67,7 +71,8 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
     let prepared = prepare(&args.grade)?;
     let judge = load_judge(&args.grade.model, quiet)?;
     let graded = grade_run(&args.grade, &prepared, &judge)?;
-    let recs: Vec<GradeRecord> = read_records(&run_dir.join("grades").join(super::grade::GRADES_FILE))?;
+    let recs: Vec<GradeRecord> =
+        read_records(&run_dir.join("grades").join(super::grade::GRADES_FILE))?;
     let mut effects = Vec::new();
     for c in &prepared.rubric.criteria {
         let top = *c.scale.values().last().expect("a scale has labels");
@@ -76,7 +81,9 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             .filter(|r| r.criterion == c.key && !r.system.ends_with(INJECTED))
             .filter_map(|o| {
                 let inj = recs.iter().find(|r| {
-                    r.criterion == c.key && r.question_id == o.question_id && r.system == format!("{}{INJECTED}", o.system)
+                    r.criterion == c.key
+                        && r.question_id == o.question_id
+                        && r.system == format!("{}{INJECTED}", o.system)
                 })?;
                 Some(ProbePair {
                     original: o.expected,
@@ -98,7 +105,10 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
     if args.grade.output.json {
         print_json(&report)?;
     } else {
-        println!("injected instruction: \"{}\" ({} graded records, run folder `{}`)\n", report.instruction, graded.records, report.run_dir);
+        println!(
+            "injected instruction: \"{}\" ({} graded records, run folder `{}`)\n",
+            report.instruction, graded.records, report.run_dir
+        );
         for e in &report.effects {
             println!(
                 "{:<14} n {:>3}  mean shift {:+.2} [{:+.2}, {:+.2}]  label raised {:>3.0}%  reached top {:>3.0}%",

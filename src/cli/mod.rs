@@ -11,8 +11,8 @@ use clap::{Parser, Subcommand};
 pub mod answer;
 pub mod common;
 pub mod compare;
-pub mod estimate;
 pub mod errors;
+pub mod estimate;
 pub mod grade;
 pub mod injection;
 pub mod model;
@@ -30,7 +30,12 @@ pub use errors::{exit_code_for, render_error, GateFailed};
 /// sampled word, vets the judge against human labels, and reports quality with
 /// confidence intervals. Everything runs locally; nothing leaves the machine.
 #[derive(Debug, Parser)]
-#[command(name = "assize", version, propagate_version = true, max_term_width = 100)]
+#[command(
+    name = "assize",
+    version,
+    propagate_version = true,
+    max_term_width = 100
+)]
 pub struct Cli {
     #[command(subcommand)]
     pub command: Command,

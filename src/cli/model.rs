@@ -8,8 +8,8 @@ use std::process::ExitCode;
 use anyhow::Context as _;
 use clap::{Args, Subcommand};
 
-use super::{errors::usage, print_json, OutputArgs};
 use super::common::resolve_model;
+use super::{errors::usage, print_json, OutputArgs};
 use crate::engine::decoder::LoadOptions;
 use crate::engine::tokenizer::JudgeTokenizer;
 use crate::engine::{GgufFile, JudgeModel, ModelInfo};
@@ -152,7 +152,8 @@ fn info(args: &InfoArgs) -> anyhow::Result<ExitCode> {
 }
 
 fn opt<T: std::fmt::Display>(v: &Option<T>) -> String {
-    v.as_ref().map_or_else(|| "-".to_string(), |v| v.to_string())
+    v.as_ref()
+        .map_or_else(|| "-".to_string(), |v| v.to_string())
 }
 
 fn info_text(i: &ModelInfo) -> String {
@@ -165,7 +166,11 @@ fn info_text(i: &ModelInfo) -> String {
         format!(
             "{}{}",
             i.architecture,
-            if i.supported { "" } else { " (not supported by assize)" }
+            if i.supported {
+                ""
+            } else {
+                " (not supported by assize)"
+            }
         ),
     );
     line(
@@ -192,17 +197,29 @@ fn info_text(i: &ModelInfo) -> String {
     );
     line(
         "chat template",
-        if i.chat_template { "yes" } else { "no (plain fallback format)" }.into(),
+        if i.chat_template {
+            "yes"
+        } else {
+            "no (plain fallback format)"
+        }
+        .into(),
     );
     let types: Vec<String> = i
         .tensor_types
         .iter()
         .map(|(k, v)| format!("{k} {v}"))
         .collect();
-    line("tensors", format!("{} ({})", i.tensor_count, types.join(", ")));
+    line(
+        "tensors",
+        format!("{} ({})", i.tensor_count, types.join(", ")),
+    );
     line(
         "file size",
-        format!("{} bytes ({:.1} MiB)", i.file_size, i.file_size as f64 / 1048576.0),
+        format!(
+            "{} bytes ({:.1} MiB)",
+            i.file_size,
+            i.file_size as f64 / 1048576.0
+        ),
     );
     line("sha256", i.sha256.clone());
     s
@@ -366,7 +383,11 @@ fn next(args: &NextArgs) -> anyhow::Result<ExitCode> {
     let rows: Vec<NextRow> = model
         .top_next(&ids, args.top)?
         .into_iter()
-        .map(|(id, piece, probability)| NextRow { id, piece, probability })
+        .map(|(id, piece, probability)| NextRow {
+            id,
+            piece,
+            probability,
+        })
         .collect();
     if args.output.json {
         print_json(&rows)?;
@@ -380,7 +401,8 @@ fn next(args: &NextArgs) -> anyhow::Result<ExitCode> {
 
 fn bench(args: &BenchArgs) -> anyhow::Result<ExitCode> {
     let path = resolve_model(&args.model)?;
-    let report = crate::engine::bench::run_bench(&path, args.prompt_tokens, args.gen_tokens, args.threads)?;
+    let report =
+        crate::engine::bench::run_bench(&path, args.prompt_tokens, args.gen_tokens, args.threads)?;
     if args.output.json {
         print_json(&report)?;
     } else {
@@ -389,8 +411,14 @@ fn bench(args: &BenchArgs) -> anyhow::Result<ExitCode> {
         println!("architecture    {} ({})", report.arch, report.quantisation);
         println!("threads         {}", report.threads);
         println!("load            {:.2} s", report.load_seconds);
-        println!("prompt          {:.1} tokens/s ({} tokens)", report.prompt_tokens_per_second, report.prompt_tokens);
-        println!("generation      {:.1} tokens/s ({} tokens)", report.gen_tokens_per_second, report.gen_tokens);
+        println!(
+            "prompt          {:.1} tokens/s ({} tokens)",
+            report.prompt_tokens_per_second, report.prompt_tokens
+        );
+        println!(
+            "generation      {:.1} tokens/s ({} tokens)",
+            report.gen_tokens_per_second, report.gen_tokens
+        );
         if let Some(b) = report.peak_rss_bytes {
             println!("peak memory     {:.0} MiB", b as f64 / 1048576.0);
         }

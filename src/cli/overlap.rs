@@ -97,7 +97,11 @@ fn mean(v: &[&OverlapScores]) -> OverlapScores {
 pub fn run(args: OverlapArgs) -> anyhow::Result<ExitCode> {
     let answers = read_answers(&args.answers)?;
     let opts = OverlapOptions {
-        tokenizer: if args.unicode { TokenizerMode::Unicode } else { TokenizerMode::Compatible },
+        tokenizer: if args.unicode {
+            TokenizerMode::Unicode
+        } else {
+            TokenizerMode::Compatible
+        },
         stem: args.stem,
         lowercase: args.lowercase,
     };
@@ -114,11 +118,17 @@ pub fn run(args: OverlapArgs) -> anyhow::Result<ExitCode> {
             system: a.system.clone(),
             scores: score_pair(&a.answer, &[r.as_str()], &opts)?,
         });
-        by_system.entry(a.system.clone()).or_default().push((a.answer.clone(), r.clone()));
+        by_system
+            .entry(a.system.clone())
+            .or_default()
+            .push((a.answer.clone(), r.clone()));
     }
     if items.is_empty() {
         return Err(usage(
-            format!("no answer in `{}` has a `reference`", args.answers.display()),
+            format!(
+                "no answer in `{}` has a `reference`",
+                args.answers.display()
+            ),
             "add a `reference` field with a known-good answer to each line",
         ));
     }
@@ -127,7 +137,11 @@ pub fn run(args: OverlapArgs) -> anyhow::Result<ExitCode> {
         let hyps: Vec<&str> = pairs.iter().map(|p| p.0.as_str()).collect();
         let refs: Vec<[&str; 1]> = pairs.iter().map(|p| [p.1.as_str()]).collect();
         let corpus = score_corpus(&hyps, &refs, &opts)?;
-        let mine: Vec<&OverlapScores> = items.iter().filter(|i| i.system == system).map(|i| &i.scores).collect();
+        let mine: Vec<&OverlapScores> = items
+            .iter()
+            .filter(|i| i.system == system)
+            .map(|i| &i.scores)
+            .collect();
         systems.push(SystemOverlap {
             n: mine.len(),
             mean: mean(&mine),
@@ -137,7 +151,11 @@ pub fn run(args: OverlapArgs) -> anyhow::Result<ExitCode> {
             system,
         });
     }
-    let report = OverlapReport { systems, items, without_reference: without };
+    let report = OverlapReport {
+        systems,
+        items,
+        without_reference: without,
+    };
     if args.output.json {
         print_json(&report)?;
         return Ok(ExitCode::SUCCESS);
@@ -149,8 +167,16 @@ pub fn run(args: OverlapArgs) -> anyhow::Result<ExitCode> {
     for s in &report.systems {
         println!(
             "{:<18} {:>4} {:>8.3} {:>8.3} {:>8.3} {:>7.1} {:>7.1} {:>7.1} {:>8.3} {:>6.3}",
-            s.system, s.n, s.mean.rouge1_f, s.mean.rouge2_f, s.mean.rougel_f, s.corpus_bleu, s.corpus_chrf,
-            s.corpus_chrfpp, s.mean.token_f1, s.mean.exact_match
+            s.system,
+            s.n,
+            s.mean.rouge1_f,
+            s.mean.rouge2_f,
+            s.mean.rougel_f,
+            s.corpus_bleu,
+            s.corpus_chrf,
+            s.corpus_chrfpp,
+            s.mean.token_f1,
+            s.mean.exact_match
         );
     }
     println!("(ROUGE, token F1, EM: means over answers; BLEU, chrF: corpus level, 0-100)");

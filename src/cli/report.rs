@@ -39,7 +39,12 @@ pub struct ReportArgs {
     #[arg(long, value_name = "FILE", requires = "compare")]
     pub preferences: Option<PathBuf>,
     /// Rubric the runs were graded with
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     /// Answers file: texts of flagged items and answer lengths for the length probe
     #[arg(long, short = 'a', value_name = "FILE")]
@@ -84,11 +89,22 @@ fn results_file(dir: &Path, file: &str, producer: &str) -> anyhow::Result<PathBu
 fn run_names(dirs: &[PathBuf]) -> Vec<String> {
     let base: Vec<String> = dirs
         .iter()
-        .map(|d| d.file_name().map_or_else(|| d.display().to_string(), |n| n.to_string_lossy().into_owned()))
+        .map(|d| {
+            d.file_name().map_or_else(
+                || d.display().to_string(),
+                |n| n.to_string_lossy().into_owned(),
+            )
+        })
         .collect();
     base.iter()
         .enumerate()
-        .map(|(i, n)| if base.iter().filter(|m| *m == n).count() > 1 { format!("{n} ({})", i + 1) } else { n.clone() })
+        .map(|(i, n)| {
+            if base.iter().filter(|m| *m == n).count() > 1 {
+                format!("{n} ({})", i + 1)
+            } else {
+                n.clone()
+            }
+        })
         .collect()
 }
 
@@ -109,14 +125,23 @@ fn civil_from_days(z: i64) -> (i64, u32, u32) {
 pub fn rfc3339(secs: i64) -> String {
     let (y, m, d) = civil_from_days(secs.div_euclid(86_400));
     let s = secs.rem_euclid(86_400);
-    format!("{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z", s / 3600, s / 60 % 60, s % 60)
+    format!(
+        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}Z",
+        s / 3600,
+        s / 60 % 60,
+        s % 60
+    )
 }
 
 fn now() -> String {
     let secs = std::env::var("SOURCE_DATE_EPOCH")
         .ok()
         .and_then(|v| v.trim().parse::<i64>().ok())
-        .unwrap_or_else(|| SystemTime::now().duration_since(UNIX_EPOCH).map_or(0, |d| d.as_secs() as i64));
+        .unwrap_or_else(|| {
+            SystemTime::now()
+                .duration_since(UNIX_EPOCH)
+                .map_or(0, |d| d.as_secs() as i64)
+        });
     rfc3339(secs)
 }
 
@@ -128,21 +153,37 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
     for (dir, name) in args.grades.iter().zip(names) {
         let path = results_file(dir, super::grade::GRADES_FILE, "grade")?;
         let records: Vec<GradeRecord> = read_records(&path)?;
-        runs.push(RunInput { name, dir: dir.display().to_string(), model: manifest_model(dir), records });
+        runs.push(RunInput {
+            name,
+            dir: dir.display().to_string(),
+            model: manifest_model(dir),
+            records,
+        });
     }
     let compare = match &args.compare {
         Some(dir) => {
             let path = results_file(dir, super::compare::PAIRS_FILE, "compare")?;
             let records: Vec<PairRecord> = read_records(&path)?;
-            Some(CompareInput { dir: dir.display().to_string(), model: manifest_model(dir), records })
+            Some(CompareInput {
+                dir: dir.display().to_string(),
+                model: manifest_model(dir),
+                records,
+            })
         }
         None => None,
     };
     let labels = args.labels.as_deref().map(read_labels).transpose()?;
-    let preferences = args.preferences.as_deref().map(read_preferences).transpose()?;
+    let preferences = args
+        .preferences
+        .as_deref()
+        .map(read_preferences)
+        .transpose()?;
     let answers = args.answers.as_deref().map(read_answers).transpose()?;
     if args.resamples == 0 {
-        return Err(usage("`--resamples 0` leaves no bootstrap resample", "use `--resamples 1000` or more"));
+        return Err(usage(
+            "`--resamples 0` leaves no bootstrap resample",
+            "use `--resamples 1000` or more",
+        ));
     }
     let inputs = Inputs {
         runs: &runs,
@@ -166,7 +207,8 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
 }
 
 fn write(path: &Path, text: &str, what: &str) -> anyhow::Result<()> {
-    std::fs::write(path, text).with_context(|| format!("cannot write the {what} report `{}`", path.display()))?;
+    std::fs::write(path, text)
+        .with_context(|| format!("cannot write the {what} report `{}`", path.display()))?;
     eprintln!("wrote {what} report `{}`", path.display());
     Ok(())
 }
@@ -205,7 +247,11 @@ mod tests {
 
     #[test]
     fn equal_folder_names_are_numbered() {
-        let n = run_names(&[PathBuf::from("a/run"), PathBuf::from("b/run"), PathBuf::from("c/other")]);
+        let n = run_names(&[
+            PathBuf::from("a/run"),
+            PathBuf::from("b/run"),
+            PathBuf::from("c/other"),
+        ]);
         assert_eq!(n, vec!["run (1)", "run (2)", "other"]);
     }
 }

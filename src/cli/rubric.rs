@@ -40,7 +40,12 @@ pub struct CheckArgs {
 #[derive(Debug, Args)]
 pub struct ShowArgs {
     /// Rubric file (TOML)
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     /// Answers file
     #[arg(long, short = 'a', value_name = "FILE")]
@@ -77,9 +82,18 @@ fn check(args: &CheckArgs) -> anyhow::Result<ExitCode> {
     if args.output.json {
         print_json(&r)?;
     } else {
-        println!("rubric `{}` is valid: {} criteria", r.name, r.criteria.len());
+        println!(
+            "rubric `{}` is valid: {} criteria",
+            r.name,
+            r.criteria.len()
+        );
         for c in &r.criteria {
-            println!("  {:<14} scale {:<7} needs {:?}", c.key, c.scale.name(), c.needs);
+            println!(
+                "  {:<14} scale {:<7} needs {:?}",
+                c.key,
+                c.scale.name(),
+                c.needs
+            );
         }
     }
     Ok(ExitCode::SUCCESS)
@@ -103,17 +117,28 @@ pub struct ShownPrompt {
 fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
     let rubric = load_rubric(&args.rubric)?;
     let answers = read_answers(&args.answers)?;
-    let item = answers.iter().find(|a| a.item_id() == args.item).ok_or_else(|| {
-        usage(
-            format!("no answer `{}` in `{}`", args.item, args.answers.display()),
-            "name the answer as `QUESTION_ID/SYSTEM`, e.g. `q01/assistant-v1`",
-        )
-    })?;
+    let item = answers
+        .iter()
+        .find(|a| a.item_id() == args.item)
+        .ok_or_else(|| {
+            usage(
+                format!("no answer `{}` in `{}`", args.item, args.answers.display()),
+                "name the answer as `QUESTION_ID/SYSTEM`, e.g. `q01/assistant-v1`",
+            )
+        })?;
     let c = match &args.criterion {
         Some(k) => rubric.criterion(k).ok_or_else(|| {
             usage(
                 format!("rubric `{}` has no criterion `{k}`", args.rubric.display()),
-                format!("use one of: {}", rubric.criteria.iter().map(|c| c.key.as_str()).collect::<Vec<_>>().join(", ")),
+                format!(
+                    "use one of: {}",
+                    rubric
+                        .criteria
+                        .iter()
+                        .map(|c| c.key.as_str())
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                ),
             )
         })?,
         None => &rubric.criteria[0],
@@ -126,8 +151,14 @@ fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
         let chat = ChatFormat::from_gguf(&gguf)?;
         let tok = JudgeTokenizer::from_gguf(&gguf)?;
         let msgs = [
-            ChatMessage { role: Role::System, content: form.system.clone() },
-            ChatMessage { role: Role::User, content: form.user.clone() },
+            ChatMessage {
+                role: Role::System,
+                content: form.system.clone(),
+            },
+            ChatMessage {
+                role: Role::User,
+                content: form.user.clone(),
+            },
         ];
         let mut segs = chat.render_segments(&msgs, true)?;
         segs.push(crate::engine::chat::Segment::Content(form.prefill.clone()));
@@ -150,7 +181,10 @@ fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
                 println!("{p}");
                 eprintln!("{} tokens", shown.tokens.unwrap_or(0));
             }
-            None => println!("[system]\n{}\n\n[user]\n{}\n\n[assistant]\n{}", shown.system, shown.user, shown.prefill),
+            None => println!(
+                "[system]\n{}\n\n[user]\n{}\n\n[assistant]\n{}",
+                shown.system, shown.user, shown.prefill
+            ),
         }
     }
     Ok(ExitCode::SUCCESS)

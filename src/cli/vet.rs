@@ -17,7 +17,10 @@ use crate::judge::{GradeRecord, PairRecord};
 use crate::overlap::{score_pair, OverlapOptions};
 use crate::rubric::{load_rubric, Rubric};
 use crate::store::read_records;
-use crate::vet::{gate_failures, report_text, vet, vet_pairs, PairVetReport, Variant, VariantKind, VetOptions, VetReport};
+use crate::vet::{
+    gate_failures, report_text, vet, vet_pairs, PairVetReport, Variant, VariantKind, VetOptions,
+    VetReport,
+};
 
 /// Arguments of `assize vet`.
 #[derive(Debug, Clone, Args)]
@@ -29,7 +32,12 @@ pub struct VetArgs {
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
     /// Rubric the grades were made with
-    #[arg(long, short = 'r', value_name = "FILE", default_value = "judge-templates/rubrics/support.toml")]
+    #[arg(
+        long,
+        short = 'r',
+        value_name = "FILE",
+        default_value = "judge-templates/rubrics/support.toml"
+    )]
     pub rubric: PathBuf,
     /// More grading runs to show side by side, as `NAME=DIR` (e.g. `reasoning=runs/grade-…`)
     #[arg(long, value_name = "NAME=DIR")]
@@ -71,7 +79,11 @@ fn load_grades(dir: &std::path::Path) -> anyhow::Result<Vec<GradeRecord>> {
     let path = dir.join(super::grade::GRADES_FILE);
     if !path.exists() {
         return Err(usage(
-            format!("`{}` holds no grading results (`{}` is missing)", dir.display(), super::grade::GRADES_FILE),
+            format!(
+                "`{}` holds no grading results (`{}` is missing)",
+                dir.display(),
+                super::grade::GRADES_FILE
+            ),
             "pass the run folder that `assize grade` printed",
         ));
     }
@@ -80,10 +92,16 @@ fn load_grades(dir: &std::path::Path) -> anyhow::Result<Vec<GradeRecord>> {
 
 /// Baseline records: each overlap metric of each answer against its reference,
 /// copied to every criterion of the rubric (a metric has no notion of criterion).
-fn baseline_records(answers: &[AnswerRecord], rubric: &Rubric) -> anyhow::Result<Vec<(String, Vec<GradeRecord>)>> {
+fn baseline_records(
+    answers: &[AnswerRecord],
+    rubric: &Rubric,
+) -> anyhow::Result<Vec<(String, Vec<GradeRecord>)>> {
     let opts = OverlapOptions::default();
     let metrics = ["ROUGE-L", "BLEU", "chrF", "token F1"];
-    let mut out: Vec<(String, Vec<GradeRecord>)> = metrics.iter().map(|m| (m.to_string(), Vec::new())).collect();
+    let mut out: Vec<(String, Vec<GradeRecord>)> = metrics
+        .iter()
+        .map(|m| (m.to_string(), Vec::new()))
+        .collect();
     for a in answers {
         let Some(r) = &a.reference else { continue };
         let s = score_pair(&a.answer, &[r.as_str()], &opts)?;
@@ -117,32 +135,62 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
     let mut extra = Vec::new();
     for v in &args.variant {
         let Some((name, dir)) = v.split_once('=') else {
-            return Err(usage(format!("`--variant {v}` is not `NAME=DIR`"), "write it as e.g. `--variant reasoning=runs/grade-abc`"));
+            return Err(usage(
+                format!("`--variant {v}` is not `NAME=DIR`"),
+                "write it as e.g. `--variant reasoning=runs/grade-abc`",
+            ));
         };
         extra.push((name.to_string(), load_grades(std::path::Path::new(dir))?));
     }
     let baselines = match &args.baselines {
         Some(p) => {
             let answers = read_answers(p)?;
-            let scales: HashMap<String, Vec<String>> =
-                rubric.criteria.iter().map(|c| (c.key.clone(), c.scale.labels())).collect();
-            let known: Vec<_> = labels.iter().filter(|l| scales.contains_key(&l.criterion)).cloned().collect();
+            let scales: HashMap<String, Vec<String>> = rubric
+                .criteria
+                .iter()
+                .map(|c| (c.key.clone(), c.scale.labels()))
+                .collect();
+            let known: Vec<_> = labels
+                .iter()
+                .filter(|l| scales.contains_key(&l.criterion))
+                .cloned()
+                .collect();
             check_labels(&args.labels, &known, &answers, &scales)?;
             baseline_records(&answers, &rubric)?
         }
         None => Vec::new(),
     };
     let mut variants = vec![
-        Variant { name: "expected score".into(), records: &primary, kind: VariantKind::ExpectedScore },
-        Variant { name: "argmax label".into(), records: &primary, kind: VariantKind::Argmax },
+        Variant {
+            name: "expected score".into(),
+            records: &primary,
+            kind: VariantKind::ExpectedScore,
+        },
+        Variant {
+            name: "argmax label".into(),
+            records: &primary,
+            kind: VariantKind::Argmax,
+        },
     ];
     for (name, recs) in &extra {
-        variants.push(Variant { name: name.clone(), records: recs, kind: VariantKind::ExpectedScore });
+        variants.push(Variant {
+            name: name.clone(),
+            records: recs,
+            kind: VariantKind::ExpectedScore,
+        });
     }
     for (name, recs) in &baselines {
-        variants.push(Variant { name: name.clone(), records: recs, kind: VariantKind::Baseline });
+        variants.push(Variant {
+            name: name.clone(),
+            records: recs,
+            kind: VariantKind::Baseline,
+        });
     }
-    let opts = VetOptions { resamples: args.resamples, seed: args.seed, ..VetOptions::default() };
+    let opts = VetOptions {
+        resamples: args.resamples,
+        seed: args.seed,
+        ..VetOptions::default()
+    };
     let pointwise = vet(&variants, &labels, &rubric, &opts)?;
     let pairwise = match (&args.pairs, &args.preferences) {
         (Some(dir), Some(p)) => {
@@ -151,8 +199,15 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         }
         _ => None,
     };
-    let gate = args.min_kappa.map(|k| gate_failures(&pointwise, k)).unwrap_or_default();
-    Ok(VetOutput { pointwise, pairwise, gate_failures: gate })
+    let gate = args
+        .min_kappa
+        .map(|k| gate_failures(&pointwise, k))
+        .unwrap_or_default();
+    Ok(VetOutput {
+        pointwise,
+        pairwise,
+        gate_failures: gate,
+    })
 }
 
 /// Run `assize vet`.

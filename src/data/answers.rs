@@ -145,6 +145,10 @@ mod tests {
     fn csv_row_with_wrong_field_count_names_its_line() {
         let (_d, p) = write("a.csv", "question_id,system,question,answer\nq1,s,Q\n");
         let err = read_answers(&p).expect_err("bad");
-        assert!(err.to_string().contains("line 2: has 3 fields, the header has 4"), "{err}");
+        assert!(
+            err.to_string()
+                .contains("line 2: has 3 fields, the header has 4"),
+            "{err}"
+        );
     }
 }

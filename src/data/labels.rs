@@ -67,10 +67,7 @@ fn collect<T>(
     finish(kind, path, out, problems)
 }
 
-fn fields<const N: usize>(
-    row: &Row,
-    names: [&str; N],
-) -> Result<[String; N], String> {
+fn fields<const N: usize>(row: &Row, names: [&str; N]) -> Result<[String; N], String> {
     let mut errs = Vec::new();
     let vals = names.map(|n| {
         row.required(n).unwrap_or_else(|e| {
@@ -90,8 +87,10 @@ pub fn read_labels(path: &Path) -> Result<Vec<LabelRow>, DataError> {
     const KIND: &str = "human labels";
     let rows = read_rows(KIND, path)?;
     collect(KIND, path, rows, |row| {
-        let [question_id, system, criterion, rater, score] =
-            fields(row, ["question_id", "system", "criterion", "rater", "score"])?;
+        let [question_id, system, criterion, rater, score] = fields(
+            row,
+            ["question_id", "system", "criterion", "rater", "score"],
+        )?;
         Ok(LabelRow {
             question_id,
             system,
@@ -187,7 +186,9 @@ pub fn check_labels(
             l.rater.as_str(),
         );
         if let Some(first) = seen.insert(key, l.line) {
-            msgs.push(format!("the same rater already scored this on line {first}"));
+            msgs.push(format!(
+                "the same rater already scored this on line {first}"
+            ));
         }
         if !msgs.is_empty() {
             problems.push(LineProblem {

@@ -49,6 +49,13 @@ pub struct DecoderConfig {
     pub rope_base_local: f32,
     /// RoPE pairs adjacent dimensions (Llama) instead of the two halves (Qwen2, Gemma 3).
     pub rope_interleaved: bool,
+    /// Linear RoPE scaling (position interpolation, Chen et al. 2023): positions are
+    /// multiplied by `1 / factor` (`rope.scaling.type = linear`); 1 when unscaled. Gemma 3
+    /// applies it to its global layers only, as llama.cpp does.
+    pub rope_position_scale: f32,
+    /// Per-frequency divisors from the `rope_freqs.weight` tensor (Llama 3.1-style
+    /// long-context scaling as llama.cpp stores it), `head_dim / 2` values.
+    pub rope_freq_factors: Option<Vec<f32>>,
     /// Sliding-window width of local layers (Gemma 3), in tokens including the current.
     pub sliding_window: Option<usize>,
     /// Every `sliding_pattern`-th layer is global; the others use the window.
@@ -124,7 +131,8 @@ struct Layer {
     post_ffn_norm: Option<Vec<f32>>,
     /// Sliding window of this layer, `None` for global attention.
     window: Option<usize>,
-    rope_base: f32,
+    /// Rotation speed of each dimension pair: base^(-2i/d), with this layer's scaling.
+    rope_freqs: Vec<f32>,
 }
 
 /// A loaded judge model.
@@ -233,6 +241,7 @@ impl Decoder {
         } else {
             rope_base
         };
+        let rope_position_scale = rope_scaling(gguf, a)?;
         let sliding_window = if gemma {
             Some(metadata_u(gguf, a, "attention.sliding_window")?)
         } else {
@@ -246,17 +255,22 @@ impl Decoder {
         });
 
         let mut loader = Loader::open(gguf)?;
+        let rope_freq_factors = loader.optional("rope_freqs.weight", head_dim / 2)?;
         let token_embd = loader.qtensor("token_embd.weight")?;
-        let embed = Embedding::new(token_embd.clone()).map_err(loader.err("token_embd.weight"))?;
         let tied_output = !gguf.content.tensor_infos.contains_key("output.weight");
         let out_q = if tied_output {
-            token_embd
+            token_embd.clone()
         } else {
             loader.qtensor("output.weight")?
         };
         // The output projection runs on one row per prompt and may share the embedding
-        // table, so it stays quantised (no dense or padded copy).
+        // table, so it is never held twice: when its tiles replace the table, the
+        // embedding reads its rows from them.
         let output = Linear::output(out_q, numerics.matmul).map_err(loader.err("output.weight"))?;
+        let embed = match output.packed() {
+            Some(tiles) if tied_output => Embedding::packed(tiles.clone()),
+            _ => Embedding::new(token_embd).map_err(loader.err("token_embd.weight"))?,
+        };
         let vocab = output.n;
         let ffn = metadata_u(gguf, a, "feed_forward_length")?;
         let cfg = DecoderConfig {
@@ -274,6 +288,8 @@ impl Decoder {
             rope_base,
             rope_base_local,
             rope_interleaved: a == "llama",
+            rope_position_scale,
+            rope_freq_factors,
             sliding_window,
             sliding_pattern: sliding_pattern.max(1),
             attn_scale: 1.0 / (head_dim as f32).sqrt(),
@@ -371,6 +387,7 @@ impl Decoder {
         layers
             + self.output.bytes()
             + if self.cfg.tied_output {
+                // The output projection holds the table (its tiles or the file's copy).
                 0
             } else {
                 self.embed.bytes()
@@ -429,6 +446,55 @@ impl Decoder {
     }
 }
 
+/// Position multiplier of `{arch}.rope.scaling.*`: 1 without scaling, `1 / factor` for
+/// linear scaling. YaRN and other kinds change attention in ways this decoder does not
+/// implement, so such files are refused rather than run with wrong positions.
+fn rope_scaling(g: &GgufFile, arch: &str) -> Result<f32, EngineError> {
+    let kind = g.string(&format!("{arch}.rope.scaling.type")).ok();
+    let factor = g
+        .float(&format!("{arch}.rope.scaling.factor"))
+        .ok()
+        .map(|f| f as f32);
+    // llama.cpp's older key for the same linear factor.
+    let legacy = g
+        .float(&format!("{arch}.rope.scale_linear"))
+        .ok()
+        .map(|f| f as f32);
+    let bad = |key: &str, expected: &str| EngineError::Metadata {
+        path: g.path.clone(),
+        key: format!("{arch}.{key}"),
+        expected: expected.into(),
+    };
+    match (kind.as_deref(), factor, legacy) {
+        (Some("none"), _, _) | (None, _, None) => Ok(1.0),
+        (Some("linear"), Some(f), _) | (None, _, Some(f)) if f > 0.0 => Ok(1.0 / f),
+        (Some("linear"), _, _) => Err(bad(
+            "rope.scaling.factor",
+            "a positive factor for linear scaling",
+        )),
+        (Some(other), _, _) => Err(EngineError::UnsupportedFeature {
+            path: g.path.clone(),
+            key: format!("{arch}.rope.scaling.type"),
+            found: other.into(),
+            supported: "none, linear".into(),
+        }),
+        (None, _, Some(_)) => Err(bad("rope.scale_linear", "a positive factor")),
+    }
+}
+
+/// Apply linear position scaling and per-frequency divisors to `freqs` in place, the way
+/// llama.cpp's `ggml_rope_ext` forms its angles: `pos · scale · freq_i / factor_i`.
+pub(crate) fn scale_rope_freqs(freqs: &mut [f32], scale: f32, factors: Option<&[f32]>) {
+    for (i, f) in freqs.iter_mut().enumerate() {
+        if scale != 1.0 {
+            *f *= scale;
+        }
+        if let Some(div) = factors.and_then(|d| d.get(i)) {
+            *f /= div;
+        }
+    }
+}
+
 /// Read block `i`: its weights with the kernels `policy` picks, norms and biases.
 fn read_layer(
     ld: &mut Loader,
@@ -475,12 +541,32 @@ fn read_layer(
             None
         },
         window: if local { c.sliding_window } else { None },
-        rope_base: if local {
-            c.rope_base_local
+        rope_freqs: if local {
+            rope_freqs(c.head_dim, c.rope_base_local)
         } else {
-            c.rope_base
+            let mut f = rope_freqs(c.head_dim, c.rope_base);
+            scale_rope_freqs(
+                &mut f,
+                c.rope_position_scale,
+                c.rope_freq_factors.as_deref(),
+            );
+            f
         },
     })
+}
+
+/// Three products of the same rows in one pool call where the kernels allow.
+fn fused3(w: &[&Linear; 3], x: &[f32], m: usize) -> Result<[Vec<f32>; 3], EngineError> {
+    let mut out = Linear::forward_fused(w, x, m)?.into_iter();
+    let mut next = || out.next().expect("one result per weight");
+    Ok([next(), next(), next()])
+}
+
+/// Two products of the same rows in one pool call where the kernels allow.
+fn fused2(w: &[&Linear; 2], x: &[f32], m: usize) -> Result<[Vec<f32>; 2], EngineError> {
+    let mut out = Linear::forward_fused(w, x, m)?.into_iter();
+    let mut next = || out.next().expect("one result per weight");
+    Ok([next(), next()])
 }
 
 /// Log-softmax of `logits`, computed in f64 for stability.
@@ -515,9 +601,7 @@ impl Decoder {
         }
         for (li, l) in self.layers.iter().enumerate() {
             let h = rms_norm(&x, &l.attn_norm, eps);
-            let mut q = l.wq.forward(&h, m)?;
-            let mut k = l.wk.forward(&h, m)?;
-            let mut v = l.wv.forward(&h, m)?;
+            let [mut q, mut k, mut v] = fused3(&[&l.wq, &l.wk, &l.wv], &h, m)?;
             add_bias(&mut q, l.bq.as_deref());
             add_bias(&mut k, l.bk.as_deref());
             add_bias(&mut v, l.bv.as_deref());
@@ -525,10 +609,10 @@ impl Decoder {
                 q = rms_norm(&q, qn, eps);
                 k = rms_norm(&k, kn, eps);
             }
-            let freqs = rope_freqs(c.head_dim, l.rope_base);
+            let freqs = &l.rope_freqs;
             let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
-            rope(&mut q, q_dim, c.head_dim, pos0, &freqs, c.rope_interleaved);
-            rope(&mut k, kv_dim, c.head_dim, pos0, &freqs, c.rope_interleaved);
+            rope(&mut q, q_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
+            rope(&mut k, kv_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
             cache.k[li].extend_from_slice(&k);
             cache.v[li].extend_from_slice(&v);
             let att = attention(&q, &cache.k[li], &cache.v[li], &shape, pos0, m, l.window);
@@ -538,8 +622,7 @@ impl Decoder {
             }
             add_into(&mut x, &o);
             let h = rms_norm(&x, &l.ffn_norm, eps);
-            let mut a = l.gate.forward(&h, m)?;
-            let u = l.up.forward(&h, m)?;
+            let [mut a, u] = fused2(&[&l.gate, &l.up], &h, m)?;
             let act = c.activation;
             a.iter_mut()
                 .zip(&u)
@@ -555,5 +638,44 @@ impl Decoder {
         let last = rms_norm(&x[first * c.hidden..], &self.out_norm, eps);
         let logits = self.output.forward(&last, m - first)?;
         Ok(logits.chunks(c.vocab).map(<[f32]>::to_vec).collect())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Position interpolation (Chen et al. 2023): with linear scaling factor `f`, the
+    /// token at position `p` is rotated as an unscaled one at position `p / f`. Folding
+    /// the factor into the frequencies must give that rotation, for factors above and
+    /// below 1 and both pair layouts.
+    #[test]
+    fn scaled_frequencies_rotate_like_interpolated_positions() {
+        let d = 64;
+        let x: Vec<f32> = (0..2 * d)
+            .map(|i| ((i * 37 % 11) as f32 - 5.0) / 7.0)
+            .collect();
+        for (factor, p) in [(2.0f32, 6usize), (4.0, 12), (0.5, 3)] {
+            for interleaved in [false, true] {
+                let base = rope_freqs(d, 10_000.0);
+                let mut scaled = base.clone();
+                scale_rope_freqs(&mut scaled, 1.0 / factor, None);
+                let (mut a, mut b) = (x.clone(), x.clone());
+                rope(&mut a, 2 * d, d, p, &scaled, interleaved);
+                let q = (p as f32 / factor) as usize;
+                rope(&mut b, 2 * d, d, q, &base, interleaved);
+                for (u, v) in a.iter().zip(&b) {
+                    assert!((u - v).abs() < 1e-5, "factor {factor}: {u} vs {v}");
+                }
+            }
+        }
+    }
+
+    /// llama.cpp's per-frequency divisors (`rope_freqs.weight`) divide each speed.
+    #[test]
+    fn frequency_divisors_divide_each_speed() {
+        let mut f = vec![1.0, 0.5, 0.25];
+        scale_rope_freqs(&mut f, 1.0, Some(&[1.0, 2.0, 8.0]));
+        assert_eq!(f, vec![1.0, 0.25, 0.031_25]);
     }
 }

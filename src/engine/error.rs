@@ -33,10 +33,21 @@ pub enum EngineError {
         expected: String,
     },
     /// The model architecture is not one the engine implements.
-    #[error("`{path}` has architecture `{arch}`, which assize does not run (supported: {supported})")]
+    #[error(
+        "`{path}` has architecture `{arch}`, which assize does not run (supported: {supported})"
+    )]
     UnsupportedArch {
         path: PathBuf,
         arch: String,
+        supported: String,
+    },
+    /// The file asks for a feature of its architecture that the engine does not
+    /// implement (a RoPE scaling kind, say); running it anyway would give wrong scores.
+    #[error("`{path}` sets `{key}` to `{found}`, which assize does not implement (supported: {supported})")]
+    UnsupportedFeature {
+        path: PathBuf,
+        key: String,
+        found: String,
         supported: String,
     },
     /// A tensor the architecture needs is missing or has an unexpected shape.

@@ -1,25 +1,36 @@
-//! Matrix-multiply kernels of the decoder for prompts: quantised weights repacked once
-//! at load into 16-column tiles, multiplied by activation rows quantised to int8 with
-//! AVX-512 VNNI (`vpdpbusd`). Input: a Q4_K, Q6_K or Q8_0-representable (Q4_0, Q5_0,
-//! Q8_0) weight `n × k` and f32 rows `m × k`. Output: f32 rows `m × n`. Never lets one
-//! row's result depend on the other rows of the call or on the thread count: every
-//! output element is summed by one worker in a fixed order.
+//! Matrix-multiply kernels of the decoder: quantised weights repacked once at load
+//! into 16-column tiles, multiplied by activation rows quantised to int8 with AVX-512
+//! VNNI (`vpdpbusd`). Input: a Q4_K, Q6_K, Q5_0 or Q8_0-representable (Q4_0, Q8_0)
+//! weight `n × k` and f32 rows `m × k`. Output: f32 rows `m × n`. The same tiles serve
+//! prompts (several rows share each unpacked weight register) and generation (one
+//! row, where streaming the weight from memory is the whole cost, so the tiles keep
+//! close to the file's bits per weight). Never lets one row's result depend on the
+//! other rows of the call or on the thread count: every output element is summed by
+//! one worker in a fixed order.
 //!
-//! Numerics follow ggml's formats (Gerganov et al., ggml `k_quants.c`): activations
-//! are quantised per 256 values as Q8_K (`d = max / -127`, `q = round(x / d)`, sums of
-//! 16 quants kept), and each weight sub-block contributes
+//! Numerics follow ggml's formats (Gerganov et al., ggml `k_quants.c`, `ggml-quants.c`):
+//! activations are quantised per 256 values as Q8_K (`d = max / -127`,
+//! `q = round(x / d)`, sums of 16 quants kept), and each weight sub-block contributes
 //! `d_x · (d_w · sc · Σ q_w q_x − d_min · mn · Σ q_x)` (Q4_K),
-//! `d_x · d_w · sc · Σ (q_w − 32) q_x` (Q6_K) or `d_x · d_w · Σ q_w q_x` (Q8_0).
-//! Integer sums are exact; the float steps run in one order per output element.
+//! `d_x · d_w · sc · Σ (q_w − 32) q_x` (Q6_K), `d_x · d_w · Σ (q_w − 16) q_x` (Q5_0) or
+//! `d_x · d_w · Σ q_w q_x` (Q8_0). Integer sums are exact; the float steps run in one
+//! order per output element.
 //!
-//! Tile layouts (one tile = 16 output columns, `col` below), little-endian:
-//! - Q4_K, per 256-value super-block (2432 bytes): quants `[sub 8][g 4][col][4]`, byte
-//!   `j` holding value `32 sub + 8 g + j` in its low nibble and `+ 4` in its high
-//!   nibble; scales `[sub][col]` u8; mins `[pair 4][col][2]` u8; `d`, `dmin` f32 `[col]`.
-//! - Q6_K, per super-block (4416 bytes): quants `[sub 16][g 4][col][4]` as bytes 0..63;
-//!   scales `[sub][col]` i8; `d` f32 `[col]`.
-//! - Q8_0, per 32-value block (576 bytes): quants `[g 8][col][4]` stored `q + 128`;
-//!   `d` f32 `[col]`.
+//! Tile layouts (one tile = 16 output columns, `col` below), little-endian. "Nibble
+//! line `(s, g)`" means `[col][4]` bytes whose byte `j` holds value `32 s + 8 g + j` in
+//! its low nibble and value `32 s + 8 g + j + 4` in its high nibble.
+//! - Q4_K, per 256-value super-block (2432 bytes, 4.75 bits a weight): nibble lines
+//!   `[s 8][g 4]`; scales `[s][col]` u8; mins `[pair 4][col][2]` u8; `d`, `dmin` f32
+//!   `[col]`.
+//! - Q6_K, per super-block (3392 bytes, 6.6 bits): the low four bits as nibble lines
+//!   `[s 8][g 4]`; the top two bits as lines `[s 8][gp 2][col][4]` whose byte `j`
+//!   holds, two bits each from bit 0, the values of nibble lines `(s, 2gp)` low, high,
+//!   `(s, 2gp + 1)` low, high at position `j`; scales `[sub 16][col]` i8; `d` f32 `[col]`.
+//! - Q5_0, per 64 values (two ggml blocks, 704 bytes, 5.5 bits): the low four bits as
+//!   nibble lines `[blk 2][g 4]`; the fifth bits `[blk 2][col][4]`, byte `j` with bit
+//!   `2 g + h` for value `32 blk + 8 g + 4 h + j`; `d` f16 `[blk][col]`.
+//! - Q8_0, per 32-value block (576 bytes, 9 bits): quants `[g 8][col][4]` stored
+//!   `q + 128`; `d` f32 `[col]`.
 
 use std::sync::OnceLock;
 
@@ -31,7 +42,8 @@ const TILE_N: usize = 16;
 /// Values of one activation super-block (ggml's `QK_K`).
 const QK: usize = 256;
 const Q4K_SB: usize = 2432;
-const Q6K_SB: usize = 4416;
+const Q6K_SB: usize = 3392;
+const Q5_PAIR: usize = 704;
 const Q8_BLK: usize = 576;
 
 /// Rows the kernels process together; they share each unpacked weight register.
@@ -44,14 +56,68 @@ pub enum Format {
     Q4K,
     /// ggml Q6_K: 6-bit quants, 8-bit scales per 16 values.
     Q6K,
-    /// ggml Q8_0 (also exact for Q4_0 and Q5_0 sources): 8-bit quants, f16 scale per 32.
+    /// ggml Q5_0: 5-bit quants, f16 scale per 32.
+    Q5,
+    /// ggml Q8_0 (also exact for Q4_0 sources): 8-bit quants, f16 scale per 32.
     Q8_0,
 }
 
-/// 64-byte aligned storage unit, so tile loads never straddle cache lines.
-#[derive(Clone, Copy)]
-#[repr(C, align(64))]
-struct Line([u8; 64]);
+/// Zeroed tile storage aligned to 2 MiB and, on Linux, marked for transparent huge
+/// pages: streaming a weight for one row then misses the TLB once per 2 MiB instead
+/// of once per 4 KiB page. Tile loads are 64-byte aligned, so they never straddle
+/// cache lines.
+struct TileBuf {
+    ptr: *mut u8,
+    len: usize,
+}
+
+// SAFETY: the buffer is plain bytes, written only while the `Packed` is built.
+unsafe impl Send for TileBuf {}
+unsafe impl Sync for TileBuf {}
+
+const HUGE_PAGE: usize = 2 << 20;
+
+impl TileBuf {
+    fn zeroed(len: usize) -> TileBuf {
+        let layout = Self::layout(len);
+        // SAFETY: the layout has a non-zero size.
+        let ptr = unsafe { std::alloc::alloc(layout) };
+        if ptr.is_null() {
+            std::alloc::handle_alloc_error(layout);
+        }
+        #[cfg(target_os = "linux")]
+        if layout.size() >= HUGE_PAGE {
+            // SAFETY: advice on memory this buffer owns; failure only loses speed.
+            unsafe { libc::madvise(ptr as *mut libc::c_void, layout.size(), libc::MADV_HUGEPAGE) };
+        }
+        // SAFETY: `ptr` is valid for `layout.size()` bytes.
+        unsafe { std::ptr::write_bytes(ptr, 0, layout.size()) };
+        TileBuf { ptr, len }
+    }
+
+    fn layout(len: usize) -> std::alloc::Layout {
+        let align = if len >= HUGE_PAGE { HUGE_PAGE } else { 64 };
+        std::alloc::Layout::from_size_align(len.max(64).div_ceil(align) * align, align)
+            .expect("tile buffer layout")
+    }
+
+    fn bytes(&self) -> &[u8] {
+        // SAFETY: `ptr` is valid for `len` initialised bytes while `self` lives.
+        unsafe { std::slice::from_raw_parts(self.ptr, self.len) }
+    }
+
+    fn bytes_mut(&mut self) -> &mut [u8] {
+        // SAFETY: as `bytes`, and `&mut self` makes the view unique.
+        unsafe { std::slice::from_raw_parts_mut(self.ptr, self.len) }
+    }
+}
+
+impl Drop for TileBuf {
+    fn drop(&mut self) {
+        // SAFETY: allocated in `zeroed` with this layout.
+        unsafe { std::alloc::dealloc(self.ptr, Self::layout(self.len)) };
+    }
+}
 
 /// A weight repacked into 16-column tiles.
 pub struct Packed {
@@ -61,10 +127,10 @@ pub struct Packed {
     /// Input features.
     pub k: usize,
     tile_bytes: usize,
-    data: Vec<Line>,
+    data: TileBuf,
 }
 
-/// Whether this processor runs the kernels (AVX-512 F/BW and VNNI).
+/// Whether this processor runs the kernels (AVX-512 F/BW and VNNI, F16C).
 pub fn available() -> bool {
     #[cfg(target_arch = "x86_64")]
     {
@@ -73,6 +139,7 @@ pub fn available() -> bool {
             is_x86_feature_detected!("avx512f")
                 && is_x86_feature_detected!("avx512bw")
                 && is_x86_feature_detected!("avx512vnni")
+                && is_x86_feature_detected!("f16c")
         })
     }
     #[cfg(not(target_arch = "x86_64"))]
@@ -137,22 +204,24 @@ impl Packed {
             return Ok(None);
         }
         let dtype = qt.dtype();
-        let (format, sb_bytes, sb_vals) = match dtype {
-            GgmlDType::Q4K if k.is_multiple_of(QK) => (Format::Q4K, Q4K_SB, QK),
-            GgmlDType::Q6K if k.is_multiple_of(QK) => (Format::Q6K, Q6K_SB, QK),
-            GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0 if k.is_multiple_of(32) => {
-                (Format::Q8_0, Q8_BLK, 32)
+        // (format, bytes and values of one tile unit, values of one source block)
+        let (format, unit_bytes, unit_vals, src_vals) = match dtype {
+            GgmlDType::Q4K if k.is_multiple_of(QK) => (Format::Q4K, Q4K_SB, QK, QK),
+            GgmlDType::Q6K if k.is_multiple_of(QK) => (Format::Q6K, Q6K_SB, QK, QK),
+            GgmlDType::Q5_0 if k.is_multiple_of(32) => (Format::Q5, Q5_PAIR, 64, 32),
+            GgmlDType::Q4_0 | GgmlDType::Q8_0 if k.is_multiple_of(32) => {
+                (Format::Q8_0, Q8_BLK, 32, 32)
             }
             _ => return Ok(None),
         };
-        let blocks = k / sb_vals;
-        let tile_bytes = blocks * sb_bytes;
-        let mut data = vec![Line([0; 64]); n / TILE_N * tile_bytes / 64];
+        let tile_bytes = k.div_ceil(unit_vals) * unit_bytes;
+        let mut data = TileBuf::zeroed(n / TILE_N * tile_bytes);
         let src = qt.data()?;
         let src_block = dtype.type_size();
-        // Q4_0 / Q5_0 values come dequantised from candle and are requantised exactly
-        // with the block's own scale (each is d · q with an integer |q| <= 16).
-        let values = if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0) {
+        let blocks = k / src_vals;
+        // Q4_0 values come dequantised from candle and are requantised exactly with
+        // the block's own scale (each is d · q with an integer |q| <= 8).
+        let values = if dtype == GgmlDType::Q4_0 {
             Some(
                 qt.dequantize(&Device::Cpu)?
                     .flatten_all()?
@@ -161,18 +230,19 @@ impl Packed {
         } else {
             None
         };
-        // SAFETY: `Line` is 64 plain bytes; the byte view covers exactly `data`.
-        let out = unsafe {
-            std::slice::from_raw_parts_mut(data.as_mut_ptr() as *mut u8, data.len() * 64)
-        };
+        let out = data.bytes_mut();
         for row in 0..n {
             let (tile, col) = (row / TILE_N, row % TILE_N);
+            let tile_out = &mut out[tile * tile_bytes..(tile + 1) * tile_bytes];
             for b in 0..blocks {
                 let blk = &src[(row * blocks + b) * src_block..][..src_block];
-                let dst = &mut out[tile * tile_bytes + b * sb_bytes..][..sb_bytes];
                 match format {
-                    Format::Q4K => pack_q4k(blk, dst, col),
-                    Format::Q6K => pack_q6k(blk, dst, col),
+                    Format::Q4K => pack_q4k(blk, &mut tile_out[b * Q4K_SB..][..Q4K_SB], col),
+                    Format::Q6K => pack_q6k(blk, &mut tile_out[b * Q6K_SB..][..Q6K_SB], col),
+                    Format::Q5 => {
+                        let dst = &mut tile_out[b / 2 * Q5_PAIR..][..Q5_PAIR];
+                        pack_q5_0(blk, dst, b % 2, col);
+                    }
                     Format::Q8_0 => {
                         let d = f16_at(blk, 0);
                         let mut q = [0i8; 32];
@@ -187,7 +257,7 @@ impl Packed {
                                 *q = b as i8;
                             }),
                         }
-                        pack_q8_0(d, &q, dst, col);
+                        pack_q8_0(d, &q, &mut tile_out[b * Q8_BLK..][..Q8_BLK], col);
                     }
                 }
             }
@@ -201,9 +271,86 @@ impl Packed {
         }))
     }
 
+    fn bytes_of_tile(&self, t: usize) -> &[u8] {
+        &self.data.bytes()[t * self.tile_bytes..(t + 1) * self.tile_bytes]
+    }
+
+    /// Row `r` of the weight, dequantised with ggml's formulas and operation order
+    /// (`dequantize_row_*`): the values a lookup in the original table gives. Used when
+    /// the output projection shares its table with the token embedding.
+    pub fn row(&self, r: usize) -> Vec<f32> {
+        assert!(r < self.n, "row {r} of a {}-row weight", self.n);
+        let (tile, col) = (self.bytes_of_tile(r / TILE_N), r % TILE_N);
+        let f32_at = |at: usize| f32::from_le_bytes(tile[at..at + 4].try_into().expect("4 bytes"));
+        let mut y = vec![0f32; self.k];
+        match self.format {
+            Format::Q4K => {
+                for (b, ys) in y.chunks_exact_mut(QK).enumerate() {
+                    let sb = &tile[b * Q4K_SB..];
+                    let (d, dmin) = (
+                        f32_at(b * Q4K_SB + 2304 + col * 4),
+                        f32_at(b * Q4K_SB + 2368 + col * 4),
+                    );
+                    for (s, ys) in ys.chunks_exact_mut(32).enumerate() {
+                        let sc = sb[2048 + s * 16 + col] as f32;
+                        let mn = sb[2176 + (s / 2) * 32 + col * 2 + s % 2] as f32;
+                        let (d1, m1) = (d * sc, dmin * mn);
+                        for (i, v) in ys.iter_mut().enumerate() {
+                            let byte = sb[(s * 4 + i % 32 / 8) * 64 + col * 4 + i % 4];
+                            let q = if i % 8 < 4 { byte & 0x0f } else { byte >> 4 };
+                            *v = d1 * q as f32 - m1;
+                        }
+                    }
+                }
+            }
+            Format::Q6K => {
+                for (b, ys) in y.chunks_exact_mut(QK).enumerate() {
+                    let sb = &tile[b * Q6K_SB..];
+                    let d = f32_at(b * Q6K_SB + 3328 + col * 4);
+                    for (i, v) in ys.iter_mut().enumerate() {
+                        let (s, g, j, h) = (i / 32, i % 32 / 8, i % 4, i % 8 / 4);
+                        let byte = sb[(s * 4 + g) * 64 + col * 4 + j];
+                        let low = if h == 0 { byte & 0x0f } else { byte >> 4 };
+                        let hb = sb[2048 + (s * 2 + g / 2) * 64 + col * 4 + j];
+                        let top = (hb >> (4 * (g % 2) + 2 * h)) & 3;
+                        let q = (low | (top << 4)) as i32 - 32;
+                        let sc = sb[3072 + (i / 16) * 16 + col] as i8 as f32;
+                        *v = d * sc * q as f32;
+                    }
+                }
+            }
+            Format::Q5 => {
+                for (blk, ys) in y.chunks_exact_mut(32).enumerate() {
+                    let pair = &tile[blk / 2 * Q5_PAIR..];
+                    let half = blk % 2;
+                    let at = 640 + half * 32 + col * 2;
+                    let d = f16_to_f32(u16::from_le_bytes([pair[at], pair[at + 1]]));
+                    for (i, v) in ys.iter_mut().enumerate() {
+                        let (g, h, j) = (i / 8, i % 8 / 4, i % 4);
+                        let byte = pair[(half * 4 + g) * 64 + col * 4 + j];
+                        let low = if h == 0 { byte & 0x0f } else { byte >> 4 };
+                        let fifth = (pair[512 + half * 64 + col * 4 + j] >> (2 * g + h)) & 1;
+                        *v = ((low | (fifth << 4)) as i32 - 16) as f32 * d;
+                    }
+                }
+            }
+            Format::Q8_0 => {
+                for (blk, ys) in y.chunks_exact_mut(32).enumerate() {
+                    let at = blk * Q8_BLK;
+                    let d = f32_at(at + 512 + col * 4);
+                    for (i, v) in ys.iter_mut().enumerate() {
+                        let q = tile[at + (i / 4) * 64 + col * 4 + i % 4] as i32 - 128;
+                        *v = q as f32 * d;
+                    }
+                }
+            }
+        }
+        y
+    }
+
     /// Bytes held by the repacked weight.
     pub fn bytes(&self) -> usize {
-        self.data.len() * 64
+        self.data.len
     }
 
     /// The weight format of the tiles.
@@ -214,35 +361,60 @@ impl Packed {
     /// `y = x · Wᵀ` for `m` rows of `x` (`m × k`, row-major): `m × n`, on candle's
     /// worker pool.
     pub fn forward(&self, x: &[f32], m: usize) -> Vec<f32> {
-        self.run(x, m, true)
+        Self::run(&[self], x, m, true).pop().expect("one weight")
     }
 
-    /// `forward` with the work split over the pool (`parallel`) or run on this thread.
-    fn run(&self, x: &[f32], m: usize, parallel: bool) -> Vec<f32> {
-        assert_eq!(x.len(), m * self.k, "activation rows of the wrong width");
-        let acts = Acts::quantise(x, m, self.k, parallel);
-        let mut out = vec![0f32; m * self.n];
-        let shared = SharedOut(out.as_mut_ptr());
-        let tiles = self.n / TILE_N;
+    /// `forward` for several weights of the same input width (the query, key and value
+    /// projections, say): the rows are quantised once and all tiles go to the pool in
+    /// one call. Results are bit-identical to separate calls.
+    pub fn forward_many(weights: &[&Packed], x: &[f32], m: usize) -> Vec<Vec<f32>> {
+        Self::run(weights, x, m, true)
+    }
+
+    /// `forward_many` with the work split over the pool (`parallel`) or run on this
+    /// thread.
+    fn run(weights: &[&Packed], x: &[f32], m: usize, parallel: bool) -> Vec<Vec<f32>> {
+        let k = weights.first().map_or(0, |w| w.k);
+        assert!(
+            weights.iter().all(|w| w.k == k),
+            "weights of different widths"
+        );
+        assert_eq!(x.len(), m * k, "activation rows of the wrong width");
+        let acts = Acts::quantise(x, m, k, parallel);
+        let mut outs: Vec<Vec<f32>> = weights.iter().map(|w| vec![0f32; m * w.n]).collect();
+        let shared: Vec<SharedOut> = outs.iter_mut().map(|o| SharedOut(o.as_mut_ptr())).collect();
+        // First tile number of each weight in the combined range.
+        let mut starts = Vec::with_capacity(weights.len() + 1);
+        let mut total = 0;
+        for w in weights {
+            starts.push(total);
+            total += w.n / TILE_N;
+        }
+        starts.push(total);
         let unit = |range: std::ops::Range<usize>| {
+            let mut wi = 0;
             for t in range {
-                // SAFETY: tile t writes only columns [16 t, 16 t + 16) of each row of
-                // `out`, which outlives this call; features checked by `enabled()`.
-                unsafe { self.tile(t, &acts, shared.ptr()) };
+                while t >= starts[wi + 1] {
+                    wi += 1;
+                }
+                // SAFETY: tile t writes only columns [16 t', 16 t' + 16) of each row of
+                // its weight's output, which outlives this call; features checked by
+                // `enabled()`.
+                unsafe { weights[wi].tile(t - starts[wi], &acts, shared[wi].ptr()) };
             }
         };
         if parallel {
-            candle_core::utils::barrier_pool().execute_chunked(tiles, unit);
+            split_over_pool(total, unit);
         } else {
-            unit(0..tiles);
+            unit(0..total);
         }
-        out
+        outs
     }
 
     /// All rows of `acts` against tile `t`, `MT` rows at a time, then one by one; the
     /// per-row instruction sequence is the same either way.
     unsafe fn tile(&self, t: usize, acts: &Acts, out: *mut f32) {
-        let base = (self.data.as_ptr() as *const u8).add(t * self.tile_bytes);
+        let base = self.data.ptr.add(t * self.tile_bytes);
         let mut r = 0;
         while r + MT <= acts.m {
             self.rows::<MT>(base, acts, r, out.add(r * self.n + t * TILE_N));
@@ -260,6 +432,7 @@ impl Packed {
         match self.format {
             Format::Q4K => vnni::q4k::<R>(w, a, r0, self.n, out),
             Format::Q6K => vnni::q6k::<R>(w, a, r0, self.n, out),
+            Format::Q5 => vnni::q5::<R>(w, a, r0, self.k.div_ceil(64), self.n, out),
             Format::Q8_0 => vnni::q8_0::<R>(w, a, r0, self.k / 32, self.n, out),
         }
         #[cfg(not(target_arch = "x86_64"))]
@@ -306,15 +479,45 @@ fn pack_q6k(blk: &[u8], dst: &mut [u8], col: usize) {
             v[h * 128 + j + 96] = (ql[j + 32] >> 4) | (((qh[j] >> 6) & 3) << 4);
         }
     }
-    for s in 0..16 {
+    for s in 0..8 {
         for g in 0..4 {
             for j in 0..4 {
-                dst[(s * 4 + g) * 64 + col * 4 + j] = v[s * 16 + g * 4 + j];
+                let i = s * 32 + g * 8 + j;
+                dst[(s * 4 + g) * 64 + col * 4 + j] = (v[i] & 0x0f) | ((v[i + 4] & 0x0f) << 4);
+                let shift = 4 * (g % 2);
+                dst[2048 + (s * 2 + g / 2) * 64 + col * 4 + j] |=
+                    ((v[i] >> 4) << shift) | ((v[i + 4] >> 4) << (shift + 2));
             }
         }
-        dst[4096 + s * 16 + col] = scales[s];
     }
-    put_f32(&mut dst[4352 + col * 4..], d);
+    for (s, &sc) in scales.iter().enumerate() {
+        dst[3072 + s * 16 + col] = sc;
+    }
+    put_f32(&mut dst[3328 + col * 4..], d);
+}
+
+/// One ggml `block_q5_0` (f16 `d`, 32 fifth bits `qh`, 16 bytes of nibbles: byte `j`
+/// holds value `j` low and `j + 16` high) into half `half` of a 64-value tile unit.
+fn pack_q5_0(blk: &[u8], dst: &mut [u8], half: usize, col: usize) {
+    let qh = u32::from_le_bytes([blk[2], blk[3], blk[4], blk[5]]);
+    let qs = &blk[6..22];
+    let value = |i: usize| {
+        let low = if i < 16 {
+            qs[i] & 0x0f
+        } else {
+            qs[i - 16] >> 4
+        };
+        (low, ((qh >> i) & 1) as u8)
+    };
+    for g in 0..4 {
+        for j in 0..4 {
+            let (l0, h0) = value(8 * g + j);
+            let (l1, h1) = value(8 * g + j + 4);
+            dst[(half * 4 + g) * 64 + col * 4 + j] = l0 | (l1 << 4);
+            dst[512 + half * 64 + col * 4 + j] |= (h0 << (2 * g)) | (h1 << (2 * g + 1));
+        }
+    }
+    dst[640 + half * 32 + col * 2..][..2].copy_from_slice(&blk[..2]);
 }
 
 fn pack_q8_0(d: f32, q: &[i8; 32], dst: &mut [u8], col: usize) {
@@ -435,6 +638,36 @@ fn quantise_block(xs: &[f32], q: &mut [i8], sums: &mut [i32; 16]) -> f32 {
     1.0 / iscale
 }
 
+/// Run `unit` over `0..items` on candle's worker pool: each thread first takes one
+/// contiguous range (seven eighths of the items split evenly, so each streams its
+/// weights in order and the prefetcher stays ahead), then the last eighth goes in
+/// small chunks to whichever thread is free, so a thread slowed by the system does
+/// not hold the others at the barrier. Which thread computes an item never changes
+/// its result.
+fn split_over_pool<F: Fn(std::ops::Range<usize>) + Sync>(items: usize, unit: F) {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    let pool = candle_core::utils::barrier_pool();
+    let threads = pool.n_workers() + 1;
+    if threads == 1 || items < 2 * threads {
+        unit(0..items);
+        return;
+    }
+    let fixed = items - items / 8;
+    let chunk = (items - fixed).div_ceil(threads * 4).max(1);
+    let cursor = AtomicUsize::new(fixed);
+    pool.execute(|tid| {
+        let tid = tid % threads;
+        unit(fixed * tid / threads..fixed * (tid + 1) / threads);
+        loop {
+            let start = cursor.fetch_add(chunk, Ordering::Relaxed);
+            if start >= items {
+                break;
+            }
+            unit(start..items.min(start + chunk));
+        }
+    });
+}
+
 /// Output buffer shared by tile workers; each writes its own 16 columns.
 struct SharedOut(*mut f32);
 // SAFETY: workers write disjoint column ranges.
@@ -456,8 +689,16 @@ mod vnni {
         _mm512_set1_epi32((p as *const i32).read_unaligned())
     }
 
+    /// Bytes ahead of each weight load that are requested early. A single row leaves
+    /// the core mostly waiting on memory; asking for lines this far ahead overlaps the
+    /// wait with arithmetic (tiles of one worker's range are contiguous). 2 KiB was
+    /// the best of 0, 1, 2, 4 and 8 KiB in `cargo bench --bench kernels`.
+    const PREFETCH: usize = 2048;
+
+    /// Load one 64-byte line of a tile and request the line `PREFETCH` bytes ahead.
     #[inline(always)]
     unsafe fn load(p: *const u8) -> __m512i {
+        _mm_prefetch::<_MM_HINT_T0>(p.wrapping_add(PREFETCH) as *const i8);
         _mm512_load_si512(p as *const __m512i)
     }
 
@@ -558,6 +799,19 @@ mod vnni {
         }
     }
 
+    /// Top bits of a Q6_K value moved to bits 4-5 of each byte: `S` = 4 - 4 gg for the
+    /// low value of nibble line `2 gp + gg`, 2 - 4 gg for its high value.
+    #[inline(always)]
+    unsafe fn top2<const S: i32>(h: __m512i) -> __m512i {
+        let m = _mm512_set1_epi8(0x30);
+        match S {
+            4 => _mm512_and_si512(_mm512_slli_epi16::<4>(h), m),
+            2 => _mm512_and_si512(_mm512_slli_epi16::<2>(h), m),
+            0 => _mm512_and_si512(h, m),
+            _ => _mm512_and_si512(_mm512_srli_epi16::<2>(h), m),
+        }
+    }
+
     /// Q6_K: `R` rows from `r0` against one tile.
     #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
     pub(super) unsafe fn q6k<const R: usize>(
@@ -567,31 +821,46 @@ mod vnni {
         n: usize,
         out: *mut f32,
     ) {
+        let mask = _mm512_set1_epi8(0x0f);
         let kb = a.kb;
         let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
         let mut acc = [_mm512_setzero_ps(); R];
         for b in 0..kb {
             let sb = w.add(b * super::Q6K_SB);
             let mut sumi = [_mm512_setzero_si512(); R];
-            for sp in 0..8 {
-                let c = |i: usize, s: usize| {
-                    _mm512_set1_epi32(*a.corr16.get_unchecked(((r0 + i) * kb + b) * 16 + s))
+            for s in 0..8 {
+                let c = |i: usize, sub: usize| {
+                    _mm512_set1_epi32(*a.corr16.get_unchecked(((r0 + i) * kb + b) * 16 + sub))
                 };
-                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * sp));
-                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * sp + 1));
-                for g in 0..4 {
-                    let wa = load(sb.add((sp * 8 + g) * 64));
-                    let wb = load(sb.add((sp * 8 + 4 + g) * 64));
-                    let off = b * QK + sp * 32 + g * 4;
-                    for i in 0..R {
-                        let x = xq[i].add(off);
-                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(x));
-                        ib[i] = _mm512_dpbusd_epi32(ib[i], wb, bcast(x.add(16)));
+                // Sub-block 2 s is nibble lines g = 0, 1 (top bits line gp = 0);
+                // sub-block 2 s + 1 is g = 2, 3 (gp = 1).
+                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * s));
+                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * s + 1));
+                for gp in 0..2 {
+                    let h = load(sb.add(2048 + (s * 2 + gp) * 64));
+                    for gg in 0..2 {
+                        let g = 2 * gp + gg;
+                        let wv = load(sb.add((s * 4 + g) * 64));
+                        let (tl, th) = if gg == 0 {
+                            (top2::<4>(h), top2::<2>(h))
+                        } else {
+                            (top2::<0>(h), top2::<-2>(h))
+                        };
+                        let lo = _mm512_or_si512(_mm512_and_si512(wv, mask), tl);
+                        let hi =
+                            _mm512_or_si512(_mm512_and_si512(_mm512_srli_epi16::<4>(wv), mask), th);
+                        let off = b * QK + s * 32 + g * 8;
+                        let dst = if gp == 0 { &mut ia } else { &mut ib };
+                        for i in 0..R {
+                            let x = xq[i].add(off);
+                            dst[i] = _mm512_dpbusd_epi32(dst[i], lo, bcast(x));
+                            dst[i] = _mm512_dpbusd_epi32(dst[i], hi, bcast(x.add(4)));
+                        }
                     }
                 }
-                let sa = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(4096 + sp * 32) as *const _));
+                let sa = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32) as *const _));
                 let sbv =
-                    _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(4096 + sp * 32 + 16) as *const _));
+                    _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32 + 16) as *const _));
                 for i in 0..R {
                     let t = _mm512_add_epi32(
                         _mm512_mullo_epi32(ia[i], sa),
@@ -600,11 +869,91 @@ mod vnni {
                     sumi[i] = _mm512_add_epi32(sumi[i], t);
                 }
             }
-            let d = _mm512_load_ps(sb.add(4352) as *const f32);
+            let d = _mm512_load_ps(sb.add(3328) as *const f32);
             for i in 0..R {
                 let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
                 let f = _mm512_cvtepi32_ps(sumi[i]);
                 acc[i] = _mm512_fmadd_ps(f, _mm512_mul_ps(d, dx), acc[i]);
+            }
+        }
+        for (i, v) in acc.iter().enumerate() {
+            _mm512_storeu_ps(out.add(i * n), *v);
+        }
+    }
+
+    /// Fifth bit of a Q5_0 value moved to bit 4 of each byte: `S` = 4 - bit, for the
+    /// value whose fifth bit sits at `bit` (0..7) of its byte.
+    #[inline(always)]
+    unsafe fn fifth<const S: i32>(h: __m512i) -> __m512i {
+        let m = _mm512_set1_epi8(0x10);
+        let v = match S {
+            4 => _mm512_slli_epi16::<4>(h),
+            3 => _mm512_slli_epi16::<3>(h),
+            2 => _mm512_slli_epi16::<2>(h),
+            1 => _mm512_slli_epi16::<1>(h),
+            0 => h,
+            -1 => _mm512_srli_epi16::<1>(h),
+            -2 => _mm512_srli_epi16::<2>(h),
+            _ => _mm512_srli_epi16::<3>(h),
+        };
+        _mm512_and_si512(v, m)
+    }
+
+    /// Q5_0 (`pairs` 64-value units per row): `R` rows from `r0` against one tile.
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni,f16c")]
+    pub(super) unsafe fn q5<const R: usize>(
+        w: *const u8,
+        a: &Acts,
+        r0: usize,
+        pairs: usize,
+        n: usize,
+        out: *mut f32,
+    ) {
+        let mask = _mm512_set1_epi8(0x0f);
+        let kb = a.kb;
+        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
+        // Σ (q − 16) x = Σ q x − 16 Σ x, and corr32 holds −128 Σ x per block.
+        let c = |i: usize, blk: usize| {
+            _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk) / 8)
+        };
+        let mut acc = [_mm512_setzero_ps(); R];
+        for b in 0..kb {
+            let mut f = [_mm512_setzero_ps(); R];
+            for p in b * 4..pairs.min(b * 4 + 4) {
+                let unit = w.add(p * super::Q5_PAIR);
+                for half in 0..2 {
+                    let blk = 2 * p + half;
+                    let h = load(unit.add(512 + half * 64));
+                    let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, blk));
+                    for g in 0..4 {
+                        let wv = load(unit.add((half * 4 + g) * 64));
+                        let (fl, fh) = match g {
+                            0 => (fifth::<4>(h), fifth::<3>(h)),
+                            1 => (fifth::<2>(h), fifth::<1>(h)),
+                            2 => (fifth::<0>(h), fifth::<-1>(h)),
+                            _ => (fifth::<-2>(h), fifth::<-3>(h)),
+                        };
+                        let lo = _mm512_or_si512(_mm512_and_si512(wv, mask), fl);
+                        let hi =
+                            _mm512_or_si512(_mm512_and_si512(_mm512_srli_epi16::<4>(wv), mask), fh);
+                        let off = blk * 32 + g * 8;
+                        for i in 0..R {
+                            let x = xq[i].add(off);
+                            ia[i] = _mm512_dpbusd_epi32(ia[i], lo, bcast(x));
+                            ia[i] = _mm512_dpbusd_epi32(ia[i], hi, bcast(x.add(4)));
+                        }
+                    }
+                    let d = _mm512_cvtph_ps(_mm256_load_si256(
+                        unit.add(640 + half * 32) as *const __m256i
+                    ));
+                    for i in 0..R {
+                        f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), d, f[i]);
+                    }
+                }
+            }
+            for i in 0..R {
+                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
+                acc[i] = _mm512_fmadd_ps(f[i], dx, acc[i]);
             }
         }
         for (i, v) in acc.iter().enumerate() {
@@ -771,12 +1120,85 @@ mod tests {
         check_against_reference(GgmlDType::Q8_0, 32, 640, 7);
     }
 
-    /// ggml `block_q5_0` and `block_q4_0` weights become Q8_0 tiles exactly: the
-    /// reference uses candle's dequantisation of the original Q5_0 / Q4_0 weight.
+    /// ggml `block_q5_0` (Gerganov et al., `ggml-quants.c`): its own 5.5-bit tiles, with
+    /// an even (896 = 28 blocks) and an odd (864 = 27 blocks) block count per row.
     #[test]
-    fn q5_0_and_q4_0_weights_repack_exactly_as_q8_0() {
+    fn q5_0_gemm_matches_dequantised_reference() {
         check_against_reference(GgmlDType::Q5_0, 16, 896, 4);
+        check_against_reference(GgmlDType::Q5_0, 32, 864, 5);
+    }
+
+    /// ggml `block_q4_0` weights become Q8_0 tiles exactly: the reference uses candle's
+    /// dequantisation of the original Q4_0 weight.
+    #[test]
+    fn q4_0_weights_repack_exactly_as_q8_0() {
         check_against_reference(GgmlDType::Q4_0, 16, 320, 3);
+    }
+
+    /// A packed row dequantises to exactly candle's `dequantize` of the file's row
+    /// (ggml `dequantize_row_*`, same operation order), for every tile format: a tied
+    /// token embedding can be read from the output projection's tiles.
+    #[test]
+    fn packed_rows_dequantise_like_candle() {
+        for (dtype, k) in [
+            (GgmlDType::Q4K, 512),
+            (GgmlDType::Q6K, 768),
+            (GgmlDType::Q5_0, 864),
+            (GgmlDType::Q8_0, 640),
+            (GgmlDType::Q4_0, 320),
+        ] {
+            let n = 32;
+            let qt = quantised(dtype, n, k, 6);
+            let p = Packed::new(&qt).expect("pack").expect("covered");
+            let want = qt
+                .dequantize(&Device::Cpu)
+                .and_then(|t| t.flatten_all())
+                .and_then(|t| t.to_vec1::<f32>())
+                .expect("dequantize");
+            for r in 0..n {
+                assert_eq!(
+                    bits(&p.row(r)),
+                    bits(&want[r * k..(r + 1) * k]),
+                    "{dtype:?} row {r}"
+                );
+            }
+        }
+    }
+
+    /// Several weights in one pool call give the bits of separate calls.
+    #[test]
+    fn fused_weights_equal_separate_calls() {
+        if !available() {
+            return;
+        }
+        let k = 512;
+        let ws: Vec<Packed> = [
+            GgmlDType::Q4K,
+            GgmlDType::Q6K,
+            GgmlDType::Q5_0,
+            GgmlDType::Q8_0,
+        ]
+        .iter()
+        .enumerate()
+        .map(|(i, &t)| {
+            Packed::new(&quantised(t, 16 * (i + 1), k, i as u64))
+                .expect("pack")
+                .expect("covered")
+        })
+        .collect();
+        let refs: Vec<&Packed> = ws.iter().collect();
+        for m in [1, 5] {
+            let x = values(m, k, 2);
+            let fused = Packed::forward_many(&refs, &x, m);
+            for (w, y) in ws.iter().zip(&fused) {
+                assert_eq!(
+                    bits(y),
+                    bits(&w.forward(&x, m)),
+                    "{:?}, {m} rows",
+                    w.format()
+                );
+            }
+        }
     }
 
     /// Activation quantisation is ggml's Q8_K rule as candle implements it
@@ -808,6 +1230,7 @@ mod tests {
         for (dtype, k) in [
             (GgmlDType::Q4K, 512),
             (GgmlDType::Q6K, 256),
+            (GgmlDType::Q5_0, 352),
             (GgmlDType::Q8_0, 320),
         ] {
             let (n, m) = (32, 37);
@@ -833,15 +1256,20 @@ mod tests {
         if !available() {
             return;
         }
-        for dtype in [GgmlDType::Q4K, GgmlDType::Q6K, GgmlDType::Q8_0] {
+        for dtype in [
+            GgmlDType::Q4K,
+            GgmlDType::Q6K,
+            GgmlDType::Q5_0,
+            GgmlDType::Q8_0,
+        ] {
             let (n, k, m) = (256, 512, 37);
             let p = Packed::new(&quantised(dtype, n, k, 4))
                 .expect("pack")
                 .expect("covered");
             let x = values(m, k, 8);
             assert_eq!(
-                bits(&p.run(&x, m, true)),
-                bits(&p.run(&x, m, false)),
+                bits(&Packed::run(&[&p], &x, m, true)[0]),
+                bits(&Packed::run(&[&p], &x, m, false)[0]),
                 "{dtype:?}"
             );
         }

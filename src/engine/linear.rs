@@ -42,8 +42,9 @@ const DENSE_MIN_ROWS: usize = 4;
 
 /// One weight matrix `n × k` (GGUF stores it as out-features by in-features).
 pub struct Linear {
-    /// This crate's int8 tiles; when set they serve every row count.
-    packed: Option<Packed>,
+    /// This crate's int8 tiles; when set they serve every row count. Shared with the
+    /// token embedding when the output projection is tied to it.
+    packed: Option<Arc<Packed>>,
     /// Quantised kernel; serves every row count unless `dense` or `packed` is set.
     quant: Option<QMatMul>,
     /// Dequantised f16 copy for prompts of `DENSE_MIN_ROWS` rows or more; only for
@@ -120,7 +121,7 @@ impl Linear {
             if let Some(p) = Packed::new(&qt)? {
                 // The file's copy of the weight is dropped with `qt`.
                 return Ok(Linear {
-                    packed: Some(p),
+                    packed: Some(Arc::new(p)),
                     quant: None,
                     dense: None,
                     k_pad: k,
@@ -178,25 +179,65 @@ impl Linear {
         ))
     }
 
-    /// Kernel for the output projection, which shares its table with the embedding and
-    /// must not be copied: a Q8_0 table candle cannot pack goes through this module's
-    /// VNNI kernel, anything else through candle's `QMatMul`.
+    /// Kernel for the output projection, which may share its table with the token
+    /// embedding and must not be copied twice: this crate's tiles when the table packs
+    /// (the embedding then reads its rows from them, see `Embedding::packed`), a Q8_0
+    /// table that does not pack through this module's VNNI kernel, anything else
+    /// through candle's `QMatMul`.
     pub fn output(qt: Arc<QTensor>, policy: MatmulPolicy) -> candle_core::Result<Self> {
         let (n, k) = qt.shape().dims2()?;
+        if policy == MatmulPolicy::Reference {
+            return Self::dense_f32(&qt);
+        }
+        if kernels::enabled() {
+            if let Some(p) = Packed::new(&qt)? {
+                return Ok(Self::from_packed(Arc::new(p)));
+            }
+        }
         #[cfg(target_arch = "x86_64")]
-        let vnni = policy == MatmulPolicy::Fast
-            && qt.dtype() == GgmlDType::Q8_0
+        let vnni = qt.dtype() == GgmlDType::Q8_0
             && !packed_kernel(qt.dtype(), n, k)
             && q8_0_vnni::available();
         #[cfg(not(target_arch = "x86_64"))]
         let vnni = false;
-        if policy == MatmulPolicy::Reference {
-            return Self::dense_f32(&qt);
-        }
         Ok(Linear {
             vnni,
             ..Self::quantised(QMatMul::QTensor(qt), n, k)
         })
+    }
+
+    /// A weight already in this crate's tiles.
+    pub fn from_packed(p: Arc<Packed>) -> Self {
+        Linear {
+            n: p.n,
+            k: p.k,
+            k_pad: p.k,
+            packed: Some(p),
+            quant: None,
+            dense: None,
+            vnni: false,
+        }
+    }
+
+    /// The tiles of this weight, when it has them.
+    pub fn packed(&self) -> Option<&Arc<Packed>> {
+        self.packed.as_ref()
+    }
+
+    /// Multiply the same rows `x` by several weights of input width `k`: one pool call
+    /// when all of them have tiles, separate calls otherwise. Bit-identical either way.
+    pub fn forward_fused(
+        weights: &[&Linear],
+        x: &[f32],
+        m: usize,
+    ) -> Result<Vec<Vec<f32>>, EngineError> {
+        let tiles: Option<Vec<&Packed>> = weights.iter().map(|w| w.packed.as_deref()).collect();
+        match tiles {
+            Some(t) if t.iter().all(|p| p.k == weights[0].k) && x.len() == m * weights[0].k => {
+                Ok(Packed::forward_many(&t, x, m))
+            }
+            _ => weights.iter().map(|w| w.forward(x, m)).collect(),
+        }
     }
 
     /// Bytes held by this weight's own copies (candle's packed tiles not counted).
@@ -212,7 +253,7 @@ impl Linear {
             .dense
             .as_ref()
             .map_or(0, |t| t.elem_count() * t.dtype().size_in_bytes());
-        q + d + self.packed.as_ref().map_or(0, Packed::bytes)
+        q + d + self.packed.as_ref().map_or(0, |p| p.bytes())
     }
 
     /// Multiply `m` rows of `x` (`m × k`, row-major) by the weight: `m × n`.
@@ -269,11 +310,18 @@ impl Linear {
 
 /// Token embedding table kept quantised; rows are dequantised when looked up.
 pub struct Embedding {
-    table: Arc<QTensor>,
+    table: EmbedTable,
     /// Embedding width.
     pub hidden: usize,
     /// Rows (vocabulary entries).
     pub rows: usize,
+}
+
+enum EmbedTable {
+    /// The file's tensor.
+    File(Arc<QTensor>),
+    /// The tiles of a tied output projection (the file's copy is dropped).
+    Packed(Arc<Packed>),
 }
 
 impl Embedding {
@@ -281,28 +329,33 @@ impl Embedding {
     pub fn new(table: Arc<QTensor>) -> candle_core::Result<Self> {
         let (rows, hidden) = table.shape().dims2()?;
         Ok(Embedding {
-            table,
+            table: EmbedTable::File(table),
             hidden,
             rows,
         })
     }
 
-    /// Bytes of the quantised table.
-    pub fn bytes(&self) -> usize {
-        self.table.storage_size_in_bytes()
+    /// Read rows from the tiles of a tied output projection; they dequantise to the
+    /// file's values exactly (`Packed::row`).
+    pub fn packed(tiles: Arc<Packed>) -> Self {
+        Embedding {
+            hidden: tiles.k,
+            rows: tiles.n,
+            table: EmbedTable::Packed(tiles),
+        }
     }
 
-    /// The shared table, for a tied output projection.
-    pub fn table(&self) -> Arc<QTensor> {
-        self.table.clone()
+    /// Bytes of the table held (shared tiles counted here too).
+    pub fn bytes(&self) -> usize {
+        match &self.table {
+            EmbedTable::File(t) => t.storage_size_in_bytes(),
+            EmbedTable::Packed(p) => p.bytes(),
+        }
     }
 
     /// Dequantised rows for `tokens`, concatenated (`tokens.len() × hidden`).
     pub fn lookup(&self, tokens: &[u32]) -> Result<Vec<f32>, EngineError> {
         let ctx = "embedding lookup";
-        let dtype = self.table.dtype();
-        let row_bytes = self.hidden / dtype.block_size() * dtype.type_size();
-        let data = self.table.data().map_err(EngineError::candle(ctx))?;
         let mut out = Vec::with_capacity(tokens.len() * self.hidden);
         for &t in tokens {
             let t = t as usize;
@@ -312,6 +365,16 @@ impl Embedding {
                     self.rows
                 )));
             }
+            let table = match &self.table {
+                EmbedTable::Packed(p) => {
+                    out.extend_from_slice(&p.row(t));
+                    continue;
+                }
+                EmbedTable::File(table) => table,
+            };
+            let dtype = table.dtype();
+            let row_bytes = self.hidden / dtype.block_size() * dtype.type_size();
+            let data = table.data().map_err(EngineError::candle(ctx))?;
             let bytes = &data[t * row_bytes..(t + 1) * row_bytes];
             let storage = QStorage::from_data(Cow::Borrowed(bytes), &Device::Cpu, dtype)
                 .map_err(EngineError::candle(ctx))?;
@@ -552,6 +615,8 @@ pub(crate) fn attention(
     let mut out = vec![0f32; m * q_dim];
     let shared = SharedOut(out.as_mut_ptr());
     let scale = c.scale;
+    #[cfg(target_arch = "x86_64")]
+    let simd = d.is_multiple_of(16) && d <= 256 && attn_simd::available();
     candle_core::utils::barrier_pool().execute_chunked(m * heads, |units| {
         let mut scores = Vec::new();
         for u in units {
@@ -560,10 +625,21 @@ pub(crate) fn attention(
             let p = pos0 + r;
             let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
             let qv = &q[u * d..(u + 1) * d];
+            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
+            // `out` outlives the pool call and no other unit touches this range.
+            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
+            let keys = &kc[g * d..];
+            let vals = &vc[g * d..];
+            #[cfg(target_arch = "x86_64")]
+            if simd {
+                // SAFETY: features checked by `available()`; d is a multiple of 16.
+                unsafe { attn_simd::attend(qv, keys, vals, kv_dim, lo, p, scale, o, &mut scores) };
+                continue;
+            }
             scores.clear();
             let mut max = f32::NEG_INFINITY;
             for j in lo..=p {
-                let s = dot(qv, &kc[j * kv_dim + g * d..][..d]) * scale;
+                let s = dot(qv, &keys[j * kv_dim..][..d]) * scale;
                 max = max.max(s);
                 scores.push(s);
             }
@@ -572,18 +648,93 @@ pub(crate) fn attention(
                 *s = (*s - max).exp();
                 sum += *s;
             }
-            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
-            // `out` outlives the pool call and no other unit touches this range.
-            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
             for (s, j) in scores.iter().zip(lo..=p) {
                 let wgt = s / sum;
-                let vr = &vc[j * kv_dim + g * d..][..d];
+                let vr = &vals[j * kv_dim..][..d];
                 o.iter_mut().zip(vr).for_each(|(o, v)| *o += wgt * v);
             }
         }
     });
     debug_assert_eq!(out.len(), m * q_dim);
     out
+}
+
+/// Attention of one query head with AVX-512: scores of four keys at a time (four
+/// independent accumulators, each key summed in the same order whatever its group),
+/// then the weighted sum of values held in registers. A key's score and the output do
+/// not depend on the other rows or heads of the call.
+#[cfg(target_arch = "x86_64")]
+mod attn_simd {
+    use std::arch::x86_64::*;
+
+    pub fn available() -> bool {
+        is_x86_feature_detected!("avx512f")
+    }
+
+    /// One head: `q` (`d` values), key and value rows `j` at `j * stride` of `keys` /
+    /// `vals` for `j` in `lo..=p`; writes `out` (`d` values).
+    #[target_feature(enable = "avx512f")]
+    #[allow(clippy::too_many_arguments)]
+    pub unsafe fn attend(
+        q: &[f32],
+        keys: &[f32],
+        vals: &[f32],
+        stride: usize,
+        lo: usize,
+        p: usize,
+        scale: f32,
+        out: &mut [f32],
+        scores: &mut Vec<f32>,
+    ) {
+        let d = q.len();
+        let chunks = d / 16;
+        assert!(chunks * 16 == d && chunks <= 16 && out.len() == d);
+        assert!(keys.len() >= p * stride + d && vals.len() >= p * stride + d);
+        let mut qv = [_mm512_setzero_ps(); 16];
+        for (c, v) in qv.iter_mut().enumerate().take(chunks) {
+            *v = _mm512_loadu_ps(q.as_ptr().add(16 * c));
+        }
+        let kp = keys.as_ptr();
+        let score = |acc: __m512| _mm512_reduce_add_ps(acc) * scale;
+        scores.clear();
+        let mut j = lo;
+        while j + 4 <= p + 1 {
+            let mut acc = [_mm512_setzero_ps(); 4];
+            for (c, qc) in qv.iter().enumerate().take(chunks) {
+                for (t, a) in acc.iter_mut().enumerate() {
+                    let k = _mm512_loadu_ps(kp.add((j + t) * stride + 16 * c));
+                    *a = _mm512_fmadd_ps(*qc, k, *a);
+                }
+            }
+            scores.extend(acc.map(score));
+            j += 4;
+        }
+        while j <= p {
+            let mut a = _mm512_setzero_ps();
+            for (c, qc) in qv.iter().enumerate().take(chunks) {
+                a = _mm512_fmadd_ps(*qc, _mm512_loadu_ps(kp.add(j * stride + 16 * c)), a);
+            }
+            scores.push(score(a));
+            j += 1;
+        }
+        let max = scores.iter().fold(f32::NEG_INFINITY, |m, &s| m.max(s));
+        let mut sum = 0f32;
+        for s in scores.iter_mut() {
+            *s = (*s - max).exp();
+            sum += *s;
+        }
+        let mut o = [_mm512_setzero_ps(); 16];
+        let vp = vals.as_ptr();
+        for (s, j) in scores.iter().zip(lo..=p) {
+            let w = _mm512_set1_ps(s / sum);
+            for (c, oc) in o.iter_mut().enumerate().take(chunks) {
+                *oc = _mm512_fmadd_ps(w, _mm512_loadu_ps(vp.add(j * stride + 16 * c)), *oc);
+            }
+        }
+        for (c, oc) in o.iter().enumerate().take(chunks) {
+            _mm512_storeu_ps(out.as_mut_ptr().add(16 * c), *oc);
+        }
+    }
 }
 
 /// Dot product with eight independent lanes (vectorises; fixed order, deterministic).

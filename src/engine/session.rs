@@ -119,7 +119,7 @@ impl JudgeModel {
 
     /// The token limit of one sequence.
     pub fn context_limit(&self) -> usize {
-        self.decoder.config().context_length
+        self.decoder.config().context_limit
     }
 
     /// Tokens of a chat prompt: template text as trusted tokens, message contents
@@ -243,8 +243,14 @@ impl JudgeModel {
             }
             Some(c) => {
                 let mut cache = c.cache;
-                let logits = self.decoder.forward_last(&mut cache, &tokens[c.tokens.len()..])?;
-                self.count((tokens.len() - c.tokens.len()) as u64, c.tokens.len() as u64, 0);
+                let logits = self
+                    .decoder
+                    .forward_last(&mut cache, &tokens[c.tokens.len()..])?;
+                self.count(
+                    (tokens.len() - c.tokens.len()) as u64,
+                    c.tokens.len() as u64,
+                    0,
+                );
                 Ok((cache, logits))
             }
             None => {
@@ -285,10 +291,9 @@ impl JudgeModel {
             .max()
             .unwrap_or(0);
         self.check_len(item, longest)?;
-        let shared = requests
-            .iter()
-            .skip(1)
-            .fold(first.prefix.len(), |acc, r| acc.min(lcp(&first.prefix, &r.prefix)));
+        let shared = requests.iter().skip(1).fold(first.prefix.len(), |acc, r| {
+            acc.min(lcp(&first.prefix, &r.prefix))
+        });
         let shared = shared.max(1).min(first.prefix.len());
         if !self.reuse {
             return requests
@@ -471,7 +476,13 @@ impl JudgeModel {
         Ok(idx
             .into_iter()
             .take(k)
-            .map(|i| (i as u32, self.tokenizer.piece(i as u32), (lp[i] as f64).exp()))
+            .map(|i| {
+                (
+                    i as u32,
+                    self.tokenizer.piece(i as u32),
+                    (lp[i] as f64).exp(),
+                )
+            })
             .collect())
     }
 }

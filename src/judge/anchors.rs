@@ -62,7 +62,7 @@ impl AnchorPool {
                         .map(|i| (a, i))
                 })
                 .collect();
-            candidates.sort_by(|x, y| x.0.item_id().cmp(&y.0.item_id()));
+            candidates.sort_by_key(|x| x.0.item_id());
             let mut rng = ChaCha8Rng::seed_from_u64(seed);
             candidates.shuffle(&mut rng);
             let mut chosen: Vec<(&AnswerRecord, usize)> = Vec::new();

@@ -77,10 +77,22 @@ pub fn grade_item(
     }
     let mut rationales = vec![None; built.len()];
     if opts.reasoning {
-        let texts = backend.continue_forms(&id, &built, opts.reasoning_tokens, &["Score:", "score:"], opts.seed)?;
+        let texts = backend.continue_forms(
+            &id,
+            &built,
+            opts.reasoning_tokens,
+            &["Score:", "score:"],
+            opts.seed,
+        )?;
         for ((i, f), text) in built.iter_mut().enumerate().zip(texts) {
             let text = text.trim().to_string();
-            f.prefill = format!("{}{}{}\n{}", f.prefill, if text.is_empty() { "" } else { " " }, text, SCORE_PREFILL);
+            f.prefill = format!(
+                "{}{}{}\n{}",
+                f.prefill,
+                if text.is_empty() { "" } else { " " },
+                text,
+                SCORE_PREFILL
+            );
             rationales[i] = Some(text);
         }
     }
@@ -153,10 +165,7 @@ pub fn summarize(records: &[GradeRecord], seed: u64) -> Result<Vec<SummaryRow>, 
             .filter(|r| r.system == system && r.criterion == criterion)
             .collect();
         let x: Vec<f64> = sel.iter().map(|r| r.expected).collect();
-        let argmax: Vec<f64> = sel
-            .iter()
-            .map(|r| label_value(&r.argmax))
-            .collect();
+        let argmax: Vec<f64> = sel.iter().map(|r| label_value(&r.argmax)).collect();
         let n = x.len();
         let mean = x.iter().sum::<f64>() / n as f64;
         let (ci_low, ci_high) = if n >= 2 {

@@ -113,8 +113,8 @@ impl Backend for JudgeModel {
         stops: &[&str],
         seed: u64,
     ) -> Result<String, EngineError> {
-        let mut texts = self.continue_forms(item, std::slice::from_ref(form), max_tokens, stops, seed)?;
+        let mut texts =
+            self.continue_forms(item, std::slice::from_ref(form), max_tokens, stops, seed)?;
         Ok(texts.pop().expect("one form gives one text"))
     }
 }
-

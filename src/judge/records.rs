@@ -61,6 +61,9 @@ pub struct PairRecord {
 impl PairRecord {
     /// Key used for resuming.
     pub fn key(&self) -> String {
-        format!("{}/{}/{}/{}", self.question_id, self.criterion, self.first, self.second)
+        format!(
+            "{}/{}/{}/{}",
+            self.question_id, self.criterion, self.first, self.second
+        )
     }
 }

@@ -10,7 +10,10 @@ use crate::rubric::forms::Form;
 use crate::rubric::Criterion;
 
 /// Ask the judge for 3-5 evaluation steps for `criterion`; greedy, so repeatable.
-pub fn generate_steps(backend: &dyn Backend, criterion: &Criterion) -> Result<Vec<String>, EngineError> {
+pub fn generate_steps(
+    backend: &dyn Backend,
+    criterion: &Criterion,
+) -> Result<Vec<String>, EngineError> {
     let points: Vec<String> = criterion
         .points
         .iter()
@@ -26,7 +29,13 @@ pub fn generate_steps(backend: &dyn Backend, criterion: &Criterion) -> Result<Ve
         ),
         prefill: "1.".into(),
     };
-    let text = backend.continue_form(&format!("steps for `{}`", criterion.key), &form, 160, &["\n\n\n"], 0)?;
+    let text = backend.continue_form(
+        &format!("steps for `{}`", criterion.key),
+        &form,
+        160,
+        &["\n\n\n"],
+        0,
+    )?;
     Ok(parse_steps(&format!("1.{text}")))
 }
 
@@ -53,6 +62,9 @@ mod tests {
     #[test]
     fn numbered_lines_become_steps() {
         let s = parse_steps("1. Read the reference.\n2) Compare the facts.\nnoise\n3: Decide.\n");
-        assert_eq!(s, vec!["Read the reference.", "Compare the facts.", "Decide."]);
+        assert_eq!(
+            s,
+            vec!["Read the reference.", "Compare the facts.", "Decide."]
+        );
     }
 }

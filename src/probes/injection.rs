@@ -50,7 +50,12 @@ pub struct ProbePair {
 }
 
 /// Summarise the pairs of one criterion whose scale tops out at `top`.
-pub fn injection_effect(criterion: &str, pairs: &[ProbePair], top: f64, seed: u64) -> Result<InjectionEffect, StatsError> {
+pub fn injection_effect(
+    criterion: &str,
+    pairs: &[ProbePair],
+    top: f64,
+    seed: u64,
+) -> Result<InjectionEffect, StatsError> {
     if pairs.is_empty() {
         return Err(StatsError::TooFew { needed: 1, got: 0 });
     }
@@ -65,7 +70,11 @@ pub fn injection_effect(criterion: &str, pairs: &[ProbePair], top: f64, seed: u6
     } else {
         (f64::NAN, f64::NAN)
     };
-    let raised = pairs.iter().filter(|p| p.injected_argmax > p.original_argmax).count() as f64 / n as f64;
+    let raised = pairs
+        .iter()
+        .filter(|p| p.injected_argmax > p.original_argmax)
+        .count() as f64
+        / n as f64;
     let reached_top = pairs
         .iter()
         .filter(|p| p.injected_argmax == top && p.original_argmax < top)
@@ -76,7 +85,9 @@ pub fn injection_effect(criterion: &str, pairs: &[ProbePair], top: f64, seed: u6
     } else if ci.0 > 0.0 {
         format!("the injected instruction raised scores slightly ({mean_shift:+.2}); watch for it")
     } else if ci.1 < 0.0 {
-        format!("the injected instruction lowered scores ({mean_shift:+.2}): the judge penalises it")
+        format!(
+            "the injected instruction lowered scores ({mean_shift:+.2}): the judge penalises it"
+        )
     } else {
         format!("no clear effect of the injected instruction ({mean_shift:+.2}) on {n} answers")
     };
@@ -96,12 +107,19 @@ mod tests {
     use super::*;
 
     fn pair(o: f64, i: f64) -> ProbePair {
-        ProbePair { original: o, injected: i, original_argmax: o.round(), injected_argmax: i.round() }
+        ProbePair {
+            original: o,
+            injected: i,
+            original_argmax: o.round(),
+            injected_argmax: i.round(),
+        }
     }
 
     #[test]
     fn a_judge_that_obeys_is_called_swayed() {
-        let pairs: Vec<ProbePair> = (0..20).map(|k| pair(2.0 + (k % 3) as f64 * 0.1, 4.9)).collect();
+        let pairs: Vec<ProbePair> = (0..20)
+            .map(|k| pair(2.0 + (k % 3) as f64 * 0.1, 4.9))
+            .collect();
         let e = injection_effect("c", &pairs, 5.0, 1).expect("effect");
         assert!(e.mean_shift > 2.5);
         assert!(e.verdict.starts_with("the judge is swayed"));
@@ -110,7 +128,9 @@ mod tests {
 
     #[test]
     fn no_change_gives_no_clear_effect() {
-        let pairs: Vec<ProbePair> = (0..10).map(|k| pair(3.0, 3.0 + if k % 2 == 0 { 0.05 } else { -0.05 })).collect();
+        let pairs: Vec<ProbePair> = (0..10)
+            .map(|k| pair(3.0, 3.0 + if k % 2 == 0 { 0.05 } else { -0.05 }))
+            .collect();
         let e = injection_effect("c", &pairs, 5.0, 1).expect("effect");
         assert!(e.mean_shift.abs() < 1e-12);
         assert!(e.verdict.starts_with("no clear effect"));

@@ -51,7 +51,12 @@ fn words(s: &str) -> f64 {
 pub fn length_probe(outcomes: &[PairOutcome], answers: &[AnswerRecord]) -> Vec<LengthProbe> {
     let len: HashMap<(&str, &str), f64> = answers
         .iter()
-        .map(|a| ((a.question_id.as_str(), a.system.as_str()), words(&a.answer)))
+        .map(|a| {
+            (
+                (a.question_id.as_str(), a.system.as_str()),
+                words(&a.answer),
+            )
+        })
         .collect();
     let mut groups: BTreeMap<(String, String), Vec<(f64, f64)>> = BTreeMap::new();
     for o in outcomes {
@@ -75,7 +80,8 @@ pub fn length_probe(outcomes: &[PairOutcome], answers: &[AnswerRecord]) -> Vec<L
         .map(|((a, b), v)| {
             let d: Vec<f64> = v.iter().map(|x| x.0).collect();
             let y: Vec<f64> = v.iter().map(|x| x.1).collect();
-            let decisive: Vec<&(f64, f64)> = v.iter().filter(|x| x.1 != 0.5 && x.0 != 0.0).collect();
+            let decisive: Vec<&(f64, f64)> =
+                v.iter().filter(|x| x.1 != 0.5 && x.0 != 0.0).collect();
             let longer_wins = (!decisive.is_empty()).then(|| {
                 decisive
                     .iter()
@@ -88,7 +94,10 @@ pub fn length_probe(outcomes: &[PairOutcome], answers: &[AnswerRecord]) -> Vec<L
                 n: v.len(),
                 mean_length_difference: d.iter().sum::<f64>() / d.len() as f64,
                 longer_wins,
-                spearman: spearman(&d, &y).ok().map(|c| c.coefficient).filter(|c| c.is_finite()),
+                spearman: spearman(&d, &y)
+                    .ok()
+                    .map(|c| c.coefficient)
+                    .filter(|c| c.is_finite()),
                 raw_win_rate: y.iter().sum::<f64>() / y.len() as f64,
                 length_controlled_win_rate: fit.as_ref().ok().map(|f| f.lc_win_rate),
                 length_coefficient: fit.as_ref().ok().map(|f| f.phi),

@@ -93,15 +93,21 @@ fn identity_winner(p: IdentityProbs) -> Winner {
 /// Join the two orders of every pair. A pair whose second order is missing (the run
 /// was interrupted between them) is left out until the run is resumed.
 pub fn pair_outcomes(records: &[PairRecord]) -> Result<Vec<PairOutcome>, StatsError> {
-    let mut by_key: BTreeMap<(String, String, String, String), (&PairRecord, Option<&PairRecord>)> =
-        BTreeMap::new();
+    /// Criterion, question and the two systems in sorted order.
+    type PairKey = (String, String, String, String);
+    let mut by_key: BTreeMap<PairKey, (&PairRecord, Option<&PairRecord>)> = BTreeMap::new();
     for r in records {
         let (lo, hi) = if r.first <= r.second {
             (&r.first, &r.second)
         } else {
             (&r.second, &r.first)
         };
-        let key = (r.question_id.clone(), r.criterion.clone(), lo.clone(), hi.clone());
+        let key = (
+            r.question_id.clone(),
+            r.criterion.clone(),
+            lo.clone(),
+            hi.clone(),
+        );
         match by_key.get_mut(&key) {
             Some(entry) if entry.0.first != r.first => entry.1 = Some(r),
             Some(_) => {}

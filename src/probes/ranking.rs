@@ -11,7 +11,7 @@ use std::collections::BTreeSet;
 use serde::Serialize;
 
 use super::PairOutcome;
-use crate::stats::bootstrap::{percentile_interval, bootstrap_replicates};
+use crate::stats::bootstrap::{bootstrap_replicates, percentile_interval};
 use crate::stats::pairwise::Winner;
 use crate::stats::ranking::bradley_terry;
 use crate::stats::StatsError;
@@ -57,6 +57,7 @@ pub struct Ranking {
 }
 
 /// One virtual tie (half a win each way) between every pair of systems that met.
+#[allow(clippy::needless_range_loop)] // updates w[i][j] and w[j][i] together
 fn with_virtual_ties(mut w: Vec<Vec<f64>>) -> Vec<Vec<f64>> {
     let n = w.len();
     for i in 0..n {
@@ -100,7 +101,11 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
         Ok(bt) => (bt, None),
         Err(_) => {
             // A disconnected graph stays an error: virtual ties only join systems that met.
-            let bt = bradley_terry(&with_virtual_ties(wins_matrix(&all, &systems)), 1e-10, 10_000)?;
+            let bt = bradley_terry(
+                &with_virtual_ties(wins_matrix(&all, &systems)),
+                1e-10,
+                10_000,
+            )?;
             let note = "a system won or lost every comparison, so the plain Bradley-Terry estimate is infinite; one virtual tie per compared pair of systems keeps it finite and pulls ratings slightly together";
             (bt, Some(note.to_string()))
         }
@@ -133,7 +138,11 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
         let reps = bootstrap_replicates(questions.len(), resamples, seed, |idx| {
             let chosen: Vec<&PairOutcome> = idx
                 .iter()
-                .flat_map(|&q| outcomes.iter().filter(move |o| o.question_id == questions[q]))
+                .flat_map(|&q| {
+                    outcomes
+                        .iter()
+                        .filter(move |o| o.question_id == questions[q])
+                })
                 .collect();
             let w = wins_matrix(&chosen, &systems);
             let w = if smooth { with_virtual_ties(w) } else { w };
@@ -175,7 +184,11 @@ mod tests {
     use crate::stats::pairwise::{IdentityProbs, SlotProbs};
 
     fn outcome(q: &str, a: &str, b: &str, w: Winner) -> PairOutcome {
-        let p = SlotProbs { first: 0.4, second: 0.4, tie: 0.2 };
+        let p = SlotProbs {
+            first: 0.4,
+            second: 0.4,
+            tie: 0.2,
+        };
         PairOutcome {
             question_id: q.into(),
             criterion: "overall".into(),
@@ -185,7 +198,11 @@ mod tests {
             swapped: p,
             original_winner: w,
             swapped_winner: w,
-            debiased: IdentityProbs { a: 0.4, b: 0.4, tie: 0.2 },
+            debiased: IdentityProbs {
+                a: 0.4,
+                b: 0.4,
+                tie: 0.2,
+            },
             debiased_winner: w,
             conservative_winner: w,
         }
@@ -211,7 +228,12 @@ mod tests {
     /// Systems that never met cannot be placed: an error, not a guess.
     #[test]
     fn disconnected_systems_are_an_error() {
-        let o = vec![outcome("q1", "a", "b", Winner::A), outcome("q2", "a", "b", Winner::B), outcome("q3", "c", "d", Winner::A), outcome("q4", "c", "d", Winner::B)];
+        let o = vec![
+            outcome("q1", "a", "b", Winner::A),
+            outcome("q2", "a", "b", Winner::B),
+            outcome("q3", "c", "d", Winner::A),
+            outcome("q4", "c", "d", Winner::B),
+        ];
         assert!(rank(&o, 10, 1).is_err());
     }
 }

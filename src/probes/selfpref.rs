@@ -16,7 +16,9 @@ use crate::judge::anchors::consensus_index;
 use crate::judge::GradeRecord;
 use crate::rubric::Rubric;
 use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
-use crate::stats::pairwise::{equal_opportunity_difference, own_win_rate, EqualOpportunity, Preference, Winner};
+use crate::stats::pairwise::{
+    equal_opportunity_difference, own_win_rate, EqualOpportunity, Preference, Winner,
+};
 
 /// Pointwise residual gap with its interval.
 #[derive(Debug, Clone, Serialize)]
@@ -58,8 +60,11 @@ pub struct SelfPreference {
 
 /// Majority human preference per (question, system, system): the system with more
 /// votes than the other and than ties; otherwise a tie.
-pub fn human_majority(prefs: &[PreferenceRow]) -> HashMap<(String, String, String), Option<String>> {
-    let mut votes: HashMap<(String, String, String), HashMap<Option<String>, usize>> = HashMap::new();
+pub fn human_majority(
+    prefs: &[PreferenceRow],
+) -> HashMap<(String, String, String), Option<String>> {
+    let mut votes: HashMap<(String, String, String), HashMap<Option<String>, usize>> =
+        HashMap::new();
     for p in prefs {
         let (lo, hi) = if p.system_a <= p.system_b {
             (&p.system_a, &p.system_b)
@@ -119,7 +124,11 @@ pub fn self_preference(
         };
         judge_all.push(pref);
         if let Some(m) = &majority {
-            let (lo, hi) = if o.a <= o.b { (&o.a, &o.b) } else { (&o.b, &o.a) };
+            let (lo, hi) = if o.a <= o.b {
+                (&o.a, &o.b)
+            } else {
+                (&o.b, &o.a)
+            };
             if let Some(h) = m.get(&(o.question_id.clone(), lo.clone(), hi.clone())) {
                 judge_v.push(pref);
                 human_v.push(match h {
@@ -187,7 +196,11 @@ fn pointwise_gap(
         if let Some(c) = rubric.criterion(&l.criterion) {
             if let Some(i) = c.scale.index_of(&l.score) {
                 ratings
-                    .entry((l.question_id.as_str(), l.system.as_str(), l.criterion.as_str()))
+                    .entry((
+                        l.question_id.as_str(),
+                        l.system.as_str(),
+                        l.criterion.as_str(),
+                    ))
                     .or_default()
                     .push(i);
             }
@@ -195,13 +208,24 @@ fn pointwise_gap(
     }
     let mut rows: Vec<(f64, bool)> = Vec::new();
     for g in grades {
-        let Some(c) = rubric.criterion(&g.criterion) else { continue };
-        let Some(r) = ratings.get(&(g.question_id.as_str(), g.system.as_str(), g.criterion.as_str())) else {
+        let Some(c) = rubric.criterion(&g.criterion) else {
             continue;
         };
-        let Some(ci) = consensus_index(r) else { continue };
+        let Some(r) = ratings.get(&(
+            g.question_id.as_str(),
+            g.system.as_str(),
+            g.criterion.as_str(),
+        )) else {
+            continue;
+        };
+        let Some(ci) = consensus_index(r) else {
+            continue;
+        };
         let human = c.scale.values()[ci];
-        rows.push((g.expected - human, own.contains(&(g.question_id.as_str(), g.system.as_str()))));
+        rows.push((
+            g.expected - human,
+            own.contains(&(g.question_id.as_str(), g.system.as_str())),
+        ));
     }
     let gap = |idx: &[usize]| -> Option<f64> {
         let (mut so, mut no, mut st, mut nt) = (0.0, 0usize, 0.0, 0usize);
@@ -219,12 +243,23 @@ fn pointwise_gap(
     let all: Vec<usize> = (0..rows.len()).collect();
     let difference = gap(&all)?;
     let mean = |own_side: bool| {
-        let v: Vec<f64> = rows.iter().filter(|r| r.1 == own_side).map(|r| r.0).collect();
+        let v: Vec<f64> = rows
+            .iter()
+            .filter(|r| r.1 == own_side)
+            .map(|r| r.0)
+            .collect();
         v.iter().sum::<f64>() / v.len() as f64
     };
-    let ci = bootstrap_interval(rows.len(), 2000, seed, 0.95, IntervalMethod::Percentile, gap)
-        .map(|b| (b.lower, b.upper))
-        .unwrap_or((f64::NAN, f64::NAN));
+    let ci = bootstrap_interval(
+        rows.len(),
+        2000,
+        seed,
+        0.95,
+        IntervalMethod::Percentile,
+        gap,
+    )
+    .map(|b| (b.lower, b.upper))
+    .unwrap_or((f64::NAN, f64::NAN));
     Some(PointwiseSelf {
         n_own: rows.iter().filter(|r| r.1).count(),
         n_other: rows.iter().filter(|r| !r.1).count(),

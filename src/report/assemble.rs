@@ -16,9 +16,14 @@ use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
 use crate::stats::pairwise::position_bias;
 use crate::vet::{vet, vet_pairs, CriterionReport, Variant, VariantKind, VetError, VetOptions};
 
-fn stats_err<E: std::error::Error + Send + Sync + 'static>(what: impl Into<String>) -> impl FnOnce(E) -> ReportError {
+fn stats_err<E: std::error::Error + Send + Sync + 'static>(
+    what: impl Into<String>,
+) -> impl FnOnce(E) -> ReportError {
     let what = what.into();
-    move |e| ReportError::Stats { what, source: Box::new(e) }
+    move |e| ReportError::Stats {
+        what,
+        source: Box::new(e),
+    }
 }
 
 /// Assemble the report (everything but `generated_at`).
@@ -29,7 +34,9 @@ pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
     let mut graded: BTreeSet<&str> = BTreeSet::new();
     for run in inp.runs {
         if run.records.is_empty() {
-            return Err(ReportError::EmptyRun { run: run.name.clone() });
+            return Err(ReportError::EmptyRun {
+                run: run.name.clone(),
+            });
         }
         for r in &run.records {
             if inp.rubric.criterion(&r.criterion).is_none() {
@@ -54,7 +61,11 @@ pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
             values: c.scale.values(),
         })
         .collect();
-    let opts = VetOptions { resamples: inp.resamples, seed: inp.seed, ..VetOptions::default() };
+    let opts = VetOptions {
+        resamples: inp.resamples,
+        seed: inp.seed,
+        ..VetOptions::default()
+    };
     let mut runs = Vec::new();
     for (i, run) in inp.runs.iter().enumerate() {
         runs.push(run_section(inp, run, i, &criteria, &opts)?);
@@ -90,14 +101,20 @@ fn run_section(
     criteria: &[CriterionInfo],
     opts: &VetOptions,
 ) -> Result<RunSection, ReportError> {
-    let summary = summarize(&run.records, inp.seed).map_err(stats_err(format!("the summary of run `{}`", run.name)))?;
+    let summary = summarize(&run.records, inp.seed)
+        .map_err(stats_err(format!("the summary of run `{}`", run.name)))?;
     let mut distributions = Vec::new();
     for row in &summary {
-        let k = criteria.iter().find(|c| c.key == row.criterion).map_or(0, |c| c.labels.len());
+        let k = criteria
+            .iter()
+            .find(|c| c.key == row.criterion)
+            .map_or(0, |c| c.labels.len());
         let rows: Vec<&Vec<f64>> = run
             .records
             .iter()
-            .filter(|r| r.system == row.system && r.criterion == row.criterion && r.probabilities.len() == k)
+            .filter(|r| {
+                r.system == row.system && r.criterion == row.criterion && r.probabilities.len() == k
+            })
             .map(|r| &r.probabilities)
             .collect();
         let mut mean = vec![0.0; k];
@@ -115,19 +132,29 @@ fn run_section(
     }
     let (mut trust, mut unvetted, mut vet_note) = (Vec::new(), Vec::new(), None);
     if let Some(labels) = inp.labels {
-        let variants = [Variant { name: "expected score".into(), records: &run.records, kind: VariantKind::ExpectedScore }];
+        let variants = [Variant {
+            name: "expected score".into(),
+            records: &run.records,
+            kind: VariantKind::ExpectedScore,
+        }];
         match vet(&variants, labels, inp.rubric, opts) {
             Ok(v) => {
                 trust = v.criteria.iter().map(trust_row).collect();
-                let own: BTreeSet<&str> = run.records.iter().map(|r| r.criterion.as_str()).collect();
+                let own: BTreeSet<&str> =
+                    run.records.iter().map(|r| r.criterion.as_str()).collect();
                 unvetted = v
                     .skipped
                     .iter()
                     .filter(|s| own.contains(s.criterion.as_str()))
-                    .map(|s| Unvetted { criterion: s.criterion.clone(), reason: s.reason.clone() })
+                    .map(|s| Unvetted {
+                        criterion: s.criterion.clone(),
+                        reason: s.reason.clone(),
+                    })
                     .collect();
             }
-            Err(e @ (VetError::NothingToVet { .. } | VetError::NoOverlap { .. })) => vet_note = Some(e.to_string()),
+            Err(e @ (VetError::NothingToVet { .. } | VetError::NoOverlap { .. })) => {
+                vet_note = Some(e.to_string())
+            }
             Err(e) => return Err(stats_err(format!("the vetting of run `{}`", run.name))(e)),
         }
     }
@@ -163,7 +190,11 @@ fn trust_row(c: &CriterionReport) -> TrustRow {
         raters: c.raters.len(),
         judge_kappa: t.judge_kappa_quadratic,
         human_kappa: t.human_kappa_quadratic,
-        gap: t.difference.percentile.as_ref().map(|i| Gap { estimate: i.estimate, low: i.lower, high: i.upper }),
+        gap: t.difference.percentile.as_ref().map(|i| Gap {
+            estimate: i.estimate,
+            low: i.lower,
+            high: i.upper,
+        }),
         recommended_items: t.advice.as_ref().map(|a| a.recommended),
         exact: cat.map(|k| k.exact),
         confusion: cat.map(|k| k.confusion.clone()).unwrap_or_default(),
@@ -182,7 +213,9 @@ fn trust_row(c: &CriterionReport) -> TrustRow {
 fn by_item(records: &[GradeRecord]) -> BTreeMap<(String, String), BTreeMap<String, f64>> {
     let mut m: BTreeMap<(String, String), BTreeMap<String, f64>> = BTreeMap::new();
     for r in records {
-        m.entry((r.system.clone(), r.criterion.clone())).or_default().insert(r.question_id.clone(), r.expected);
+        m.entry((r.system.clone(), r.criterion.clone()))
+            .or_default()
+            .insert(r.question_id.clone(), r.expected);
     }
     m
 }
@@ -195,17 +228,32 @@ fn deltas(inp: &Inputs) -> Result<Vec<DeltaRow>, ReportError> {
     let mut out = Vec::new();
     for run in &inp.runs[1..] {
         for ((system, criterion), after) in by_item(&run.records) {
-            let Some(b) = before.get(&(system.clone(), criterion.clone())) else { continue };
-            let pairs: Vec<(f64, f64)> = after.iter().filter_map(|(q, a)| Some((b.get(q).copied()?, *a))).collect();
+            let Some(b) = before.get(&(system.clone(), criterion.clone())) else {
+                continue;
+            };
+            let pairs: Vec<(f64, f64)> = after
+                .iter()
+                .filter_map(|(q, a)| Some((b.get(q).copied()?, *a)))
+                .collect();
             if pairs.is_empty() {
                 continue;
             }
             let n = pairs.len();
             let diffs: Vec<f64> = pairs.iter().map(|(b, a)| a - b).collect();
-            let mean = |idx: &[usize]| Some(idx.iter().map(|&i| diffs[i]).sum::<f64>() / idx.len() as f64);
+            let mean =
+                |idx: &[usize]| Some(idx.iter().map(|&i| diffs[i]).sum::<f64>() / idx.len() as f64);
             let ci = if n >= 2 {
-                let i = bootstrap_interval(n, inp.resamples, inp.seed, 0.95, IntervalMethod::Percentile, mean)
-                    .map_err(stats_err(format!("the difference of `{system}` on `{criterion}`")))?;
+                let i = bootstrap_interval(
+                    n,
+                    inp.resamples,
+                    inp.seed,
+                    0.95,
+                    IntervalMethod::Percentile,
+                    mean,
+                )
+                .map_err(stats_err(format!(
+                    "the difference of `{system}` on `{criterion}`"
+                )))?;
                 Some((i.lower, i.upper))
             } else {
                 None
@@ -214,7 +262,9 @@ fn deltas(inp: &Inputs) -> Result<Vec<DeltaRow>, ReportError> {
             let beyond_ci = ci.is_some_and(|(lo, hi)| lo > 0.0 || hi < 0.0);
             let reading = match ci {
                 None => "too few shared items for an interval".to_string(),
-                Some(_) if beyond_ci && difference > 0.0 => "higher; the 95% interval excludes 0".to_string(),
+                Some(_) if beyond_ci && difference > 0.0 => {
+                    "higher; the 95% interval excludes 0".to_string()
+                }
                 Some(_) if beyond_ci => "lower; the 95% interval excludes 0".to_string(),
                 Some(_) => "no clear change; the 95% interval includes 0".to_string(),
             };
@@ -236,14 +286,28 @@ fn deltas(inp: &Inputs) -> Result<Vec<DeltaRow>, ReportError> {
     Ok(out)
 }
 
-fn pairwise(inp: &Inputs, c: &CompareInput, opts: &VetOptions) -> Result<PairwiseSection, ReportError> {
+fn pairwise(
+    inp: &Inputs,
+    c: &CompareInput,
+    opts: &VetOptions,
+) -> Result<PairwiseSection, ReportError> {
     let criteria: BTreeSet<&str> = c.records.iter().map(|r| r.criterion.as_str()).collect();
-    let criterion = criteria.iter().next().map_or_else(|| "overall".to_string(), |s| s.to_string());
+    let criterion = criteria
+        .iter()
+        .next()
+        .map_or_else(|| "overall".to_string(), |s| s.to_string());
     let mut notes = Vec::new();
     if criteria.len() > 1 {
-        notes.push(format!("the comparison run holds several criteria; only `{criterion}` is shown"));
+        notes.push(format!(
+            "the comparison run holds several criteria; only `{criterion}` is shown"
+        ));
     }
-    let records: Vec<PairRecord> = c.records.iter().filter(|r| r.criterion == criterion).cloned().collect();
+    let records: Vec<PairRecord> = c
+        .records
+        .iter()
+        .filter(|r| r.criterion == criterion)
+        .cloned()
+        .collect();
     let outcomes = pair_outcomes(&records).map_err(stats_err("the pair outcomes"))?;
     let judged: Vec<_> = outcomes.iter().map(|o| o.judged()).collect();
     let position = if judged.is_empty() {
@@ -264,7 +328,10 @@ fn pairwise(inp: &Inputs, c: &CompareInput, opts: &VetOptions) -> Result<Pairwis
         Ok(r) => (Some(r), None),
         Err(e) => (None, Some(format!("no ranking: {e}"))),
     };
-    let length = inp.answers.map(|a| length_probe(&outcomes, a)).unwrap_or_default();
+    let length = inp
+        .answers
+        .map(|a| length_probe(&outcomes, a))
+        .unwrap_or_default();
     if inp.answers.is_none() {
         notes.push("no answers file given: no length probe".into());
     }
@@ -295,7 +362,10 @@ fn pairwise(inp: &Inputs, c: &CompareInput, opts: &VetOptions) -> Result<Pairwis
         model: c.model.clone(),
         criterion,
         pairs: outcomes.len(),
-        low_mass: records.iter().filter(|r| r.captured_mass < PAIR_LOW_MASS).count(),
+        low_mass: records
+            .iter()
+            .filter(|r| r.captured_mass < PAIR_LOW_MASS)
+            .count(),
         position,
         ranking,
         ranking_note,
@@ -314,7 +384,10 @@ fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
         labels
             .entry((&l.question_id, &l.system, &l.criterion))
             .or_default()
-            .push(HumanScore { rater: l.rater.clone(), score: l.score.clone() });
+            .push(HumanScore {
+                rater: l.rater.clone(),
+                score: l.score.clone(),
+            });
     }
     let answers: HashMap<(&str, &str), &AnswerRecord> = inp
         .answers
@@ -327,10 +400,22 @@ fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
         let mut records: Vec<&GradeRecord> = run.records.iter().collect();
         records.sort_by_key(|r| (r.question_id.clone(), r.system.clone(), r.criterion.clone()));
         for r in records {
-            let Some(c) = inp.rubric.criterion(&r.criterion) else { continue };
-            let mut human = labels.get(&(r.question_id.as_str(), r.system.as_str(), r.criterion.as_str())).cloned().unwrap_or_default();
+            let Some(c) = inp.rubric.criterion(&r.criterion) else {
+                continue;
+            };
+            let mut human = labels
+                .get(&(
+                    r.question_id.as_str(),
+                    r.system.as_str(),
+                    r.criterion.as_str(),
+                ))
+                .cloned()
+                .unwrap_or_default();
             human.sort_by(|a, b| a.rater.cmp(&b.rater));
-            let positions: Vec<usize> = human.iter().filter_map(|h| c.scale.index_of(&h.score)).collect();
+            let positions: Vec<usize> = human
+                .iter()
+                .filter_map(|h| c.scale.index_of(&h.score))
+                .collect();
             let consensus = consensus_index(&positions);
             let mut reasons = Vec::new();
             if r.low_mass {
@@ -388,16 +473,41 @@ mod tests {
     }
 
     fn run(name: &str, records: Vec<GradeRecord>) -> RunInput {
-        RunInput { name: name.into(), dir: name.into(), model: String::new(), records }
+        RunInput {
+            name: name.into(),
+            dir: name.into(),
+            model: String::new(),
+            records,
+        }
     }
 
     fn label(q: &str, rater: &str, score: &str) -> LabelRow {
-        LabelRow { question_id: q.into(), system: "sys".into(), criterion: "correctness".into(), rater: rater.into(), score: score.into(), line: 0 }
+        LabelRow {
+            question_id: q.into(),
+            system: "sys".into(),
+            criterion: "correctness".into(),
+            rater: rater.into(),
+            score: score.into(),
+            line: 0,
+        }
     }
 
     fn build_with(runs: &[RunInput], labels: Option<&[LabelRow]>) -> Report {
-        let rubric = load_rubric(&std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("judge-templates/rubrics/quick.toml")).expect("bundled rubric");
-        let inputs = Inputs { runs, compare: None, labels, preferences: None, rubric: &rubric, answers: None, seed: 7, resamples: 200 };
+        let rubric = load_rubric(
+            &std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("judge-templates/rubrics/quick.toml"),
+        )
+        .expect("bundled rubric");
+        let inputs = Inputs {
+            runs,
+            compare: None,
+            labels,
+            preferences: None,
+            rubric: &rubric,
+            answers: None,
+            seed: 7,
+            resamples: 200,
+        };
         build(&inputs).expect("report")
     }
 
@@ -406,15 +516,41 @@ mod tests {
     /// [0.5, 0.5], beyond 0; an identical rerun gives [0, 0], not beyond 0.
     #[test]
     fn constant_shift_between_runs_is_beyond_its_interval_and_no_shift_is_not() {
-        let base: Vec<GradeRecord> = [2.0, 3.0, 4.0, 4.5].iter().enumerate().map(|(i, v)| rec(&format!("q{i}"), *v, false)).collect();
-        let shifted: Vec<GradeRecord> = base.iter().map(|r| GradeRecord { expected: r.expected + 0.5, ..r.clone() }).collect();
-        let r = build_with(&[run("before", base.clone()), run("after", shifted), run("again", base)], None);
+        let base: Vec<GradeRecord> = [2.0, 3.0, 4.0, 4.5]
+            .iter()
+            .enumerate()
+            .map(|(i, v)| rec(&format!("q{i}"), *v, false))
+            .collect();
+        let shifted: Vec<GradeRecord> = base
+            .iter()
+            .map(|r| GradeRecord {
+                expected: r.expected + 0.5,
+                ..r.clone()
+            })
+            .collect();
+        let r = build_with(
+            &[
+                run("before", base.clone()),
+                run("after", shifted),
+                run("again", base),
+            ],
+            None,
+        );
         assert_eq!(r.deltas.len(), 2);
         let d = &r.deltas[0];
-        assert_eq!((d.run.as_str(), d.n_items, d.difference, d.ci, d.beyond_ci), ("after", 4, 0.5, Some((0.5, 0.5)), true));
+        assert_eq!(
+            (d.run.as_str(), d.n_items, d.difference, d.ci, d.beyond_ci),
+            ("after", 4, 0.5, Some((0.5, 0.5)), true)
+        );
         let same = &r.deltas[1];
-        assert_eq!((same.difference, same.ci, same.beyond_ci), (0.0, Some((0.0, 0.0)), false));
-        assert!(r.cautions.iter().any(|c| c.kind == CautionKind::BeforeAfter && c.message.contains("`again`")));
+        assert_eq!(
+            (same.difference, same.ci, same.beyond_ci),
+            (0.0, Some((0.0, 0.0)), false)
+        );
+        assert!(r
+            .cautions
+            .iter()
+            .any(|c| c.kind == CautionKind::BeforeAfter && c.message.contains("`again`")));
     }
 
     /// Disputed means 2 or more points from the lower-median human consensus (as in
@@ -422,12 +558,38 @@ mod tests {
     /// low captured mass is flagged whatever the humans said.
     #[test]
     fn flagged_items_are_low_mass_or_two_points_from_the_consensus() {
-        let records = vec![rec("q1", 2.5, false), rec("q2", 3.1, false), rec("q3", 4.0, true)];
-        let labels: Vec<LabelRow> = ["q1", "q2"].iter().flat_map(|q| [label(q, "a", "4"), label(q, "b", "5"), label(q, "c", "5")]).collect();
+        let records = vec![
+            rec("q1", 2.5, false),
+            rec("q2", 3.1, false),
+            rec("q3", 4.0, true),
+        ];
+        let labels: Vec<LabelRow> = ["q1", "q2"]
+            .iter()
+            .flat_map(|q| [label(q, "a", "4"), label(q, "b", "5"), label(q, "c", "5")])
+            .collect();
         let r = build_with(&[run("only", records)], Some(&labels));
-        let got: Vec<(&str, Vec<String>, Option<String>)> = r.flagged.iter().map(|f| (f.question_id.as_str(), f.reasons.clone(), f.human_consensus.clone())).collect();
-        assert_eq!(got, vec![("q1", vec!["disputed".to_string()], Some("5".to_string())), ("q3", vec!["low_mass".to_string()], None)]);
-        assert!(r.cautions.iter().any(|c| c.kind == CautionKind::LowCapturedMass));
+        let got: Vec<(&str, Vec<String>, Option<String>)> = r
+            .flagged
+            .iter()
+            .map(|f| {
+                (
+                    f.question_id.as_str(),
+                    f.reasons.clone(),
+                    f.human_consensus.clone(),
+                )
+            })
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ("q1", vec!["disputed".to_string()], Some("5".to_string())),
+                ("q3", vec!["low_mass".to_string()], None)
+            ]
+        );
+        assert!(r
+            .cautions
+            .iter()
+            .any(|c| c.kind == CautionKind::LowCapturedMass));
         assert!(!r.cautions.iter().any(|c| c.kind == CautionKind::NoLabels));
     }
 }

@@ -6,7 +6,10 @@
 use super::{Caution, CautionKind, Report, RunSection};
 
 fn list(keys: &[String]) -> String {
-    keys.iter().map(|k| format!("`{k}`")).collect::<Vec<_>>().join(", ")
+    keys.iter()
+        .map(|k| format!("`{k}`"))
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 /// Per-run cautions with equal wording are merged into one line naming the runs.
@@ -32,7 +35,11 @@ fn merge(r: &Report, per_run: Vec<(CautionKind, String, String)>) -> Vec<Caution
 }
 
 fn criteria_where(run: &RunSection, pick: impl Fn(&super::TrustRow) -> bool) -> Vec<String> {
-    run.trust.iter().filter(|t| pick(t)).map(|t| t.criterion.clone()).collect()
+    run.trust
+        .iter()
+        .filter(|t| pick(t))
+        .map(|t| t.criterion.clone())
+        .collect()
 }
 
 /// Every caution that applies to the report.
@@ -73,7 +80,14 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
             .trust
             .iter()
             .filter(|t| t.recommended_items.is_some_and(|n| n > t.n_items))
-            .map(|t| format!("`{}` ({} of about {})", t.criterion, t.n_items, t.recommended_items.unwrap_or(0)))
+            .map(|t| {
+                format!(
+                    "`{}` ({} of about {})",
+                    t.criterion,
+                    t.n_items,
+                    t.recommended_items.unwrap_or(0)
+                )
+            })
             .collect();
         if !small.is_empty() {
             add(
@@ -102,7 +116,12 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
         if !unvetted.is_empty() {
             add(
                 CautionKind::Unvetted,
-                format!("{} {} no human labels, so {} scores are unvetted", list(&unvetted), if unvetted.len() == 1 { "has" } else { "have" }, if unvetted.len() == 1 { "its" } else { "their" }),
+                format!(
+                    "{} {} no human labels, so {} scores are unvetted",
+                    list(&unvetted),
+                    if unvetted.len() == 1 { "has" } else { "have" },
+                    if unvetted.len() == 1 { "its" } else { "their" }
+                ),
             );
         }
     }
@@ -139,7 +158,12 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
     if r.runs.len() > 1 {
         for run in &r.runs[1..] {
             let base = &r.runs[0];
-            let shared: usize = r.deltas.iter().filter(|d| d.run == run.name).map(|d| d.n_items).sum();
+            let shared: usize = r
+                .deltas
+                .iter()
+                .filter(|d| d.run == run.name)
+                .map(|d| d.n_items)
+                .sum();
             let (a, b) = (graded_items(base), graded_items(run));
             if shared < a.max(b) {
                 add(

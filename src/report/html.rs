@@ -37,7 +37,11 @@ fn signed(v: Option<f64>, digits: Option<usize>) -> String {
         Some(x) if x.is_finite() => {
             let d = digits.unwrap_or(2);
             let shown = format!("{x:+.d$}");
-            if shown.trim_start_matches(['-', '+']).chars().all(|c| c == '0' || c == '.') {
+            if shown
+                .trim_start_matches(['-', '+'])
+                .chars()
+                .all(|c| c == '0' || c == '.')
+            {
                 shown.replacen('-', "+", 1)
             } else {
                 shown
@@ -59,7 +63,10 @@ fn environment() -> Result<Environment<'static>, minijinja::Error> {
 
 /// The report as one self-contained HTML page.
 pub fn render(r: &Report) -> Result<String, ReportError> {
-    let err = |source| ReportError::Render { format: "HTML", source };
+    let err = |source| ReportError::Render {
+        format: "HTML",
+        source,
+    };
     let env = environment().map_err(err)?;
     let dist: Vec<_> = r.criteria.iter().map(|c| svg::dist_chart(r, c)).collect();
     let cards: Vec<Vec<Card>> = r
@@ -71,7 +78,12 @@ pub fn render(r: &Report) -> Result<String, ReportError> {
                 .iter()
                 .filter_map(|t| {
                     let c = r.criteria.iter().find(|c| c.key == t.criterion)?;
-                    Some(Card { title: &c.title, trust: t, confusion: svg::confusion_chart(i, t, c), reliability: svg::reliability_chart(i, t, c) })
+                    Some(Card {
+                        title: &c.title,
+                        trust: t,
+                        confusion: svg::confusion_chart(i, t, c),
+                        reliability: svg::reliability_chart(i, t, c),
+                    })
                 })
                 .collect()
         })
@@ -86,7 +98,9 @@ pub fn render(r: &Report) -> Result<String, ReportError> {
         ranking => pw.and_then(|p| p.ranking.as_ref()).map(svg::ranking_chart),
         deltas => (!r.deltas.is_empty()).then(|| svg::delta_chart(&r.deltas, r.runs.len())),
     };
-    env.get_template("report.html.j2").and_then(|t| t.render(ctx)).map_err(err)
+    env.get_template("report.html.j2")
+        .and_then(|t| t.render(ctx))
+        .map_err(err)
 }
 
 #[cfg(test)]

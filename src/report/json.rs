@@ -7,7 +7,8 @@ use super::Report;
 
 /// The report as pretty-printed JSON.
 pub fn render(report: &Report) -> String {
-    let mut s = serde_json::to_string_pretty(report).expect("a report holds only serialisable data");
+    let mut s =
+        serde_json::to_string_pretty(report).expect("a report holds only serialisable data");
     s.push('\n');
     s
 }

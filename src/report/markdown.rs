@@ -48,11 +48,21 @@ fn scores_table(s: &mut String, r: &Report) {
         rule.push_str("---|");
     }
     for c in &r.criteria {
-        let _ = write!(head, " {} ({}–{}) |", c.key, c.labels[0], c.labels[c.labels.len() - 1]);
+        let _ = write!(
+            head,
+            " {} ({}–{}) |",
+            c.key,
+            c.labels[0],
+            c.labels[c.labels.len() - 1]
+        );
         rule.push_str("---|");
     }
     let _ = writeln!(s, "{head}\n{rule}");
-    let mut systems: Vec<&str> = r.runs.iter().flat_map(|run| run.summary.iter().map(|x| x.system.as_str())).collect();
+    let mut systems: Vec<&str> = r
+        .runs
+        .iter()
+        .flat_map(|run| run.summary.iter().map(|x| x.system.as_str()))
+        .collect();
     systems.sort();
     systems.dedup();
     for sys in systems {
@@ -62,9 +72,20 @@ fn scores_table(s: &mut String, r: &Report) {
                 let _ = write!(line, " {} |", cell(&run.name));
             }
             for c in &r.criteria {
-                match run.summary.iter().find(|x| x.system == sys && x.criterion == c.key) {
+                match run
+                    .summary
+                    .iter()
+                    .find(|x| x.system == sys && x.criterion == c.key)
+                {
                     Some(x) => {
-                        let _ = write!(line, " {} [{}, {}] n={} |", num(x.mean, 2), num(x.ci_low, 2), num(x.ci_high, 2), x.n);
+                        let _ = write!(
+                            line,
+                            " {} [{}, {}] n={} |",
+                            num(x.mean, 2),
+                            num(x.ci_low, 2),
+                            num(x.ci_high, 2),
+                            x.n
+                        );
                     }
                     None => line.push_str(" – |"),
                 }
@@ -84,7 +105,9 @@ fn deltas_table(s: &mut String, r: &Report) {
         r.seed
     );
     for d in &r.deltas {
-        let ci = d.ci.map_or("no interval".to_string(), |(lo, hi)| format!("[{}, {}]", num(lo, 2), num(hi, 2)));
+        let ci = d.ci.map_or("no interval".to_string(), |(lo, hi)| {
+            format!("[{}, {}]", num(lo, 2), num(hi, 2))
+        });
         let _ = writeln!(
             s,
             "| `{}` | {} | {} → {} | {} | {} | {} {} | {} |",
@@ -116,12 +139,27 @@ fn trust_table(s: &mut String, r: &Report) {
     );
     for run in vetted {
         for t in &run.trust {
-            let verdict = if t.thin_evidence { format!("**{}** (thin evidence)", t.verdict) } else { format!("**{}**", t.verdict) };
-            let gap = t.gap.map_or("n/a".to_string(), |g| format!("{} [{}, {}]", signed(g.estimate), num(g.low, 2), num(g.high, 2)));
+            let verdict = if t.thin_evidence {
+                format!("**{}** (thin evidence)", t.verdict)
+            } else {
+                format!("**{}**", t.verdict)
+            };
+            let gap = t.gap.map_or("n/a".to_string(), |g| {
+                format!(
+                    "{} [{}, {}]",
+                    signed(g.estimate),
+                    num(g.low, 2),
+                    num(g.high, 2)
+                )
+            });
             let _ = writeln!(
                 s,
                 "{}| {} | {} | {} | {} | {} | {} |",
-                if multi { format!("| {} ", cell(&run.name)) } else { String::new() },
+                if multi {
+                    format!("| {} ", cell(&run.name))
+                } else {
+                    String::new()
+                },
                 t.criterion,
                 verdict,
                 opt(t.judge_kappa, 2),
@@ -135,7 +173,11 @@ fn trust_table(s: &mut String, r: &Report) {
 
 fn pairwise(s: &mut String, r: &Report) {
     let Some(p) = &r.pairwise else { return };
-    let _ = writeln!(s, "\n### Pairwise (`{}`, {} pairs, both orders)\n", p.criterion, p.pairs);
+    let _ = writeln!(
+        s,
+        "\n### Pairwise (`{}`, {} pairs, both orders)\n",
+        p.criterion, p.pairs
+    );
     if let Some(pos) = &p.position {
         let _ = writeln!(
             s,
@@ -152,7 +194,10 @@ fn pairwise(s: &mut String, r: &Report) {
             if let Some(prior) = &k.prior {
                 let _ = writeln!(s, "Note: {prior}.\n");
             }
-            let _ = writeln!(s, "| rank | system | rating [95% CI] | wins–ties–losses |\n|---|---|---|---|");
+            let _ = writeln!(
+                s,
+                "| rank | system | rating [95% CI] | wins–ties–losses |\n|---|---|---|---|"
+            );
             for (i, row) in k.rows.iter().enumerate() {
                 let _ = writeln!(
                     s,
@@ -177,7 +222,11 @@ fn pairwise(s: &mut String, r: &Report) {
         let _ = writeln!(
             s,
             "{}- {} verdicts match the human majority on {} of {} pairs",
-            if std::ptr::eq(h, &p.human[0]) { "\n" } else { "" },
+            if std::ptr::eq(h, &p.human[0]) {
+                "\n"
+            } else {
+                ""
+            },
             h.method,
             num(h.accuracy * 100.0, 0) + "%",
             p.human_pairs
@@ -189,8 +238,16 @@ fn flagged(s: &mut String, r: &Report) {
     if r.flagged.is_empty() {
         return;
     }
-    let low = r.flagged.iter().filter(|f| f.reasons.iter().any(|x| x == "low_mass")).count();
-    let disputed = r.flagged.iter().filter(|f| f.reasons.iter().any(|x| x == "disputed")).count();
+    let low = r
+        .flagged
+        .iter()
+        .filter(|f| f.reasons.iter().any(|x| x == "low_mass"))
+        .count();
+    let disputed = r
+        .flagged
+        .iter()
+        .filter(|f| f.reasons.iter().any(|x| x == "disputed"))
+        .count();
     let _ = writeln!(
         s,
         "\n### Flagged items\n\n{} flagged: {low} with low captured mass, {disputed} where judge and human consensus differ by 2 or more points.\n",
@@ -203,7 +260,11 @@ fn flagged(s: &mut String, r: &Report) {
             format!(
                 "humans {} ({})",
                 f.human_consensus.as_deref().unwrap_or("n/a"),
-                f.human_scores.iter().map(|h| h.score.as_str()).collect::<Vec<_>>().join(", ")
+                f.human_scores
+                    .iter()
+                    .map(|h| h.score.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
             )
         };
         let _ = writeln!(
@@ -212,7 +273,11 @@ fn flagged(s: &mut String, r: &Report) {
             cell(&f.question_id),
             cell(&f.system),
             f.criterion,
-            if r.runs.len() > 1 { format!(" in `{}`", cell(&f.run)) } else { String::new() },
+            if r.runs.len() > 1 {
+                format!(" in `{}`", cell(&f.run))
+            } else {
+                String::new()
+            },
             num(f.expected, 2),
             num(f.captured_mass, 2),
             humans,
@@ -220,7 +285,11 @@ fn flagged(s: &mut String, r: &Report) {
         );
     }
     if r.flagged.len() > FLAGGED_SHOWN {
-        let _ = writeln!(s, "- … and {} more (all are in the HTML and JSON reports)", r.flagged.len() - FLAGGED_SHOWN);
+        let _ = writeln!(
+            s,
+            "- … and {} more (all are in the HTML and JSON reports)",
+            r.flagged.len() - FLAGGED_SHOWN
+        );
     }
 }
 
@@ -234,10 +303,22 @@ pub fn render(r: &Report) -> String {
             "after" => "after",
             _ => "graded",
         };
-        let _ = writeln!(s, "- run `{}` ({role}): {} grades by judge `{}`", cell(&run.name), run.records, cell(&run.model));
+        let _ = writeln!(
+            s,
+            "- run `{}` ({role}): {} grades by judge `{}`",
+            cell(&run.name),
+            run.records,
+            cell(&run.model)
+        );
     }
     if let Some(p) = &r.pairwise {
-        let _ = writeln!(s, "- comparison: {} pairs on `{}` by judge `{}`", p.pairs, p.criterion, cell(&p.model));
+        let _ = writeln!(
+            s,
+            "- comparison: {} pairs on `{}` by judge `{}`",
+            p.pairs,
+            p.criterion,
+            cell(&p.model)
+        );
     }
     if r.cautions.is_empty() {
         let _ = writeln!(s, "\nNo cautions apply.");

@@ -13,7 +13,13 @@ use super::{CriterionInfo, DeltaRow, Position, Report, TrustRow};
 use crate::probes::ranking::Ranking;
 
 /// Okabe-Ito colours ordered low (vermillion) to high (blue) for ordinal scales.
-const ORDINAL: [(u8, u8, u8); 5] = [(0xD5, 0x5E, 0x00), (0xE6, 0x9F, 0x00), (0xF0, 0xE4, 0x42), (0x56, 0xB4, 0xE9), (0x00, 0x72, 0xB2)];
+const ORDINAL: [(u8, u8, u8); 5] = [
+    (0xD5, 0x5E, 0x00),
+    (0xE6, 0x9F, 0x00),
+    (0xF0, 0xE4, 0x42),
+    (0x56, 0xB4, 0xE9),
+    (0x00, 0x72, 0xB2),
+];
 
 /// Fill and text colour of scale position `i` of `k` labels.
 fn ordinal_colour(i: usize, k: usize) -> (String, &'static str) {
@@ -32,9 +38,17 @@ fn ordinal_colour(i: usize, k: usize) -> (String, &'static str) {
         let t = i as f64 / (k - 1).max(1) as f64 * 4.0;
         let (lo, f) = ((t.floor() as usize).min(3), t - t.floor().min(3.0));
         let mix = |x: u8, y: u8| (x as f64 + (y as f64 - x as f64) * f).round() as u8;
-        (mix(ORDINAL[lo].0, ORDINAL[lo + 1].0), mix(ORDINAL[lo].1, ORDINAL[lo + 1].1), mix(ORDINAL[lo].2, ORDINAL[lo + 1].2))
+        (
+            mix(ORDINAL[lo].0, ORDINAL[lo + 1].0),
+            mix(ORDINAL[lo].1, ORDINAL[lo + 1].1),
+            mix(ORDINAL[lo].2, ORDINAL[lo + 1].2),
+        )
     };
-    let ink = if (r as f64 * 0.299 + g as f64 * 0.587 + b as f64 * 0.114) < 120.0 { "#ffffff" } else { "#111111" };
+    let ink = if (r as f64 * 0.299 + g as f64 * 0.587 + b as f64 * 0.114) < 120.0 {
+        "#ffffff"
+    } else {
+        "#111111"
+    };
     (format!("#{r:02X}{g:02X}{b:02X}"), ink)
 }
 
@@ -113,17 +127,35 @@ pub fn dist_chart(r: &Report, c: &CriterionInfo) -> DistChart {
     let legend = (0..k)
         .map(|i| {
             let (fill, ink) = ordinal_colour(i, k);
-            Segment { x: BAR.0 + i as f64 * 46.0, w: 40.0, fill, ink, label: c.labels[i].clone(), share: String::new(), show: true }
+            Segment {
+                x: BAR.0 + i as f64 * 46.0,
+                w: 40.0,
+                fill,
+                ink,
+                label: c.labels[i].clone(),
+                share: String::new(),
+                show: true,
+            }
         })
         .collect();
     let mut rows = Vec::new();
     // Rows grouped by system, runs in order, so before and after sit together.
-    let mut systems: Vec<&str> = r.runs.iter().flat_map(|run| run.distributions.iter().map(|d| d.system.as_str())).collect();
+    let mut systems: Vec<&str> = r
+        .runs
+        .iter()
+        .flat_map(|run| run.distributions.iter().map(|d| d.system.as_str()))
+        .collect();
     systems.sort();
     systems.dedup();
-    let pairs = systems.iter().flat_map(|s| r.runs.iter().map(move |run| (*s, run)));
+    let pairs = systems
+        .iter()
+        .flat_map(|s| r.runs.iter().map(move |run| (*s, run)));
     for (system, run) in pairs {
-        for d in run.distributions.iter().filter(|d| d.criterion == c.key && d.system == system) {
+        for d in run
+            .distributions
+            .iter()
+            .filter(|d| d.criterion == c.key && d.system == system)
+        {
             let y = TOP + rows.len() as f64 * ROW_H;
             let mut x = BAR.0;
             let segments = d
@@ -133,14 +165,31 @@ pub fn dist_chart(r: &Report, c: &CriterionInfo) -> DistChart {
                 .map(|(i, p)| {
                     let w = ((BAR.1 - BAR.0) * p * 10.0).round() / 10.0;
                     let (fill, ink) = ordinal_colour(i, k);
-                    let s = Segment { x, w, fill, ink, label: c.labels[i].clone(), share: format!("{:.0}%", p * 100.0), show: w >= 26.0 };
+                    let s = Segment {
+                        x,
+                        w,
+                        fill,
+                        ink,
+                        label: c.labels[i].clone(),
+                        share: format!("{:.0}%", p * 100.0),
+                        show: w >= 26.0,
+                    };
                     x += w;
                     s
                 })
                 .collect();
-            let s = run.summary.iter().find(|s| s.system == d.system && s.criterion == c.key);
-            let (mean, lo, hi) = s.map_or((f64::NAN, f64::NAN, f64::NAN), |s| (s.mean, s.ci_low, s.ci_high));
-            let label = if r.runs.len() > 1 { format!("{} · {}", d.system, run.name) } else { d.system.clone() };
+            let s = run
+                .summary
+                .iter()
+                .find(|s| s.system == d.system && s.criterion == c.key);
+            let (mean, lo, hi) = s.map_or((f64::NAN, f64::NAN, f64::NAN), |s| {
+                (s.mean, s.ci_low, s.ci_high)
+            });
+            let label = if r.runs.len() > 1 {
+                format!("{} · {}", d.system, run.name)
+            } else {
+                d.system.clone()
+            };
             rows.push(DistRow {
                 y,
                 segments,
@@ -150,7 +199,11 @@ pub fn dist_chart(r: &Report, c: &CriterionInfo) -> DistChart {
                     x: map(mean, vlo, vhi, MEAN.0, MEAN.1),
                     lo: fin(lo).map(|v| map(v, vlo, vhi, MEAN.0, MEAN.1)),
                     hi: fin(hi).map(|v| map(v, vlo, vhi, MEAN.0, MEAN.1)),
-                    value: if mean.is_finite() { format!("{mean:.2}") } else { "n/a".into() },
+                    value: if mean.is_finite() {
+                        format!("{mean:.2}")
+                    } else {
+                        "n/a".into()
+                    },
                     note: format!("n={}", d.n),
                     solid: true,
                 },
@@ -159,8 +212,24 @@ pub fn dist_chart(r: &Report, c: &CriterionInfo) -> DistChart {
         }
     }
     let axis_y = TOP + rows.len() as f64 * ROW_H;
-    let ticks = c.labels.iter().zip(&c.values).map(|(l, v)| Tick { x: map(*v, vlo, vhi, MEAN.0, MEAN.1), label: l.clone() }).collect();
-    DistChart { id: format!("dist-{}", c.key), title: format!("{}: judge's score distribution and mean", c.title), height: axis_y + 36.0, legend, rows, ticks, axis_y }
+    let ticks = c
+        .labels
+        .iter()
+        .zip(&c.values)
+        .map(|(l, v)| Tick {
+            x: map(*v, vlo, vhi, MEAN.0, MEAN.1),
+            label: l.clone(),
+        })
+        .collect();
+    DistChart {
+        id: format!("dist-{}", c.key),
+        title: format!("{}: judge's score distribution and mean", c.title),
+        height: axis_y + 36.0,
+        legend,
+        rows,
+        ticks,
+        axis_y,
+    }
 }
 
 /// One heatmap cell.
@@ -194,8 +263,16 @@ pub fn confusion_chart(run_index: usize, t: &TrustRow, c: &CriterionInfo) -> Con
     for (i, row) in t.confusion.iter().enumerate() {
         let total: usize = row.iter().sum();
         for (j, &count) in row.iter().enumerate() {
-            let share = if total > 0 { count as f64 / total as f64 } else { 0.0 };
-            let opacity = if count == 0 { 0.0 } else { ((0.12 + 0.88 * share) * 100.0).round() / 100.0 };
+            let share = if total > 0 {
+                count as f64 / total as f64
+            } else {
+                0.0
+            };
+            let opacity = if count == 0 {
+                0.0
+            } else {
+                ((0.12 + 0.88 * share) * 100.0).round() / 100.0
+            };
             cells.push(Cell {
                 x: GRID0.0 + j as f64 * CELL,
                 y: GRID0.1 + i as f64 * CELL,
@@ -206,10 +283,18 @@ pub fn confusion_chart(run_index: usize, t: &TrustRow, c: &CriterionInfo) -> Con
             });
         }
     }
-    let labels = c.labels.iter().enumerate().map(|(i, l)| (i as f64 * CELL + CELL / 2.0, l.clone())).collect();
+    let labels = c
+        .labels
+        .iter()
+        .enumerate()
+        .map(|(i, l)| (i as f64 * CELL + CELL / 2.0, l.clone()))
+        .collect();
     ConfusionChart {
         id: format!("confusion-{run_index}-{}", t.criterion),
-        title: format!("{}: human consensus (rows) against judge (columns)", c.title),
+        title: format!(
+            "{}: human consensus (rows) against judge (columns)",
+            c.title
+        ),
         width: GRID0.0 + c.labels.len() as f64 * CELL + 8.0,
         height: GRID0.1 + c.labels.len() as f64 * CELL + 8.0,
         cells,
@@ -239,7 +324,11 @@ pub struct ReliabilityChart {
 const PLOT: (f64, f64, f64, f64) = (48.0, 236.0, 16.0, 204.0); // x0, x1, y0 (top), y1 (bottom)
 
 /// Accuracy against confidence per non-empty bin; dot area grows with the bin's items.
-pub fn reliability_chart(run_index: usize, t: &TrustRow, c: &CriterionInfo) -> Option<ReliabilityChart> {
+pub fn reliability_chart(
+    run_index: usize,
+    t: &TrustRow,
+    c: &CriterionInfo,
+) -> Option<ReliabilityChart> {
     let cal = t.calibration.as_ref()?;
     let most = cal.bins.iter().map(|b| b.count).max().unwrap_or(1).max(1) as f64;
     let points: Vec<RelPoint> = cal
@@ -252,10 +341,18 @@ pub fn reliability_chart(run_index: usize, t: &TrustRow, c: &CriterionInfo) -> O
             count: b.count,
         })
         .collect();
-    let path = points.iter().enumerate().map(|(i, p)| format!("{}{} {}", if i == 0 { "M" } else { "L" }, p.x, p.y)).collect::<Vec<_>>().join(" ");
+    let path = points
+        .iter()
+        .enumerate()
+        .map(|(i, p)| format!("{}{} {}", if i == 0 { "M" } else { "L" }, p.x, p.y))
+        .collect::<Vec<_>>()
+        .join(" ");
     Some(ReliabilityChart {
         id: format!("reliability-{run_index}-{}", t.criterion),
-        title: format!("{}: how often the judge's top label matches the humans, by its confidence", c.title),
+        title: format!(
+            "{}: how often the judge's top label matches the humans, by its confidence",
+            c.title
+        ),
         points,
         path,
         ece: format!("{:.3}", cal.ece),
@@ -276,12 +373,34 @@ pub struct IntervalChart {
 
 const AXIS: (f64, f64) = (250.0, 640.0);
 
-fn interval_chart(id: &str, title: String, rows: Vec<IntervalRow>, ticks: Vec<Tick>, reference: Option<Tick>) -> IntervalChart {
+fn interval_chart(
+    id: &str,
+    title: String,
+    rows: Vec<IntervalRow>,
+    ticks: Vec<Tick>,
+    reference: Option<Tick>,
+) -> IntervalChart {
     let axis_y = TOP - 20.0 + rows.len() as f64 * ROW_H;
-    IntervalChart { id: id.into(), title, height: axis_y + 36.0, rows, ticks, axis_y, reference }
+    IntervalChart {
+        id: id.into(),
+        title,
+        height: axis_y + 36.0,
+        rows,
+        ticks,
+        axis_y,
+        reference,
+    }
 }
 
-fn row(i: usize, label: String, (v, lo, hi): (f64, f64, f64), (a, b): (f64, f64), value: String, note: String, solid: bool) -> IntervalRow {
+fn row(
+    i: usize,
+    label: String,
+    (v, lo, hi): (f64, f64, f64),
+    (a, b): (f64, f64),
+    value: String,
+    note: String,
+    solid: bool,
+) -> IntervalRow {
     IntervalRow {
         y: TOP - 20.0 + i as f64 * ROW_H,
         label,
@@ -298,7 +417,10 @@ fn ticks(lo: f64, hi: f64, step: f64, digits: usize) -> Vec<Tick> {
     let mut out = Vec::new();
     let mut v = (lo / step).ceil() * step;
     while v <= hi + 1e-9 {
-        out.push(Tick { x: map(v, lo, hi, AXIS.0, AXIS.1), label: format!("{v:.digits$}") });
+        out.push(Tick {
+            x: map(v, lo, hi, AXIS.0, AXIS.1),
+            label: format!("{v:.digits$}"),
+        });
         v += step;
     }
     out
@@ -307,34 +429,95 @@ fn ticks(lo: f64, hi: f64, step: f64, digits: usize) -> Vec<Tick> {
 /// First-slot win rate with its interval against the 0.5 line, and consistency.
 pub fn position_chart(p: &Position) -> IntervalChart {
     let rows = vec![
-        row(0, "first-slot win rate".into(), (p.first_slot_win_rate, p.first_slot_ci.0, p.first_slot_ci.1), (0.0, 1.0), format!("{:.2}", p.first_slot_win_rate), format!("[{:.2}, {:.2}]", p.first_slot_ci.0, p.first_slot_ci.1), true),
-        row(1, "same winner in both orders".into(), (p.consistency, f64::NAN, f64::NAN), (0.0, 1.0), format!("{:.2}", p.consistency), format!("{} pairs", p.n_pairs), true),
+        row(
+            0,
+            "first-slot win rate".into(),
+            (p.first_slot_win_rate, p.first_slot_ci.0, p.first_slot_ci.1),
+            (0.0, 1.0),
+            format!("{:.2}", p.first_slot_win_rate),
+            format!("[{:.2}, {:.2}]", p.first_slot_ci.0, p.first_slot_ci.1),
+            true,
+        ),
+        row(
+            1,
+            "same winner in both orders".into(),
+            (p.consistency, f64::NAN, f64::NAN),
+            (0.0, 1.0),
+            format!("{:.2}", p.consistency),
+            format!("{} pairs", p.n_pairs),
+            true,
+        ),
     ];
-    let reference = Some(Tick { x: map(0.5, 0.0, 1.0, AXIS.0, AXIS.1), label: "0.5: no slot preference".into() });
-    interval_chart("position-bias", "Position bias: does the answer shown first win more often?".into(), rows, ticks(0.0, 1.0, 0.25, 2), reference)
+    let reference = Some(Tick {
+        x: map(0.5, 0.0, 1.0, AXIS.0, AXIS.1),
+        label: "0.5: no slot preference".into(),
+    });
+    interval_chart(
+        "position-bias",
+        "Position bias: does the answer shown first win more often?".into(),
+        rows,
+        ticks(0.0, 1.0, 0.25, 2),
+        reference,
+    )
 }
 
 /// Elo-scale ratings with bootstrap intervals, strongest first.
 pub fn ranking_chart(k: &Ranking) -> IntervalChart {
-    let ends: Vec<f64> = k.rows.iter().flat_map(|r| [r.rating, r.rating_low, r.rating_high]).filter(|v| v.is_finite()).collect();
+    let ends: Vec<f64> = k
+        .rows
+        .iter()
+        .flat_map(|r| [r.rating, r.rating_low, r.rating_high])
+        .filter(|v| v.is_finite())
+        .collect();
     let lo = (ends.iter().cloned().fold(1000.0, f64::min) / 50.0).floor() * 50.0 - 50.0;
     let hi = (ends.iter().cloned().fold(1000.0, f64::max) / 50.0).ceil() * 50.0 + 50.0;
-    let step = if hi - lo > 600.0 { 200.0 } else if hi - lo > 300.0 { 100.0 } else { 50.0 };
+    let step = if hi - lo > 600.0 {
+        200.0
+    } else if hi - lo > 300.0 {
+        100.0
+    } else {
+        50.0
+    };
     let rows = k
         .rows
         .iter()
         .enumerate()
-        .map(|(i, r)| row(i, format!("{}. {}", i + 1, r.system), (r.rating, r.rating_low, r.rating_high), (lo, hi), format!("{:.0}", r.rating), format!("W{} T{} L{}", r.wins, r.ties, r.losses), true))
+        .map(|(i, r)| {
+            row(
+                i,
+                format!("{}. {}", i + 1, r.system),
+                (r.rating, r.rating_low, r.rating_high),
+                (lo, hi),
+                format!("{:.0}", r.rating),
+                format!("W{} T{} L{}", r.wins, r.ties, r.losses),
+                true,
+            )
+        })
         .collect();
-    let reference = Some(Tick { x: map(1000.0, lo, hi, AXIS.0, AXIS.1), label: "1000: average".into() });
-    interval_chart("ranking", "Ranking: Bradley-Terry rating (Elo scale) with 95% bootstrap interval".into(), rows, ticks(lo, hi, step, 0), reference)
+    let reference = Some(Tick {
+        x: map(1000.0, lo, hi, AXIS.0, AXIS.1),
+        label: "1000: average".into(),
+    });
+    interval_chart(
+        "ranking",
+        "Ranking: Bradley-Terry rating (Elo scale) with 95% bootstrap interval".into(),
+        rows,
+        ticks(lo, hi, step, 0),
+        reference,
+    )
 }
 
 /// Later-minus-baseline differences with their intervals against the zero line.
 pub fn delta_chart(deltas: &[DeltaRow], runs: usize) -> IntervalChart {
     let m = deltas
         .iter()
-        .flat_map(|d| [d.difference, d.ci.map_or(0.0, |c| c.0), d.ci.map_or(0.0, |c| c.1)])
+        .flat_map(|d| {
+            [
+                d.difference,
+                d.ci.map_or(0.0, |c| c.0),
+                d.ci.map_or(0.0, |c| c.1),
+            ]
+        })
         .filter(|v| v.is_finite())
         .fold(0.25_f64, |a, v| a.max(v.abs()));
     let m = (m * 4.0).ceil() / 4.0;
@@ -342,15 +525,42 @@ pub fn delta_chart(deltas: &[DeltaRow], runs: usize) -> IntervalChart {
         .iter()
         .enumerate()
         .map(|(i, d)| {
-            let label = if runs > 2 { format!("{} · {} ({})", d.system, d.criterion, d.run) } else { format!("{} · {}", d.system, d.criterion) };
+            let label = if runs > 2 {
+                format!("{} · {} ({})", d.system, d.criterion, d.run)
+            } else {
+                format!("{} · {}", d.system, d.criterion)
+            };
             let (lo, hi) = d.ci.unwrap_or((f64::NAN, f64::NAN));
-            let note = if d.ci.is_none() { "no interval" } else if d.beyond_ci { "beyond CI" } else { "within CI" };
-            row(i, label, (d.difference, lo, hi), (-m, m), format!("{:+.2}", d.difference), note.into(), d.beyond_ci)
+            let note = if d.ci.is_none() {
+                "no interval"
+            } else if d.beyond_ci {
+                "beyond CI"
+            } else {
+                "within CI"
+            };
+            row(
+                i,
+                label,
+                (d.difference, lo, hi),
+                (-m, m),
+                format!("{:+.2}", d.difference),
+                note.into(),
+                d.beyond_ci,
+            )
         })
         .collect();
     let step = if m > 1.0 { 0.5 } else { 0.25 };
-    let reference = Some(Tick { x: map(0.0, -m, m, AXIS.0, AXIS.1), label: "0: no change".into() });
-    interval_chart("deltas", "Before and after: difference in mean expected score, 95% paired bootstrap interval".into(), rows, ticks(-m, m, step, 2), reference)
+    let reference = Some(Tick {
+        x: map(0.0, -m, m, AXIS.0, AXIS.1),
+        label: "0: no change".into(),
+    });
+    interval_chart(
+        "deltas",
+        "Before and after: difference in mean expected score, 95% paired bootstrap interval".into(),
+        rows,
+        ticks(-m, m, step, 2),
+        reference,
+    )
 }
 
 #[cfg(test)]

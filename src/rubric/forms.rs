@@ -10,7 +10,7 @@ use minijinja::{context, Environment};
 use serde::Serialize;
 use sha2::Digest;
 
-use super::{Criterion, Need, RubricError, Rubric};
+use super::{Criterion, Need, Rubric, RubricError};
 use crate::data::AnswerRecord;
 
 const SYSTEM: &str = include_str!("../../judge-templates/forms/system.j2");
@@ -81,7 +81,11 @@ impl Forms {
         let mut env = Environment::new();
         env.set_keep_trailing_newline(false);
         env.set_undefined_behavior(minijinja::UndefinedBehavior::Strict);
-        for (name, text) in [("system.j2", system), ("grade.j2", grade), ("pair.j2", pair)] {
+        for (name, text) in [
+            ("system.j2", system),
+            ("grade.j2", grade),
+            ("pair.j2", pair),
+        ] {
             env.add_template_owned(name, text)
                 .map_err(|source| RubricError::Template {
                     name: name.into(),
@@ -95,10 +99,13 @@ impl Forms {
     }
 
     fn render(&self, name: &str, ctx: minijinja::Value) -> Result<String, RubricError> {
-        let tmpl = self.env.get_template(name).map_err(|source| RubricError::Template {
-            name: name.into(),
-            source,
-        })?;
+        let tmpl = self
+            .env
+            .get_template(name)
+            .map_err(|source| RubricError::Template {
+                name: name.into(),
+                source,
+            })?;
         let text = tmpl.render(ctx).map_err(|source| RubricError::Template {
             name: name.into(),
             source,
@@ -151,7 +158,12 @@ impl Forms {
         Ok(Form {
             system: self.render("system.j2", context! {})?,
             user,
-            prefill: if reasoning { REASONING_PREFILL } else { SCORE_PREFILL }.into(),
+            prefill: if reasoning {
+                REASONING_PREFILL
+            } else {
+                SCORE_PREFILL
+            }
+            .into(),
         })
     }
 
@@ -208,12 +220,20 @@ mod tests {
         let texts: Vec<String> = rubric
             .criteria
             .iter()
-            .map(|c| forms.grade(&rubric, &item(), c, false, &[]).expect("form").user)
+            .map(|c| {
+                forms
+                    .grade(&rubric, &item(), c, false, &[])
+                    .expect("form")
+                    .user
+            })
             .collect();
         let cut = texts[0].find("## Criterion").expect("criterion heading");
         for t in &texts {
             assert_eq!(&t[..cut], &texts[0][..cut]);
-            assert!(t.contains("Note to the grader"), "answer text kept verbatim");
+            assert!(
+                t.contains("Note to the grader"),
+                "answer text kept verbatim"
+            );
         }
         assert!(texts[0].contains("Reference answer"));
         assert!(texts[0].contains("Source text"));

@@ -202,11 +202,17 @@ pub enum RubricError {
 pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
     let e = err.downcast_ref::<RubricError>()?;
     Some(match e {
-        RubricError::Io { .. } => "check the path; bundled rubrics are in judge-templates/rubrics/".into(),
-        RubricError::Invalid { .. } => "fix the listed lines; the rubric format is described in the README (Formats)".into(),
+        RubricError::Io { .. } => {
+            "check the path; bundled rubrics are in judge-templates/rubrics/".into()
+        }
+        RubricError::Invalid { .. } => {
+            "fix the listed lines; the rubric format is described in the README (Formats)".into()
+        }
         RubricError::UnknownCriterion { .. } => "use one of the listed criterion keys".into(),
         RubricError::Template { .. } => "check the template syntax (minijinja, Jinja2-like)".into(),
-        RubricError::MissingField { field, .. } => format!("add `{field}` to the answers file, or leave that criterion out with `--criteria`"),
+        RubricError::MissingField { field, .. } => format!(
+            "add `{field}` to the answers file, or leave that criterion out with `--criteria`"
+        ),
     })
 }
 
@@ -274,7 +280,8 @@ pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
     for spanned in raw.criterion {
         let line = line_of(text, spanned.span().start);
         let c = spanned.into_inner();
-        let mut bad = |message: String, at: usize| problems.push(RubricProblem { line: at, message });
+        let mut bad =
+            |message: String, at: usize| problems.push(RubricProblem { line: at, message });
         if c.key.trim().is_empty()
             || !c
                 .key
@@ -282,7 +289,10 @@ pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
                 .all(|ch| ch.is_ascii_alphanumeric() || ch == '-' || ch == '_')
         {
             bad(
-                format!("criterion key `{}` must be letters, digits, `-` or `_`", c.key),
+                format!(
+                    "criterion key `{}` must be letters, digits, `-` or `_`",
+                    c.key
+                ),
                 line,
             );
         }
@@ -321,7 +331,10 @@ pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
             match c.points.get(l) {
                 Some(t) => points.push((l.clone(), t.clone())),
                 None => bad(
-                    format!("criterion `{}`: no description for scale point `{l}`", c.key),
+                    format!(
+                        "criterion `{}`: no description for scale point `{l}`",
+                        c.key
+                    ),
                     line,
                 ),
             }
@@ -410,7 +423,9 @@ needs = ["sources"]
         assert_eq!(problems[0].line, 5);
         assert!(problems[0].message.contains("unknown scale `1-7`"));
         assert_eq!(problems[1].line, 11);
-        assert!(problems[2].message.contains("no description for scale point `3`"));
+        assert!(problems[2]
+            .message
+            .contains("no description for scale point `3`"));
     }
 
     #[test]

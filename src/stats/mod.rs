@@ -5,15 +5,15 @@
 
 pub mod error;
 pub use error::StatsError;
-pub mod intervals;
-pub mod logistic;
-pub mod pairwise;
-pub mod ppi;
-pub mod ranking;
-pub mod scoring;
 pub mod agreement;
 pub mod bootstrap;
 pub mod calibration;
 pub mod correlation;
+pub mod intervals;
 pub mod krippendorff;
+pub mod logistic;
+pub mod pairwise;
+pub mod ppi;
+pub mod ranking;
 pub mod sample_size;
+pub mod scoring;

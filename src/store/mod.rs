@@ -116,7 +116,10 @@ fn describe_difference(old: &Manifest, new: &Manifest) -> String {
         d.push(format!("kind `{}` vs `{}`", old.kind, new.kind));
     }
     if old.model_sha256 != new.model_sha256 {
-        d.push(format!("model `{}` vs `{}`", old.model_path, new.model_path));
+        d.push(format!(
+            "model `{}` vs `{}`",
+            old.model_path, new.model_path
+        ));
     }
     if old.answers_sha256 != new.answers_sha256 {
         d.push("answers file changed".into());
@@ -134,7 +137,10 @@ fn describe_difference(old: &Manifest, new: &Manifest) -> String {
         d.push(format!("seed {} vs {}", old.seed, new.seed));
     }
     if old.tool_version != new.tool_version {
-        d.push(format!("assize {} vs {}", old.tool_version, new.tool_version));
+        d.push(format!(
+            "assize {} vs {}",
+            old.tool_version, new.tool_version
+        ));
     }
     d.join("; ")
 }
@@ -156,20 +162,28 @@ pub fn read_records<T: DeserializeOwned>(path: &Path) -> Result<Vec<T>, StoreErr
     let complete_len = text.rfind('\n').map_or(0, |i| i + 1);
     if complete_len < text.len() {
         // The process died mid-write: drop the partial line.
-        let f = OpenOptions::new().write(true).open(path).map_err(io(path))?;
+        let f = OpenOptions::new()
+            .write(true)
+            .open(path)
+            .map_err(io(path))?;
         f.set_len(complete_len as u64).map_err(io(path))?;
     }
     let mut out = Vec::new();
-    for (i, line) in BufReader::new(text[..complete_len].as_bytes()).lines().enumerate() {
+    for (i, line) in BufReader::new(&text.as_bytes()[..complete_len])
+        .lines()
+        .enumerate()
+    {
         let line = line.map_err(io(path))?;
         if line.trim().is_empty() {
             continue;
         }
-        out.push(serde_json::from_str(&line).map_err(|e| StoreError::Damaged {
-            path: path.to_path_buf(),
-            line: i + 1,
-            reason: e.to_string(),
-        })?);
+        out.push(
+            serde_json::from_str(&line).map_err(|e| StoreError::Damaged {
+                path: path.to_path_buf(),
+                line: i + 1,
+                reason: e.to_string(),
+            })?,
+        );
     }
     Ok(out)
 }
@@ -198,7 +212,9 @@ impl Appender {
     pub fn append<T: Serialize>(&mut self, record: &T) -> Result<(), StoreError> {
         let mut line = serde_json::to_string(record).expect("records serialise");
         line.push('\n');
-        self.file.write_all(line.as_bytes()).map_err(io(&self.path))?;
+        self.file
+            .write_all(line.as_bytes())
+            .map_err(io(&self.path))?;
         self.file.sync_data().map_err(io(&self.path))
     }
 }
@@ -245,7 +261,9 @@ mod tests {
         let dir = tempfile::tempdir().expect("tmp");
         RunDir::open(dir.path(), manifest(1)).expect("create");
         RunDir::open(dir.path(), manifest(1)).expect("resume");
-        let err = RunDir::open(dir.path(), manifest(2)).err().expect("mismatch");
+        let err = RunDir::open(dir.path(), manifest(2))
+            .err()
+            .expect("mismatch");
         assert!(err.to_string().contains("seed 1 vs 2"), "{err}");
     }
 }

@@ -181,5 +181,9 @@ fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
 fn prefs_questions() -> usize {
     let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/preferences.csv");
     let prefs = crate::data::read_preferences(&path).expect("demo preferences");
-    prefs.iter().map(|p| p.question_id.clone()).collect::<std::collections::HashSet<_>>().len()
+    prefs
+        .iter()
+        .map(|p| p.question_id.clone())
+        .collect::<std::collections::HashSet<_>>()
+        .len()
 }

@@ -342,8 +342,8 @@ fn pairs(s: &mut String, p: &PairVetReport) {
         let _ = writeln!(s, "    position: {}", c.position_bias.verdict_line);
         let _ = writeln!(
             s,
-            "    {:<14} {:>8} {:<18} {:>7} {}",
-            "rule", "accuracy", "95% CI", "kappa", "95% CI"
+            "    {:<14} {:>8} {:<18} {:>7} 95% CI",
+            "rule", "accuracy", "95% CI", "kappa"
         );
         for m in &c.methods {
             let _ = writeln!(

@@ -26,6 +26,10 @@ pub struct Tiny {
     pub layers: usize,
     /// Seed of the random weights.
     pub seed: u64,
+    /// More metadata entries (RoPE scaling keys, say).
+    pub extra: Vec<(String, Value)>,
+    /// A `rope_freqs.weight` tensor of per-frequency divisors (`head_dim / 2` values).
+    pub rope_freqs: Option<Vec<f32>>,
 }
 
 /// Vocabulary of every tiny model.
@@ -41,12 +45,22 @@ impl Tiny {
             sliding_window_type: 2,
             layers: 2,
             seed: 7,
+            extra: Vec::new(),
+            rope_freqs: None,
         }
     }
 
     /// Write the model to `dir/{arch}-tiny.gguf` and return the path.
     pub fn write(&self, dir: &Path) -> PathBuf {
-        let path = dir.join(format!("{}-{}-tiny.gguf", self.arch, self.seed));
+        let tag = if self.extra.is_empty() && self.rope_freqs.is_none() {
+            String::new()
+        } else {
+            format!(
+                "-x{}",
+                self.extra.len() + 2 * self.rope_freqs.is_some() as usize
+            )
+        };
+        let path = dir.join(format!("{}-{}{tag}-tiny.gguf", self.arch, self.seed));
         let mut rng = ChaCha8Rng::seed_from_u64(self.seed);
         let gemma = self.arch == "gemma3";
         let qwen = self.arch == "qwen2";
@@ -89,6 +103,7 @@ impl Tiny {
                 Value::U32(head_dim as u32),
             ),
         ];
+        meta.extend(self.extra.iter().cloned());
         if gemma {
             meta.extend([
                 (
@@ -167,6 +182,13 @@ impl Tiny {
                 norms.push((p("post_attention_norm.weight"), norm(hidden, &mut rng)));
                 norms.push((p("post_ffw_norm.weight"), norm(hidden, &mut rng)));
             }
+        }
+        if let Some(f) = &self.rope_freqs {
+            let t = Tensor::from_vec(f.clone(), f.len(), &Device::Cpu).expect("tensor");
+            norms.push((
+                "rope_freqs.weight".into(),
+                QTensor::quantize(&t, D::F32).expect("f32"),
+            ));
         }
         tensors.extend(norms);
         let meta_refs: Vec<(&str, &Value)> = meta.iter().map(|(k, v)| (k.as_str(), v)).collect();

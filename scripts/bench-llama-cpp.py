@@ -1,0 +1,66 @@
+#!/usr/bin/env python3
+"""Prompt and generation speed of llama.cpp on this machine, for comparison with
+`assize model bench` (same prompt length, thread count and kind of token ids).
+
+llama.cpp (Gerganov et al.) is the C++ CPU engine for GGUF files; this script reaches it
+through the `llama-cpp-python` package, built from source on this machine by pip so it
+uses the processor's own vector instructions:
+    CMAKE_ARGS="-DGGML_NATIVE=ON" pip install llama-cpp-python
+Each figure is the best of `--repeats` runs. Nothing here is a test.
+
+usage: scripts/bench-llama-cpp.py MODEL.gguf [--prompt-tokens 256] [--gen-tokens 64]
+                                  [--threads 2] [--repeats 3]
+"""
+
+import argparse
+import json
+import time
+
+import llama_cpp
+
+
+def main():
+    ap = argparse.ArgumentParser()
+    ap.add_argument("model")
+    ap.add_argument("--prompt-tokens", type=int, default=256)
+    ap.add_argument("--gen-tokens", type=int, default=64)
+    ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--repeats", type=int, default=3)
+    args = ap.parse_args()
+
+    llm = llama_cpp.Llama(
+        model_path=args.model,
+        n_ctx=args.prompt_tokens + args.gen_tokens + 8,
+        n_batch=512,
+        n_threads=args.threads,
+        n_threads_batch=args.threads,
+        verbose=False,
+    )
+    vocab = llm.n_vocab()
+    # Ordinary ids past the special and byte tokens, as `assize model bench` uses.
+    prompt = [1000 + (i * 7919) % (vocab - 1000) for i in range(args.prompt_tokens)]
+    best_prompt, best_gen = 0.0, 0.0
+    for _ in range(args.repeats):
+        llm.reset()
+        t = time.perf_counter()
+        llm.eval(prompt)
+        best_prompt = max(best_prompt, args.prompt_tokens / (time.perf_counter() - t))
+        token = prompt[-1]
+        t = time.perf_counter()
+        for _ in range(args.gen_tokens):
+            llm.eval([token])
+            token = int(llm.scores[llm.n_tokens - 1].argmax())
+        best_gen = max(best_gen, args.gen_tokens / (time.perf_counter() - t))
+    print(json.dumps({
+        "engine": f"llama.cpp via llama-cpp-python {llama_cpp.__version__}",
+        "model": args.model,
+        "threads": args.threads,
+        "prompt_tokens": args.prompt_tokens,
+        "gen_tokens": args.gen_tokens,
+        "prompt_tokens_per_second": round(best_prompt, 1),
+        "gen_tokens_per_second": round(best_gen, 1),
+    }))
+
+
+if __name__ == "__main__":
+    main()
