@@ -42,8 +42,10 @@ fn main() {
     let in_cache = std::env::args().any(|a| a == "--in-cache");
     let threads = candle_core::utils::barrier_pool().n_workers() + 1;
     println!("threads {threads}");
-    // (format, n, k): ffn up/gate and down of the 1.5B judge, Gemma 3's 640-wide Q8_0.
+    // (format, n, k): attention output, ffn up/gate and down of the 1.5B judge; the
+    // 0.5B judge's ffn up/gate in its Q8_0 and Q5_0 forms.
     for (dtype, n, k) in [
+        (GgmlDType::Q4K, 1536, 1536),
         (GgmlDType::Q4K, 8960, 1536),
         (GgmlDType::Q6K, 1536, 8960),
         (GgmlDType::Q8_0, 4864, 896),

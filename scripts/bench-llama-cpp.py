@@ -6,6 +6,11 @@ llama.cpp (Gerganov et al.) is the C++ CPU engine for GGUF files; this script re
 through the `llama-cpp-python` package, built from source on this machine by pip so it
 uses the processor's own vector instructions:
     CMAKE_ARGS="-DGGML_NATIVE=ON" pip install llama-cpp-python
+On processors that report AMX inside a virtual machine, ggml's AMX kernels may crash
+(seen here); build without them instead:
+    CMAKE_ARGS="-DGGML_NATIVE=OFF -DGGML_AVX2=ON -DGGML_FMA=ON -DGGML_F16C=ON \
+      -DGGML_AVX512=ON -DGGML_AVX512_VNNI=ON -DGGML_AVX512_VBMI=ON -DGGML_AVX512_BF16=ON \
+      -DGGML_AMX_TILE=OFF -DGGML_AMX_INT8=OFF -DGGML_AMX_BF16=OFF" pip install llama-cpp-python
 Each figure is the best of `--repeats` runs. Nothing here is a test.
 
 usage: scripts/bench-llama-cpp.py MODEL.gguf [--prompt-tokens 256] [--gen-tokens 64]

@@ -260,6 +260,10 @@ fn report(extra: &[&str]) -> String {
         "tests/fixtures/report/preferences.csv",
         "--answers",
         "tests/fixtures/report/answers.jsonl",
+        // The fixture's `local-draft` answers name the default judge as their author;
+        // the scripted comparison stands in for it, so the self-preference probe runs.
+        "--judge-name",
+        "qwen2.5-coder-1.5b-instruct-q4_k_m",
         "--resamples",
         "300",
     ];

@@ -46,9 +46,12 @@ pub struct ReportArgs {
         default_value = "judge-templates/rubrics/support.toml"
     )]
     pub rubric: PathBuf,
-    /// Answers file: texts of flagged items and answer lengths for the length probe
+    /// Answers file: texts of flagged items, answer lengths for the length probe and `written_by` for the self-preference probe
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: Option<PathBuf>,
+    /// The `written_by` value marking answers the comparison judge's own model wrote (default: its model file name without `.gguf`)
+    #[arg(long, value_name = "NAME")]
+    pub judge_name: Option<String>,
     /// Write the HTML report (one self-contained file) here
     #[arg(long, value_name = "FILE")]
     pub html: Option<PathBuf>,
@@ -192,6 +195,7 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
         preferences: preferences.as_deref(),
         rubric: &rubric,
         answers: answers.as_deref(),
+        judge_name: args.judge_name.as_deref(),
         seed: args.seed,
         resamples: args.resamples,
     };

@@ -144,13 +144,16 @@ pub struct Decoder {
     output: Linear,
 }
 
-/// Keys and values of the tokens seen so far; cloning forks it.
+/// Keys and values of the tokens seen so far; cloning forks it. One buffer per layer and
+/// key/value head (index `layer * kv_heads + head`), so the rows one head attends to
+/// lie back to back in memory.
 #[derive(Clone, Debug)]
 pub struct KvCache {
     k: Vec<Vec<f32>>,
     v: Vec<Vec<f32>>,
     len: usize,
-    kv_dim: usize,
+    kv_heads: usize,
+    head_dim: usize,
 }
 
 impl KvCache {
@@ -168,7 +171,7 @@ impl KvCache {
     pub fn truncate(&mut self, len: usize) {
         if len < self.len {
             for buf in self.k.iter_mut().chain(self.v.iter_mut()) {
-                buf.truncate(len * self.kv_dim);
+                buf.truncate(len * self.head_dim);
             }
             self.len = len;
         }
@@ -363,12 +366,13 @@ impl Decoder {
 
     /// An empty cache for this model.
     pub fn new_cache(&self) -> KvCache {
-        let kv_dim = self.cfg.kv_heads * self.cfg.head_dim;
+        let bufs = self.cfg.layers * self.cfg.kv_heads;
         KvCache {
-            k: vec![Vec::new(); self.cfg.layers],
-            v: vec![Vec::new(); self.cfg.layers],
+            k: vec![Vec::new(); bufs],
+            v: vec![Vec::new(); bufs],
             len: 0,
-            kv_dim,
+            kv_heads: self.cfg.kv_heads,
+            head_dim: self.cfg.head_dim,
         }
     }
 
@@ -423,7 +427,9 @@ impl Decoder {
         if tokens.is_empty() {
             return Err(EngineError::Invalid("no tokens to run".into()));
         }
-        if cache.k.len() != self.cfg.layers || cache.kv_dim != self.cfg.kv_heads * self.cfg.head_dim
+        if cache.k.len() != self.cfg.layers * self.cfg.kv_heads
+            || cache.kv_heads != self.cfg.kv_heads
+            || cache.head_dim != self.cfg.head_dim
         {
             return Err(EngineError::Invalid(
                 "key/value cache belongs to another model".into(),
@@ -613,9 +619,26 @@ impl Decoder {
             let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
             rope(&mut q, q_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
             rope(&mut k, kv_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
-            cache.k[li].extend_from_slice(&k);
-            cache.v[li].extend_from_slice(&v);
-            let att = attention(&q, &cache.k[li], &cache.v[li], &shape, pos0, m, l.window);
+            let heads = li * c.kv_heads..(li + 1) * c.kv_heads;
+            for (rk, rv) in k.chunks_exact(kv_dim).zip(v.chunks_exact(kv_dim)) {
+                for (g, (hk, hv)) in rk
+                    .chunks_exact(c.head_dim)
+                    .zip(rv.chunks_exact(c.head_dim))
+                    .enumerate()
+                {
+                    cache.k[heads.start + g].extend_from_slice(hk);
+                    cache.v[heads.start + g].extend_from_slice(hv);
+                }
+            }
+            let att = attention(
+                &q,
+                &cache.k[heads.clone()],
+                &cache.v[heads],
+                &shape,
+                pos0,
+                m,
+                l.window,
+            );
             let mut o = l.wo.forward(&att, m)?;
             if let Some(w) = &l.post_attn_norm {
                 o = rms_norm(&o, w, eps);

@@ -19,9 +19,9 @@
 //! Tile layouts (one tile = 16 output columns, `col` below), little-endian. "Nibble
 //! line `(s, g)`" means `[col][4]` bytes whose byte `j` holds value `32 s + 8 g + j` in
 //! its low nibble and value `32 s + 8 g + j + 4` in its high nibble.
-//! - Q4_K, per 256-value super-block (2432 bytes, 4.75 bits a weight): nibble lines
-//!   `[s 8][g 4]`; scales `[s][col]` u8; mins `[pair 4][col][2]` u8; `d`, `dmin` f32
-//!   `[col]`.
+//! - Q4_K, per 256-value super-block (2368 bytes, 4.625 bits a weight): nibble lines
+//!   `[s 8][g 4]`; scales `[s][col]` u8; mins `[pair 4][col][2]` u8; `d`, `dmin` f16
+//!   `[col]` as in the file.
 //! - Q6_K, per super-block (3392 bytes, 6.6 bits): the low four bits as nibble lines
 //!   `[s 8][g 4]`; the top two bits as lines `[s 8][gp 2][col][4]` whose byte `j`
 //!   holds, two bits each from bit 0, the values of nibble lines `(s, 2gp)` low, high,
@@ -41,7 +41,7 @@ use candle_core::Device;
 const TILE_N: usize = 16;
 /// Values of one activation super-block (ggml's `QK_K`).
 const QK: usize = 256;
-const Q4K_SB: usize = 2432;
+const Q4K_SB: usize = 2368;
 const Q6K_SB: usize = 3392;
 const Q5_PAIR: usize = 704;
 const Q8_BLK: usize = 576;
@@ -287,10 +287,7 @@ impl Packed {
             Format::Q4K => {
                 for (b, ys) in y.chunks_exact_mut(QK).enumerate() {
                     let sb = &tile[b * Q4K_SB..];
-                    let (d, dmin) = (
-                        f32_at(b * Q4K_SB + 2304 + col * 4),
-                        f32_at(b * Q4K_SB + 2368 + col * 4),
-                    );
+                    let (d, dmin) = (f16_at(sb, 2304 + col * 2), f16_at(sb, 2336 + col * 2));
                     for (s, ys) in ys.chunks_exact_mut(32).enumerate() {
                         let sc = sb[2048 + s * 16 + col] as f32;
                         let mn = sb[2176 + (s / 2) * 32 + col * 2 + s % 2] as f32;
@@ -441,7 +438,6 @@ impl Packed {
 }
 
 fn pack_q4k(blk: &[u8], dst: &mut [u8], col: usize) {
-    let (d, dmin) = (f16_at(blk, 0), f16_at(blk, 2));
     let scales = &blk[4..16];
     let qs = &blk[16..144];
     let mut v = [0u8; QK];
@@ -462,8 +458,8 @@ fn pack_q4k(blk: &[u8], dst: &mut [u8], col: usize) {
         dst[2048 + s * 16 + col] = sc;
         dst[2176 + (s / 2) * 32 + col * 2 + s % 2] = mn;
     }
-    put_f32(&mut dst[2304 + col * 4..], d);
-    put_f32(&mut dst[2368 + col * 4..], dmin);
+    dst[2304 + col * 2..][..2].copy_from_slice(&blk[..2]);
+    dst[2336 + col * 2..][..2].copy_from_slice(&blk[2..4]);
 }
 
 fn pack_q6k(blk: &[u8], dst: &mut [u8], col: usize) {
@@ -731,7 +727,7 @@ mod vnni {
     }
 
     /// Q4_K: `R` rows from `r0` against one tile.
-    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
+    #[target_feature(enable = "avx512f,avx512bw,avx512vnni,f16c")]
     pub(super) unsafe fn q4k<const R: usize>(
         w: *const u8,
         a: &Acts,
@@ -784,8 +780,8 @@ mod vnni {
                     *acc = _mm512_dpwssd_epi32(*acc, mn, _mm512_set1_epi32(s));
                 }
             }
-            let d = _mm512_load_ps(sb.add(2304) as *const f32);
-            let dmin = _mm512_load_ps(sb.add(2368) as *const f32);
+            let d = _mm512_cvtph_ps(_mm256_load_si256(sb.add(2304) as *const __m256i));
+            let dmin = _mm512_cvtph_ps(_mm256_load_si256(sb.add(2336) as *const __m256i));
             for i in 0..R {
                 let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
                 let f = _mm512_cvtepi32_ps(sumi[i]);

@@ -20,6 +20,10 @@ use crate::stats::pairwise::{
     equal_opportunity_difference, own_win_rate, EqualOpportunity, Preference, Winner,
 };
 
+/// Below this many human-preferred pairs on either side, the equal-opportunity
+/// difference is reported as thin evidence (each verdict moves a recall by 10% or more).
+pub const THIN_EVIDENCE: usize = 10;
+
 /// Pointwise residual gap with its interval.
 #[derive(Debug, Clone, Serialize)]
 pub struct PointwiseSelf {
@@ -170,6 +174,17 @@ pub fn self_preference(
                 "; without human preferences this rate is confounded with answer quality and says nothing about bias on its own",
             ),
         }
+        if let Some(e) = &eo {
+            let thin = e.n_human_own.min(e.n_human_other);
+            if thin < THIN_EVIDENCE {
+                let pairs = |n: usize| format!("{n} pair{}", if n == 1 { "" } else { "s" });
+                s.push_str(&format!(
+                    "; thin evidence: the difference rests on {} humans gave to the judge's own answers and {} to the others, so one verdict more or less can reverse it",
+                    pairs(e.n_human_own),
+                    pairs(e.n_human_other)
+                ));
+            }
+        }
         s
     };
     SelfPreference {
@@ -268,4 +283,128 @@ fn pointwise_gap(
         difference,
         ci,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::pairwise::{IdentityProbs, SlotProbs};
+
+    fn outcome(q: usize, winner: Winner) -> PairOutcome {
+        let slots = SlotProbs {
+            first: 0.4,
+            second: 0.4,
+            tie: 0.2,
+        };
+        PairOutcome {
+            question_id: format!("q{q:02}"),
+            criterion: "overall".into(),
+            a: "mine".into(),
+            b: "theirs".into(),
+            original: slots,
+            swapped: slots,
+            original_winner: winner,
+            swapped_winner: winner,
+            debiased: IdentityProbs {
+                a: 0.4,
+                b: 0.4,
+                tie: 0.2,
+            },
+            debiased_winner: winner,
+            conservative_winner: winner,
+        }
+    }
+
+    fn answer(q: usize, system: &str, by: &str) -> AnswerRecord {
+        AnswerRecord {
+            question_id: format!("q{q:02}"),
+            system: system.into(),
+            question: "?".into(),
+            answer: "!".into(),
+            context: None,
+            reference: None,
+            written_by: Some(by.into()),
+            line: q + 1,
+        }
+    }
+
+    fn preference(q: usize, preferred: &str) -> PreferenceRow {
+        PreferenceRow {
+            question_id: format!("q{q:02}"),
+            system_a: "mine".into(),
+            system_b: "theirs".into(),
+            rater: "r1".into(),
+            preferred: Some(preferred.into()),
+            line: q + 1,
+        }
+    }
+
+    /// `n` questions; humans prefer `mine` on the first half. The judge agrees with the
+    /// humans except on `flips` of the human-`theirs` pairs, where it picks `mine`.
+    fn scenario(n: usize, flips: usize) -> SelfPreference {
+        let half = n / 2;
+        let outcomes: Vec<PairOutcome> = (0..n)
+            .map(|q| {
+                let own = q < half || q < half + flips;
+                outcome(q, if own { Winner::A } else { Winner::B })
+            })
+            .collect();
+        let answers: Vec<AnswerRecord> = (0..n)
+            .flat_map(|q| [answer(q, "mine", "judge-x"), answer(q, "theirs", "human")])
+            .collect();
+        let prefs: Vec<PreferenceRow> = (0..n)
+            .map(|q| preference(q, if q < half { "mine" } else { "theirs" }))
+            .collect();
+        self_preference("judge-x", &outcomes, &answers, Some(&prefs), None, 7)
+    }
+
+    /// Equal-opportunity difference (Wataoka, Takahashi & Ri 2024) worked by hand:
+    /// 12 pairs, humans prefer the judge's own answer in 6. The judge picks its own in
+    /// all 6 of those (recall 1) and in 3 of the 6 others (recall of "other" 3/6), so
+    /// the difference is 1 − 0.5 = +0.5 and its own win rate is 9/12.
+    #[test]
+    fn equal_opportunity_matches_a_hand_count_and_flags_thin_evidence() {
+        let sp = scenario(12, 3);
+        assert_eq!(sp.own_answers, 12);
+        assert_eq!(sp.pairs, 12);
+        assert!((sp.own_win_rate.expect("rate") - 0.75).abs() < 1e-12);
+        assert!((sp.human_own_win_rate.expect("human rate") - 0.5).abs() < 1e-12);
+        let eo = sp.equal_opportunity.as_ref().expect("eo");
+        assert!((eo.recall_own - 1.0).abs() < 1e-12);
+        assert!((eo.recall_other - 0.5).abs() < 1e-12);
+        assert!((eo.difference - 0.5).abs() < 1e-12);
+        assert!(
+            sp.summary.contains("favours its own answers"),
+            "{}",
+            sp.summary
+        );
+        assert!(sp.summary.contains("thin evidence"), "{}", sp.summary);
+    }
+
+    /// With at least `THIN_EVIDENCE` human verdicts on each side and a judge that
+    /// agrees with every one, the difference is 0 and no caveat is printed.
+    #[test]
+    fn agreement_on_enough_pairs_reads_as_no_self_preference() {
+        let sp = scenario(2 * THIN_EVIDENCE, 0);
+        let eo = sp.equal_opportunity.as_ref().expect("eo");
+        assert_eq!(eo.n_human_own, THIN_EVIDENCE);
+        assert!(eo.difference.abs() < 1e-12);
+        assert!(
+            sp.summary.contains("no clear self-preference"),
+            "{}",
+            sp.summary
+        );
+        assert!(!sp.summary.contains("thin evidence"), "{}", sp.summary);
+    }
+
+    /// Without any answer by the judge's model, nothing is claimed.
+    #[test]
+    fn no_own_answers_means_no_probe() {
+        let outcomes = vec![outcome(0, Winner::A)];
+        let answers = vec![answer(0, "mine", "someone"), answer(0, "theirs", "human")];
+        let sp = self_preference("judge-x", &outcomes, &answers, None, None, 7);
+        assert_eq!(sp.pairs, 0);
+        assert!(sp.own_win_rate.is_none());
+        assert!(sp.summary.contains("not probed"), "{}", sp.summary);
+    }
 }

@@ -12,6 +12,7 @@ use crate::judge::grade::summarize;
 use crate::probes::length::length_probe;
 use crate::probes::pair_outcomes;
 use crate::probes::ranking::rank;
+use crate::probes::selfpref::self_preference;
 use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
 use crate::stats::pairwise::position_bias;
 use crate::vet::{vet, vet_pairs, CriterionReport, Variant, VariantKind, VetError, VetOptions};
@@ -333,8 +334,33 @@ fn pairwise(
         .map(|a| length_probe(&outcomes, a))
         .unwrap_or_default();
     if inp.answers.is_none() {
-        notes.push("no answers file given: no length probe".into());
+        notes.push("no answers file given: no length or self-preference probe".into());
     }
+    // The judge's own answers are those whose `written_by` is the given name, else the
+    // model file's stem, as in `assize compare`.
+    let judge_name = inp.judge_name.map_or_else(
+        || {
+            std::path::Path::new(&c.model)
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default()
+        },
+        str::to_string,
+    );
+    let self_pref = inp.answers.map(|answers| {
+        let pointwise = match (inp.runs.first(), inp.labels) {
+            (Some(run), Some(labels)) => Some((run.records.as_slice(), labels, inp.rubric)),
+            _ => None,
+        };
+        self_preference(
+            &judge_name,
+            &outcomes,
+            answers,
+            inp.preferences,
+            pointwise,
+            inp.seed,
+        )
+    });
     let (mut human, mut human_pairs) = (Vec::new(), 0);
     if let Some(prefs) = inp.preferences {
         match vet_pairs(&records, prefs, opts) {
@@ -371,6 +397,7 @@ fn pairwise(
         ranking_note,
         length,
         human,
+        self_preference: self_pref,
         human_pairs,
         notes,
     })
@@ -505,6 +532,7 @@ mod tests {
             preferences: None,
             rubric: &rubric,
             answers: None,
+            judge_name: None,
             seed: 7,
             resamples: 200,
         };

@@ -234,6 +234,32 @@ fn pairwise(s: &mut String, r: &Report) {
     }
 }
 
+/// The self-preference probe of the comparison run, when it ran.
+fn self_preference(s: &mut String, r: &Report) {
+    let Some(sp) = r.pairwise.as_ref().and_then(|p| p.self_preference.as_ref()) else {
+        return;
+    };
+    let _ = writeln!(
+        s,
+        "\nSelf-preference (`{}`): {}.",
+        cell(&sp.judge_name),
+        sp.summary
+    );
+    if let Some(pw) = &sp.pointwise {
+        let _ = writeln!(
+            s,
+            "Against human labels, the judge's score minus the human consensus is {} on its own answers ({} grades) and {} on others ({}): difference {} [{}, {}].",
+            num(pw.own_mean_residual, 2),
+            pw.n_own,
+            num(pw.other_mean_residual, 2),
+            pw.n_other,
+            num(pw.difference, 2),
+            num(pw.ci.0, 2),
+            num(pw.ci.1, 2)
+        );
+    }
+}
+
 fn flagged(s: &mut String, r: &Report) {
     if r.flagged.is_empty() {
         return;
@@ -333,6 +359,7 @@ pub fn render(r: &Report) -> String {
     deltas_table(&mut s, r);
     trust_table(&mut s, r);
     pairwise(&mut s, r);
+    self_preference(&mut s, r);
     flagged(&mut s, r);
     let _ = writeln!(
         s,

@@ -22,6 +22,7 @@ use crate::judge::grade::SummaryRow;
 use crate::judge::{GradeRecord, PairRecord};
 use crate::probes::length::LengthProbe;
 use crate::probes::ranking::Ranking;
+use crate::probes::selfpref::SelfPreference;
 use crate::rubric::Rubric;
 use crate::stats::calibration::ReliabilityBin;
 
@@ -72,8 +73,12 @@ pub struct Inputs<'a> {
     pub preferences: Option<&'a [PreferenceRow]>,
     /// The rubric the runs were graded with.
     pub rubric: &'a Rubric,
-    /// Answers (texts of flagged items, lengths for the length probe), if any.
+    /// Answers (texts of flagged items, lengths for the length probe, authors for the
+    /// self-preference probe), if any.
     pub answers: Option<&'a [AnswerRecord]>,
+    /// `written_by` of the comparison judge's own answers; default: the stem of the
+    /// comparison run's model file.
+    pub judge_name: Option<&'a str>,
     /// Seed of every random draw.
     pub seed: u64,
     /// Bootstrap resamples per interval.
@@ -347,6 +352,9 @@ pub struct PairwiseSection {
     pub length: Vec<LengthProbe>,
     /// Verdict rules against the human majority (needs preferences).
     pub human: Vec<HumanAgreement>,
+    /// Self-preference of the judge (needs the answers with `written_by`; human
+    /// preferences and labels sharpen it). The judge is named by its model file's stem.
+    pub self_preference: Option<SelfPreference>,
     /// Pairs behind `human`.
     pub human_pairs: usize,
     /// Notes on parts left out.
