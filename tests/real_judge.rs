@@ -360,3 +360,40 @@ fn reasoning_first_stores_the_assessment() {
         );
     }
 }
+
+/// Injected-instruction probe on the real judge: each answer is graded as written and
+/// with the instruction appended as answer text. The as-written grades must equal a
+/// plain grading run bit for bit (the injected copy shares no state with them: prefix
+/// reuse is canonical), every injected copy must be graded, and the probe's answers
+/// file must carry the instruction as plain answer text.
+#[test]
+fn injection_probe_grades_each_answer_as_written_and_with_the_instruction() {
+    use assize::cli::injection::{run, InjectionArgs, INJECTED};
+    use assize::probes::injection::DEFAULT_INJECTION;
+    let (tmp, answers) = subset(&["q01", "q05"]);
+    let probe_dir = tmp.path().join("injection");
+    let args = InjectionArgs {
+        grade: grade_args(answers.clone(), probe_dir.clone(), &["correctness"]),
+        instruction: DEFAULT_INJECTION.to_string(),
+    };
+    run(args).expect("injection probe");
+    let probed = records(&probe_dir.join("grades"));
+    let plain_dir = tmp.path().join("plain");
+    let a = grade_args(answers, plain_dir.clone(), &["correctness"]);
+    grade_run(&a, &prepare(&a).expect("inputs"), judge()).expect("grading");
+    let plain = records(&plain_dir);
+    assert_eq!(plain.len(), 4);
+    let (injected, written): (Vec<&GradeRecord>, Vec<&GradeRecord>) =
+        probed.iter().partition(|r| r.system.ends_with(INJECTED));
+    assert_eq!(written.into_iter().cloned().collect::<Vec<_>>(), plain);
+    assert_eq!(injected.len(), plain.len());
+    let probe_answers =
+        std::fs::read_to_string(probe_dir.join("probe-answers.jsonl")).expect("probe answers");
+    let with_instruction = probe_answers
+        .lines()
+        .map(|l| serde_json::from_str::<serde_json::Value>(l).expect("json"))
+        .filter(|v| v["system"].as_str().is_some_and(|s| s.ends_with(INJECTED)))
+        .filter(|v| v["answer"].as_str().is_some_and(|a| a.ends_with(DEFAULT_INJECTION)))
+        .count();
+    assert_eq!(with_instruction, plain.len());
+}
