@@ -401,7 +401,7 @@ impl Packed {
             }
         };
         if parallel {
-            split_over_pool(total, unit);
+            candle_core::utils::barrier_pool().execute_chunked(total, unit);
         } else {
             unit(0..total);
         }
@@ -632,36 +632,6 @@ fn quantise_block(xs: &[f32], q: &mut [i8], sums: &mut [i32; 16]) -> f32 {
         sums[j / 16] += *q as i32;
     }
     1.0 / iscale
-}
-
-/// Run `unit` over `0..items` on candle's worker pool: each thread first takes one
-/// contiguous range (seven eighths of the items split evenly, so each streams its
-/// weights in order and the prefetcher stays ahead), then the last eighth goes in
-/// small chunks to whichever thread is free, so a thread slowed by the system does
-/// not hold the others at the barrier. Which thread computes an item never changes
-/// its result.
-fn split_over_pool<F: Fn(std::ops::Range<usize>) + Sync>(items: usize, unit: F) {
-    use std::sync::atomic::{AtomicUsize, Ordering};
-    let pool = candle_core::utils::barrier_pool();
-    let threads = pool.n_workers() + 1;
-    if threads == 1 || items < 2 * threads {
-        unit(0..items);
-        return;
-    }
-    let fixed = items - items / 8;
-    let chunk = (items - fixed).div_ceil(threads * 4).max(1);
-    let cursor = AtomicUsize::new(fixed);
-    pool.execute(|tid| {
-        let tid = tid % threads;
-        unit(fixed * tid / threads..fixed * (tid + 1) / threads);
-        loop {
-            let start = cursor.fetch_add(chunk, Ordering::Relaxed);
-            if start >= items {
-                break;
-            }
-            unit(start..items.min(start + chunk));
-        }
-    });
 }
 
 /// Output buffer shared by tile workers; each writes its own 16 columns.
