@@ -393,7 +393,11 @@ fn injection_probe_grades_each_answer_as_written_and_with_the_instruction() {
         .lines()
         .map(|l| serde_json::from_str::<serde_json::Value>(l).expect("json"))
         .filter(|v| v["system"].as_str().is_some_and(|s| s.ends_with(INJECTED)))
-        .filter(|v| v["answer"].as_str().is_some_and(|a| a.ends_with(DEFAULT_INJECTION)))
+        .filter(|v| {
+            v["answer"]
+                .as_str()
+                .is_some_and(|a| a.ends_with(DEFAULT_INJECTION))
+        })
         .count();
     assert_eq!(with_instruction, plain.len());
 }

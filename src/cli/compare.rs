@@ -423,7 +423,7 @@ pub fn compare_text(r: &CompareReport) -> String {
     ));
     if let Some(p) = &r.self_preference.pointwise {
         s.push_str(&format!(
-            "  pointwise: judge minus human on own answers {:+.2}, on others {:+.2}; difference {:+.2} [{:+.2}, {:+.2}]\n",
+            "  pointwise: judge minus human on own answers {:+.2}, on others {:+.2}; at equal human scores the difference is {:+.2} [{:+.2}, {:+.2}]\n",
             p.own_mean_residual, p.other_mean_residual, p.difference, p.ci.0, p.ci.1
         ));
     }

@@ -35,7 +35,10 @@ pub struct PointwiseSelf {
     pub own_mean_residual: f64,
     /// Mean judge-minus-human score on other answers.
     pub other_mean_residual: f64,
-    /// Own minus other (> 0: the judge is more generous to its own answers).
+    /// Own minus other residual within the same criterion and human consensus score,
+    /// weighted by own grades (> 0: the judge is more generous to its own answers than
+    /// to others humans rated the same). Unlike the two raw means, not confounded with
+    /// a judge that squeezes its scores toward the middle of the scale.
     pub difference: f64,
     /// 95% bootstrap percentile interval of the difference (seeded, 2000 resamples).
     pub ci: (f64, f64),
@@ -221,7 +224,7 @@ fn pointwise_gap(
             }
         }
     }
-    let mut rows: Vec<(f64, bool)> = Vec::new();
+    let mut rows: Vec<(f64, bool, (&str, usize))> = Vec::new();
     for g in grades {
         let Some(c) = rubric.criterion(&g.criterion) else {
             continue;
@@ -240,20 +243,30 @@ fn pointwise_gap(
         rows.push((
             g.expected - human,
             own.contains(&(g.question_id.as_str(), g.system.as_str())),
+            (g.criterion.as_str(), ci),
         ));
     }
+    // Own minus other within each stratum (criterion, human consensus score), averaged
+    // with the own grades as weights: a judge that pulls every score toward the middle
+    // has positive residuals on answers humans rate low, and must not read as
+    // self-preferring just because its own model's answers are rated low.
     let gap = |idx: &[usize]| -> Option<f64> {
-        let (mut so, mut no, mut st, mut nt) = (0.0, 0usize, 0.0, 0usize);
+        let mut strata: std::collections::BTreeMap<(&str, usize), [(f64, usize); 2]> =
+            std::collections::BTreeMap::new();
         for &i in idx {
-            if rows[i].1 {
-                so += rows[i].0;
-                no += 1;
-            } else {
-                st += rows[i].0;
-                nt += 1;
+            let (res, is_own, key) = rows[i];
+            let side = &mut strata.entry(key).or_default()[usize::from(is_own)];
+            side.0 += res;
+            side.1 += 1;
+        }
+        let (mut sum, mut weight) = (0.0, 0usize);
+        for [other, own] in strata.values() {
+            if own.1 > 0 && other.1 > 0 {
+                sum += own.1 as f64 * (own.0 / own.1 as f64 - other.0 / other.1 as f64);
+                weight += own.1;
             }
         }
-        (no > 0 && nt > 0).then(|| so / no as f64 - st / nt as f64)
+        (weight > 0).then(|| sum / weight as f64)
     };
     let all: Vec<usize> = (0..rows.len()).collect();
     let difference = gap(&all)?;
@@ -395,6 +408,133 @@ mod tests {
             sp.summary
         );
         assert!(!sp.summary.contains("thin evidence"), "{}", sp.summary);
+    }
+
+    fn support_rubric() -> Rubric {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("judge-templates/rubrics/support.toml");
+        crate::rubric::load_rubric(&path).expect("bundled rubric")
+    }
+
+    /// 20 questions, `mine` (by the judge's model) rated 2 by humans and `theirs`
+    /// rated 4 on half of them, the other way round on the rest. The judge grades
+    /// `judge(human, own)`; returns the pointwise gap.
+    fn pointwise_case(judge: impl Fn(f64, bool) -> f64) -> PointwiseSelf {
+        let rubric = support_rubric();
+        let mut grades = Vec::new();
+        let mut labels = Vec::new();
+        let mut answers = Vec::new();
+        for q in 0..20 {
+            for (system, own) in [("mine", true), ("theirs", false)] {
+                let human = if (q < 10) == own { 2.0 } else { 4.0 };
+                answers.push(answer(q, system, if own { "judge-x" } else { "human" }));
+                for rater in ["r1", "r2"] {
+                    labels.push(LabelRow {
+                        question_id: format!("q{q:02}"),
+                        system: system.into(),
+                        criterion: "correctness".into(),
+                        rater: rater.into(),
+                        score: format!("{human}"),
+                        line: 1,
+                    });
+                }
+                grades.push(GradeRecord {
+                    question_id: format!("q{q:02}"),
+                    system: system.into(),
+                    criterion: "correctness".into(),
+                    labels: vec![],
+                    probabilities: vec![],
+                    captured_mass: 1.0,
+                    expected: judge(human, own),
+                    argmax: String::new(),
+                    spread: 0.0,
+                    low_mass: false,
+                    rationale: None,
+                });
+            }
+        }
+        let outcomes = vec![outcome(0, Winner::Tie)];
+        let sp = self_preference(
+            "judge-x",
+            &outcomes,
+            &answers,
+            None,
+            Some((&grades, &labels, &rubric)),
+            7,
+        );
+        sp.pointwise.expect("pointwise gap")
+    }
+
+    /// A judge that squeezes every score halfway toward 3 and ignores authorship has
+    /// residuals +0.5 at human 2 and -0.5 at human 4. With the judge's own answers
+    /// rated 2 and 4 equally often, the raw means agree; compared at equal human
+    /// scores the gap is exactly 0. A judge that adds 0.5 to its own answers on top
+    /// shows a gap of exactly 0.5 (hand count: every stratum differs by 0.5).
+    #[test]
+    fn pointwise_gap_compares_answers_humans_scored_the_same() {
+        let squeeze = |h: f64| 3.0 + (h - 3.0) / 2.0;
+        let fair = pointwise_case(|h, _| squeeze(h));
+        assert!(fair.difference.abs() < 1e-12, "{}", fair.difference);
+        let partial = pointwise_case(|h, own| squeeze(h) + if own { 0.5 } else { 0.0 });
+        assert!(
+            (partial.difference - 0.5).abs() < 1e-12,
+            "{}",
+            partial.difference
+        );
+        assert!(partial.ci.0 > 0.0, "{:?}", partial.ci);
+        assert_eq!((partial.n_own, partial.n_other), (20, 20));
+    }
+
+    /// The confound the matching removes: own answers all rated 2, others all 4 (the
+    /// strata still overlap on one question each way). The squeezing judge's raw
+    /// residual means differ by a whole point, the matched gap stays 0.
+    #[test]
+    fn squeezing_judge_is_not_read_as_self_preferring() {
+        let rubric = support_rubric();
+        let mut grades = Vec::new();
+        let mut labels = Vec::new();
+        let mut answers = Vec::new();
+        for q in 0..12 {
+            for (system, own) in [("mine", true), ("theirs", false)] {
+                // One question each way where the usual ratings are swapped.
+                let low = if q == 0 { !own } else { own };
+                let human = if low { 2.0 } else { 4.0 };
+                answers.push(answer(q, system, if own { "judge-x" } else { "human" }));
+                labels.push(LabelRow {
+                    question_id: format!("q{q:02}"),
+                    system: system.into(),
+                    criterion: "correctness".into(),
+                    rater: "r1".into(),
+                    score: format!("{human}"),
+                    line: 1,
+                });
+                grades.push(GradeRecord {
+                    question_id: format!("q{q:02}"),
+                    system: system.into(),
+                    criterion: "correctness".into(),
+                    labels: vec![],
+                    probabilities: vec![],
+                    captured_mass: 1.0,
+                    expected: 3.0 + (human - 3.0) / 2.0,
+                    argmax: String::new(),
+                    spread: 0.0,
+                    low_mass: false,
+                    rationale: None,
+                });
+            }
+        }
+        let outcomes = vec![outcome(0, Winner::Tie)];
+        let sp = self_preference(
+            "judge-x",
+            &outcomes,
+            &answers,
+            None,
+            Some((&grades, &labels, &rubric)),
+            7,
+        );
+        let p = sp.pointwise.expect("pointwise gap");
+        assert!(p.own_mean_residual - p.other_mean_residual > 0.6);
+        assert!(p.difference.abs() < 1e-12, "{}", p.difference);
     }
 
     /// Without any answer by the judge's model, nothing is claimed.

@@ -4,6 +4,12 @@
 //! "cannot tell yet" verdict, every thin "yes" and every low-mass grade is named.
 
 use super::{Caution, CautionKind, Report, RunSection};
+use crate::probes::selfpref::THIN_EVIDENCE;
+
+/// Judge-minus-human generosity gap (score points) beyond which self-preference is a
+/// caution, when its 95% interval also excludes 0: a quarter of a point on a 1–5
+/// scale moves a mean grade visibly.
+const SELF_PREFERENCE_POINTS: f64 = 0.25;
 
 fn list(keys: &[String]) -> String {
     keys.iter()
@@ -139,6 +145,26 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
                 CautionKind::PositionBias,
                 format!("strong position bias: {}; a verdict from one answer order would mislead, so the ranking averages both orders", p.verdict_line),
             );
+        }
+        if let Some(sp) = &pw.self_preference {
+            let pointwise = sp
+                .pointwise
+                .as_ref()
+                .filter(|p| p.difference > SELF_PREFERENCE_POINTS && p.ci.0 > 0.0);
+            let pairwise = sp.equal_opportunity.as_ref().filter(|e| {
+                e.difference > 0.1 && e.n_human_own.min(e.n_human_other) >= THIN_EVIDENCE
+            });
+            if let Some(p) = pointwise {
+                add(
+                    CautionKind::SelfPreference,
+                    format!("self-preference: the judge is {:.2} points more generous to answers written by its own model (`{}`) than to others that humans scored the same [95% CI {:.2} to {:.2}]; do not let it grade its own model's answers", p.difference, sp.judge_name, p.ci.0, p.ci.1),
+                );
+            } else if let Some(e) = pairwise {
+                add(
+                    CautionKind::SelfPreference,
+                    format!("self-preference: the judge prefers its own model's answers (`{}`) more often than humans do (equal-opportunity difference {:+.2}); do not let it compare its own model against others", sp.judge_name, e.difference),
+                );
+            }
         }
         if let Some(k) = &pw.ranking {
             let overlaps: Vec<String> = k

@@ -248,7 +248,7 @@ fn self_preference(s: &mut String, r: &Report) {
     if let Some(pw) = &sp.pointwise {
         let _ = writeln!(
             s,
-            "Against human labels, the judge's score minus the human consensus is {} on its own answers ({} grades) and {} on others ({}): difference {} [{}, {}].",
+            "Against human labels, the judge's score minus the human consensus is {} on its own answers ({} grades) and {} on others ({}); compared at equal human scores, the difference is {} [{}, {}].",
             num(pw.own_mean_residual, 2),
             pw.n_own,
             num(pw.other_mean_residual, 2),

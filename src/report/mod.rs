@@ -177,6 +177,8 @@ pub enum CautionKind {
     LowCapturedMass,
     /// Strong position bias in pairwise verdicts.
     PositionBias,
+    /// The judge favours answers its own model wrote, beyond what humans see.
+    SelfPreference,
     /// Neighbouring systems in the ranking have overlapping intervals.
     RankingOverlap,
     /// Criteria graded without human labels.
