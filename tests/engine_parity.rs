@@ -618,3 +618,39 @@ fn unsupported_rope_scaling_is_refused() {
         "{text}"
     );
 }
+
+/// A prompt longer than one forward chunk (512 tokens) gives, on the tile kernels, the
+/// same logits bit for bit as the same tokens fed in pieces with other boundaries:
+/// chunking bounds memory without changing a result.
+#[test]
+fn long_prompt_in_chunks_equals_other_splits_bit_for_bit() {
+    if !assize::engine::kernels::enabled() {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = Tiny {
+        context_length: 1100,
+        ..Tiny::new("qwen2")
+    };
+    let dec = load(&spec.write(dir.path()), Numerics::default(), None);
+    let tokens = prompt(21, 1000, VOCAB);
+    let whole = dec
+        .forward_all(&mut dec.new_cache(), &tokens)
+        .expect("whole prompt");
+    let mut cache = dec.new_cache();
+    let mut pieces = dec
+        .forward_all(&mut cache, &tokens[..300])
+        .expect("first piece");
+    pieces.extend(
+        dec.forward_all(&mut cache, &tokens[300..])
+            .expect("second piece"),
+    );
+    assert_eq!(whole.len(), 1000);
+    let bits =
+        |rows: &[Vec<f32>]| -> Vec<u32> { rows.iter().flatten().map(|x| x.to_bits()).collect() };
+    assert_eq!(bits(&whole), bits(&pieces));
+    let last = dec
+        .forward_last(&mut dec.new_cache(), &tokens)
+        .expect("last only");
+    assert_eq!(bits(&[last]), bits(&whole[999..]));
+}

@@ -444,13 +444,35 @@ impl Decoder {
             });
         }
         let start = cache.len;
-        let result = self.run(cache, tokens, all);
-        if result.is_err() {
-            cache.truncate(start);
+        // Long prompts run in chunks: activation buffers stay bounded by the chunk
+        // while the key/value cache grows. On the tile kernels every row's result is
+        // independent of the other rows of its call (products and attention alike), so
+        // chunking changes no bit; candle's fallback paths pick kernels by row count
+        // and may move results by rounding, as a forked prefix does there.
+        let mut rows = Vec::new();
+        let mut result = Ok(());
+        for chunk in tokens.chunks(PROMPT_CHUNK) {
+            let last_chunk = std::ptr::eq(chunk.as_ptr_range().end, tokens.as_ptr_range().end);
+            match self.run(cache, chunk, all) {
+                Ok(r) if all => rows.extend(r),
+                Ok(r) if last_chunk => rows = r,
+                Ok(_) => {}
+                Err(e) => {
+                    result = Err(e);
+                    break;
+                }
+            }
         }
-        result
+        if let Err(e) = result {
+            cache.truncate(start);
+            return Err(e);
+        }
+        Ok(rows)
     }
 }
+
+/// Tokens per forward pass of a long prompt (see `forward_rows`).
+const PROMPT_CHUNK: usize = 512;
 
 /// Position multiplier of `{arch}.rope.scaling.*`: 1 without scaling, `1 / factor` for
 /// linear scaling. YaRN and other kinds change attention in ways this decoder does not
