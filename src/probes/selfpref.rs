@@ -416,96 +416,26 @@ mod tests {
         crate::rubric::load_rubric(&path).expect("bundled rubric")
     }
 
-    /// 20 questions, `mine` (by the judge's model) rated 2 by humans and `theirs`
-    /// rated 4 on half of them, the other way round on the rest. The judge grades
-    /// `judge(human, own)`; returns the pointwise gap.
-    fn pointwise_case(judge: impl Fn(f64, bool) -> f64) -> PointwiseSelf {
+    /// `n` questions answered by `mine` (the judge's model) and `theirs`; humans give
+    /// each answer `human(q, own)`, the judge `judge(human, own)`. Returns the
+    /// pointwise gap.
+    fn pointwise_case(
+        n: usize,
+        human: impl Fn(usize, bool) -> f64,
+        judge: impl Fn(f64, bool) -> f64,
+    ) -> PointwiseSelf {
         let rubric = support_rubric();
-        let mut grades = Vec::new();
-        let mut labels = Vec::new();
-        let mut answers = Vec::new();
-        for q in 0..20 {
+        let (mut grades, mut labels, mut answers) = (Vec::new(), Vec::new(), Vec::new());
+        for q in 0..n {
             for (system, own) in [("mine", true), ("theirs", false)] {
-                let human = if (q < 10) == own { 2.0 } else { 4.0 };
-                answers.push(answer(q, system, if own { "judge-x" } else { "human" }));
-                for rater in ["r1", "r2"] {
-                    labels.push(LabelRow {
-                        question_id: format!("q{q:02}"),
-                        system: system.into(),
-                        criterion: "correctness".into(),
-                        rater: rater.into(),
-                        score: format!("{human}"),
-                        line: 1,
-                    });
-                }
-                grades.push(GradeRecord {
-                    question_id: format!("q{q:02}"),
-                    system: system.into(),
-                    criterion: "correctness".into(),
-                    labels: vec![],
-                    probabilities: vec![],
-                    captured_mass: 1.0,
-                    expected: judge(human, own),
-                    argmax: String::new(),
-                    spread: 0.0,
-                    low_mass: false,
-                    rationale: None,
-                });
-            }
-        }
-        let outcomes = vec![outcome(0, Winner::Tie)];
-        let sp = self_preference(
-            "judge-x",
-            &outcomes,
-            &answers,
-            None,
-            Some((&grades, &labels, &rubric)),
-            7,
-        );
-        sp.pointwise.expect("pointwise gap")
-    }
-
-    /// A judge that squeezes every score halfway toward 3 and ignores authorship has
-    /// residuals +0.5 at human 2 and -0.5 at human 4. With the judge's own answers
-    /// rated 2 and 4 equally often, the raw means agree; compared at equal human
-    /// scores the gap is exactly 0. A judge that adds 0.5 to its own answers on top
-    /// shows a gap of exactly 0.5 (hand count: every stratum differs by 0.5).
-    #[test]
-    fn pointwise_gap_compares_answers_humans_scored_the_same() {
-        let squeeze = |h: f64| 3.0 + (h - 3.0) / 2.0;
-        let fair = pointwise_case(|h, _| squeeze(h));
-        assert!(fair.difference.abs() < 1e-12, "{}", fair.difference);
-        let partial = pointwise_case(|h, own| squeeze(h) + if own { 0.5 } else { 0.0 });
-        assert!(
-            (partial.difference - 0.5).abs() < 1e-12,
-            "{}",
-            partial.difference
-        );
-        assert!(partial.ci.0 > 0.0, "{:?}", partial.ci);
-        assert_eq!((partial.n_own, partial.n_other), (20, 20));
-    }
-
-    /// The confound the matching removes: own answers all rated 2, others all 4 (the
-    /// strata still overlap on one question each way). The squeezing judge's raw
-    /// residual means differ by a whole point, the matched gap stays 0.
-    #[test]
-    fn squeezing_judge_is_not_read_as_self_preferring() {
-        let rubric = support_rubric();
-        let mut grades = Vec::new();
-        let mut labels = Vec::new();
-        let mut answers = Vec::new();
-        for q in 0..12 {
-            for (system, own) in [("mine", true), ("theirs", false)] {
-                // One question each way where the usual ratings are swapped.
-                let low = if q == 0 { !own } else { own };
-                let human = if low { 2.0 } else { 4.0 };
+                let h = human(q, own);
                 answers.push(answer(q, system, if own { "judge-x" } else { "human" }));
                 labels.push(LabelRow {
                     question_id: format!("q{q:02}"),
                     system: system.into(),
                     criterion: "correctness".into(),
                     rater: "r1".into(),
-                    score: format!("{human}"),
+                    score: format!("{h}"),
                     line: 1,
                 });
                 grades.push(GradeRecord {
@@ -515,7 +445,7 @@ mod tests {
                     labels: vec![],
                     probabilities: vec![],
                     captured_mass: 1.0,
-                    expected: 3.0 + (human - 3.0) / 2.0,
+                    expected: judge(h, own),
                     argmax: String::new(),
                     spread: 0.0,
                     low_mass: false,
@@ -524,15 +454,45 @@ mod tests {
             }
         }
         let outcomes = vec![outcome(0, Winner::Tie)];
-        let sp = self_preference(
-            "judge-x",
-            &outcomes,
-            &answers,
-            None,
-            Some((&grades, &labels, &rubric)),
-            7,
+        let grades_labels = Some((grades.as_slice(), labels.as_slice(), &rubric));
+        self_preference("judge-x", &outcomes, &answers, None, grades_labels, 7)
+            .pointwise
+            .expect("pointwise gap")
+    }
+
+    /// A judge that squeezes every score halfway toward 3.
+    fn squeeze(h: f64) -> f64 {
+        3.0 + (h - 3.0) / 2.0
+    }
+
+    /// 20 questions; humans rate `mine` 2 and `theirs` 4 on half, the other way round
+    /// on the rest. The squeezing judge that ignores authorship has residuals +0.5 at
+    /// human 2 and -0.5 at human 4: compared at equal human scores the gap is exactly
+    /// 0. A judge that adds 0.5 to its own answers on top shows a gap of exactly 0.5
+    /// (hand count: every stratum differs by 0.5).
+    #[test]
+    fn pointwise_gap_compares_answers_humans_scored_the_same() {
+        let human = |q: usize, own: bool| if (q < 10) == own { 2.0 } else { 4.0 };
+        let fair = pointwise_case(20, human, |h, _| squeeze(h));
+        assert!(fair.difference.abs() < 1e-12, "{}", fair.difference);
+        let partial = pointwise_case(20, human, |h, own| squeeze(h) + if own { 0.5 } else { 0.0 });
+        assert!(
+            (partial.difference - 0.5).abs() < 1e-12,
+            "{}",
+            partial.difference
         );
-        let p = sp.pointwise.expect("pointwise gap");
+        assert!(partial.ci.0 > 0.0, "{:?}", partial.ci);
+        assert_eq!((partial.n_own, partial.n_other), (20, 20));
+    }
+
+    /// The confound the matching removes: own answers rated 2 and others 4, except
+    /// one question where the ratings are swapped (so the strata overlap). The
+    /// squeezing judge's raw residual means differ by more than half a point; the
+    /// matched gap stays 0.
+    #[test]
+    fn squeezing_judge_is_not_read_as_self_preferring() {
+        let human = |q: usize, own: bool| if (q == 0) != own { 2.0 } else { 4.0 };
+        let p = pointwise_case(12, human, |h, _| squeeze(h));
         assert!(p.own_mean_residual - p.other_mean_residual > 0.6);
         assert!(p.difference.abs() < 1e-12, "{}", p.difference);
     }
