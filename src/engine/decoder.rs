@@ -449,25 +449,25 @@ impl Decoder {
         // independent of the other rows of its call (products and attention alike), so
         // chunking changes no bit; candle's fallback paths pick kernels by row count
         // and may move results by rounding, as a forked prefix does there.
-        let mut rows = Vec::new();
-        let mut result = Ok(());
-        for chunk in tokens.chunks(PROMPT_CHUNK) {
-            let last_chunk = std::ptr::eq(chunk.as_ptr_range().end, tokens.as_ptr_range().end);
-            match self.run(cache, chunk, all) {
-                Ok(r) if all => rows.extend(r),
-                Ok(r) if last_chunk => rows = r,
-                Ok(_) => {}
-                Err(e) => {
-                    result = Err(e);
-                    break;
-                }
-            }
-        }
-        if let Err(e) = result {
+        // Only the rows whose logits are wanted go through the output projection.
+        let chunks = tokens.len().div_ceil(PROMPT_CHUNK);
+        let result =
+            tokens
+                .chunks(PROMPT_CHUNK)
+                .enumerate()
+                .try_fold(Vec::new(), |mut rows, (i, chunk)| {
+                    let from = match (all, i + 1 == chunks) {
+                        (true, _) => 0,
+                        (false, true) => chunk.len() - 1,
+                        (false, false) => chunk.len(),
+                    };
+                    rows.extend(self.run(cache, chunk, from)?);
+                    Ok(rows)
+                });
+        if result.is_err() {
             cache.truncate(start);
-            return Err(e);
         }
-        Ok(rows)
+        result
     }
 }
 
@@ -583,18 +583,14 @@ fn read_layer(
     })
 }
 
-/// Three products of the same rows in one pool call where the kernels allow.
-fn fused3(w: &[&Linear; 3], x: &[f32], m: usize) -> Result<[Vec<f32>; 3], EngineError> {
-    let mut out = Linear::forward_fused(w, x, m)?.into_iter();
-    let mut next = || out.next().expect("one result per weight");
-    Ok([next(), next(), next()])
-}
-
-/// Two products of the same rows in one pool call where the kernels allow.
-fn fused2(w: &[&Linear; 2], x: &[f32], m: usize) -> Result<[Vec<f32>; 2], EngineError> {
-    let mut out = Linear::forward_fused(w, x, m)?.into_iter();
-    let mut next = || out.next().expect("one result per weight");
-    Ok([next(), next()])
+/// `N` products of the same rows in one pool call where the kernels allow.
+fn fused<const N: usize>(
+    w: &[&Linear; N],
+    x: &[f32],
+    m: usize,
+) -> Result<[Vec<f32>; N], EngineError> {
+    let out = Linear::forward_fused(w, x, m)?;
+    Ok(out.try_into().expect("one result per weight"))
 }
 
 /// Log-softmax of `logits`, computed in f64 for stability.
@@ -608,12 +604,13 @@ pub fn log_softmax(logits: &[f32]) -> Vec<f32> {
 }
 
 impl Decoder {
-    /// One forward pass over `tokens` (non-empty, known to fit): appends to `cache`.
+    /// One forward pass over `tokens` (non-empty, known to fit): appends to `cache`
+    /// and returns the logits of rows `from..` (none when `from == tokens.len()`).
     fn run(
         &self,
         cache: &mut KvCache,
         tokens: &[u32],
-        all: bool,
+        from: usize,
     ) -> Result<Vec<Vec<f32>>, EngineError> {
         let c = &self.cfg;
         let (m, pos0, eps) = (tokens.len(), cache.len, c.rms_eps);
@@ -629,7 +626,7 @@ impl Decoder {
         }
         for (li, l) in self.layers.iter().enumerate() {
             let h = rms_norm(&x, &l.attn_norm, eps);
-            let [mut q, mut k, mut v] = fused3(&[&l.wq, &l.wk, &l.wv], &h, m)?;
+            let [mut q, mut k, mut v] = fused(&[&l.wq, &l.wk, &l.wv], &h, m)?;
             add_bias(&mut q, l.bq.as_deref());
             add_bias(&mut k, l.bk.as_deref());
             add_bias(&mut v, l.bv.as_deref());
@@ -667,7 +664,7 @@ impl Decoder {
             }
             add_into(&mut x, &o);
             let h = rms_norm(&x, &l.ffn_norm, eps);
-            let [mut a, u] = fused2(&[&l.gate, &l.up], &h, m)?;
+            let [mut a, u] = fused(&[&l.gate, &l.up], &h, m)?;
             let act = c.activation;
             a.iter_mut()
                 .zip(&u)
@@ -679,9 +676,11 @@ impl Decoder {
             add_into(&mut x, &d);
         }
         cache.len += m;
-        let first = if all { 0 } else { m - 1 };
-        let last = rms_norm(&x[first * c.hidden..], &self.out_norm, eps);
-        let logits = self.output.forward(&last, m - first)?;
+        if from >= m {
+            return Ok(Vec::new());
+        }
+        let last = rms_norm(&x[from * c.hidden..], &self.out_norm, eps);
+        let logits = self.output.forward(&last, m - from)?;
         Ok(logits.chunks(c.vocab).map(<[f32]>::to_vec).collect())
     }
 }
