@@ -6,6 +6,7 @@
 pub mod anchors;
 pub mod grade;
 pub mod pairwise;
+pub mod panel;
 pub mod records;
 pub mod scripted;
 pub mod steps;
