@@ -8,6 +8,7 @@
 pub mod cli;
 pub mod data;
 pub mod engine;
+pub mod jobs;
 pub mod judge;
 pub mod overlap;
 pub mod probes;

@@ -34,6 +34,7 @@ fn args(run_dir: PathBuf) -> GradeArgs {
         low_mass: 0.5,
         seed: 7,
         run_dir: Some(run_dir),
+        shard: None,
         limit: Some(6),
         no_prefix_reuse: false,
         templates: None,

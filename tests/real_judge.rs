@@ -80,6 +80,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         low_mass: 0.5,
         seed: 7,
         run_dir: Some(run_dir),
+        shard: None,
         limit: None,
         no_prefix_reuse: false,
         templates: None,
@@ -108,6 +109,7 @@ fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> 
         resamples: 50,
         seed: 7,
         run_dir: Some(run_dir),
+        shard: None,
         limit: None,
         templates: None,
         output: OutputArgs {

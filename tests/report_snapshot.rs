@@ -82,6 +82,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         low_mass: 0.5,
         seed: 7,
         run_dir: Some(run_dir),
+        shard: None,
         limit: Some(ITEMS),
         no_prefix_reuse: false,
         templates: None,
@@ -203,6 +204,7 @@ fn generate(dir: &Path) {
         resamples: 200,
         seed: 7,
         run_dir: Some(dir.join("compare")),
+        shard: None,
         limit: Some(ITEMS / 2),
         templates: None,
         output: OutputArgs {

@@ -11,8 +11,9 @@ use anyhow::Context as _;
 use clap::Args;
 use serde::Serialize;
 
-use super::common::{default_run_dir, file_sha256, load_judge, progress, ModelArgs};
-use super::errors::{usage, Usage};
+use super::common::{default_run_dir, load_judge, ModelArgs};
+use super::errors::usage;
+use super::grade::{shard_identity, shown_path, ModelId};
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels, read_preferences, AnswerRecord};
 use crate::judge::pairwise::{judge_both_orders, OVERALL_QUESTION};
@@ -24,7 +25,8 @@ use crate::probes::{pair_outcomes, PairOutcome};
 use crate::rubric::forms::Forms;
 use crate::rubric::{load_rubric, Need};
 use crate::stats::pairwise::{position_bias, PositionBias};
-use crate::store::{read_records, Appender, Manifest, RunDir};
+use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
+use crate::store::{read_records, Manifest};
 
 /// Results file of a comparison run.
 pub const PAIRS_FILE: &str = "pairs.jsonl";
@@ -72,6 +74,9 @@ pub struct CompareArgs {
     /// Run folder (default: `runs/compare-HASH`)
     #[arg(long, value_name = "DIR")]
     pub run_dir: Option<PathBuf>,
+    /// Take only shard K of N (K from 0); `env/N` or `env` reads K (and N) from a Kubernetes Indexed Job or Slurm job array
+    #[arg(long, value_name = "K/N", value_parser = Shard::parse)]
+    pub shard: Option<Shard>,
     /// Judge at most this many questions (in file order)
     #[arg(long, value_name = "N")]
     pub limit: Option<usize>,
@@ -148,8 +153,28 @@ fn pairs_to_judge(
     out
 }
 
-/// Judge all pairs not yet in the run folder and build the report.
-pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<CompareReport> {
+/// A comparison's inputs, checked before any judge loads.
+pub struct CompareSetup {
+    /// Every answer in the file.
+    pub answers: Vec<AnswerRecord>,
+    /// Form templates.
+    pub forms: Forms,
+    /// Criterion key, or `overall`.
+    pub criterion: String,
+    /// The question the judge answers for each pair.
+    pub question: String,
+    /// Show references / contexts in the form.
+    pub show_ref: bool,
+    /// Show contexts in the form.
+    pub show_ctx: bool,
+    /// Pairs to judge, in file order.
+    pub pairs: Vec<(AnswerRecord, AnswerRecord)>,
+    /// The rubric's text and hash, when a criterion is compared.
+    pub rubric: Option<(String, String)>,
+}
+
+/// Read and check the answers, systems, criterion and templates.
+pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
     let answers = read_answers(&args.answers)?;
     let systems_present: HashSet<&str> = answers.iter().map(|a| a.system.as_str()).collect();
     for s in &args.systems {
@@ -171,7 +196,7 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
         Some(d) => Forms::from_dir(d)?,
         None => Forms::builtin()?,
     };
-    let (criterion, question, show_ref, show_ctx) = match &args.criterion {
+    let (criterion, question, show_ref, show_ctx, rubric) = match &args.criterion {
         Some(k) => {
             let rubric = load_rubric(&args.rubric)?;
             let c = rubric.criterion(k).ok_or_else(|| {
@@ -193,6 +218,7 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
                 format!("{} Which answer does better on this?", c.question),
                 c.needs.contains(&Need::Reference),
                 c.needs.contains(&Need::Context),
+                Some((rubric.text.clone(), rubric.sha256.clone())),
             )
         }
         None => (
@@ -200,6 +226,7 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
             OVERALL_QUESTION.to_string(),
             true,
             true,
+            None,
         ),
     };
     let pairs = pairs_to_judge(&answers, &args.systems, args.limit);
@@ -209,95 +236,133 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
             "give answers of at least two systems to the same `question_id`",
         ));
     }
+    Ok(CompareSetup {
+        answers,
+        forms,
+        criterion,
+        question,
+        show_ref,
+        show_ctx,
+        pairs,
+        rubric,
+    })
+}
+
+/// The comparison job: one unit per pair of answers, producing both orders.
+pub fn open_compare_job(
+    args: &CompareArgs,
+    s: &CompareSetup,
+    model: &ModelId,
+) -> anyhow::Result<Job<(AnswerRecord, AnswerRecord)>> {
+    let mut inputs = std::collections::BTreeMap::new();
+    inputs.insert("answers".to_string(), shown_path(&args.answers));
+    if s.rubric.is_some() {
+        inputs.insert("rubric".to_string(), shown_path(&args.rubric));
+    }
     let manifest = Manifest {
         kind: "compare".into(),
         tool_version: env!("CARGO_PKG_VERSION").into(),
-        model_path: backend.model_path(),
-        model_sha256: backend.model_sha256(),
-        answers_sha256: file_sha256(&args.answers)?,
-        rubric_sha256: if args.criterion.is_some() {
-            file_sha256(&args.rubric)?
-        } else {
-            String::new()
-        },
-        templates_sha256: forms.sha256.clone(),
+        model_path: model.path.clone(),
+        model_sha256: model.sha256.clone(),
+        rubric_sha256: s.rubric.as_ref().map(|r| r.1.clone()).unwrap_or_default(),
+        templates_sha256: s.forms.sha256.clone(),
         options: vec![
-            format!("criterion={criterion}"),
+            format!("criterion={}", s.criterion),
             format!("systems={}", args.systems.join(",")),
         ],
         seed: args.seed,
+        rubric_toml: s.rubric.as_ref().map(|r| r.0.clone()),
+        inputs,
+        shard: None,
     };
     let dir = match &args.run_dir {
         Some(d) => d.clone(),
-        None => default_run_dir("compare", &serde_json::to_string(&manifest)?),
+        None => default_run_dir("compare", &shard_identity(&manifest, args.shard)),
     };
-    let run = RunDir::open(&dir, manifest).map_err(|e| {
-        anyhow::Error::new(e).context(Usage {
-            what: format!("cannot use run folder `{}`", dir.display()),
-            fix: "pass another `--run-dir`, or leave it out to get a folder named after the inputs"
-                .into(),
-        })
-    })?;
-    let path = run.file(PAIRS_FILE);
-    let done: HashSet<String> = read_records::<PairRecord>(&path)?
+    let c = &s.criterion;
+    let units = s
+        .pairs
         .iter()
-        .map(PairRecord::key)
-        .collect();
-    let todo: Vec<&(AnswerRecord, AnswerRecord)> = pairs
-        .iter()
-        .filter(|(a, b)| {
-            !done.contains(&format!(
-                "{}/{}/{}/{}",
-                a.question_id, criterion, a.system, b.system
-            )) || !done.contains(&format!(
-                "{}/{}/{}/{}",
-                a.question_id, criterion, b.system, a.system
-            ))
+        .map(|(a, b)| Unit {
+            key: format!("{}/{}/{}", a.question_id, a.system, b.system),
+            input: input_hash(&(a, b)),
+            records: vec![
+                format!("{}/{c}/{}/{}", a.question_id, a.system, b.system),
+                format!("{}/{c}/{}/{}", a.question_id, b.system, a.system),
+            ],
+            data: (a.clone(), b.clone()),
         })
         .collect();
+    let spec = JobSpec {
+        dir: dir.clone(),
+        manifest,
+        results: PAIRS_FILE,
+        what: "comparing",
+        quiet: args.output.quiet,
+        shard: args.shard,
+        slow_append: None,
+    };
+    Job::open(spec, units).with_context(|| format!("cannot use run folder `{}`", dir.display()))
+}
+
+/// Judge all pairs not yet in the run folder and build the report.
+pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<CompareReport> {
+    let setup = compare_setup(args)?;
+    let job = open_compare_job(args, &setup, &ModelId::of(backend))?;
+    finish_compare(args, &setup, job, Some(backend))
+}
+
+/// Run a comparison job; `backend` may be `None` only when nothing remains.
+pub fn finish_compare(
+    args: &CompareArgs,
+    s: &CompareSetup,
+    job: Job<(AnswerRecord, AnswerRecord)>,
+    backend: Option<&dyn Backend>,
+) -> anyhow::Result<CompareReport> {
+    let dir = job.dir().to_path_buf();
     if !args.output.quiet {
         eprintln!(
             "run folder `{}`: {} of {} pairs already judged",
             dir.display(),
-            pairs.len() - todo.len(),
-            pairs.len()
+            job.total() - job.remaining(),
+            job.total()
         );
     }
-    let mut app = Appender::open(&path)?;
-    let bar = progress(todo.len() as u64, "comparing", args.output.quiet);
-    let mut computed = 0;
-    for (a, b) in todo {
-        let recs = judge_both_orders(
-            backend, &forms, a, b, &criterion, &question, show_ref, show_ctx,
-        )
-        .with_context(|| {
+    let outcome = job.run(
+        |(a, b)| {
+            let backend = backend.expect("a judge is loaded when work remains");
+            Ok(judge_both_orders(
+                backend, &s.forms, a, b, &s.criterion, &s.question, s.show_ref, s.show_ctx,
+            )?
+            .to_vec())
+        },
+        PairRecord::key,
+    )?;
+    if !outcome.failed.is_empty() {
+        return Err(usage(
             format!(
-                "cannot judge `{}` ({} vs {})",
-                a.question_id, a.system, b.system
-            )
-        })?;
-        for r in recs.iter().filter(|r| !done.contains(&r.key())) {
-            app.append(r)?;
-            computed += 1;
-        }
-        bar.inc(1);
+                "{} pair(s) could not be judged; every other pair is saved in `{}`:\n{}",
+                outcome.failed.len(),
+                dir.display(),
+                crate::data::list(
+                    &outcome
+                        .failed
+                        .iter()
+                        .map(|f| format!("{}: {}", f.unit, f.error))
+                        .collect::<Vec<_>>()
+                )
+            ),
+            "shorten those answers or raise `--context`, then run the same command again to finish",
+        ));
     }
-    bar.finish_and_clear();
-    let records: Vec<PairRecord> = read_records::<PairRecord>(&path)?
-        .into_iter()
-        .filter(|r| r.criterion == criterion)
-        .collect();
-    let wanted: HashSet<(String, String, String)> = pairs
-        .iter()
-        .map(|(a, b)| (a.question_id.clone(), a.system.clone(), b.system.clone()))
-        .collect();
-    let outcomes: Vec<PairOutcome> = pair_outcomes(&records)?
-        .into_iter()
-        .filter(|o| wanted.contains(&(o.question_id.clone(), o.a.clone(), o.b.clone())))
-        .collect();
+    let criterion = s.criterion.clone();
+    let answers = &s.answers;
+    let records = outcome.records;
+    let model_path = backend.map_or_else(|| job_model(&dir), |b| b.model_path());
+    let outcomes: Vec<PairOutcome> = pair_outcomes(&records)?;
     let judged: Vec<_> = outcomes.iter().map(PairOutcome::judged).collect();
     let judge_name = args.judge_name.clone().unwrap_or_else(|| {
-        std::path::Path::new(&backend.model_path())
+        std::path::Path::new(&model_path)
             .file_stem()
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
@@ -318,7 +383,7 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
     let self_pref = self_preference(
         &judge_name,
         &outcomes,
-        &answers,
+        answers,
         prefs.as_deref(),
         grades_labels
             .as_ref()
@@ -327,25 +392,42 @@ pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<
     );
     Ok(CompareReport {
         run_dir: dir.display().to_string(),
-        model: backend.model_path(),
+        model: model_path,
         criterion,
         pairs: outcomes.len(),
-        computed,
+        computed: outcome.computed,
         position: if judged.is_empty() { None } else { Some(position_bias(&judged)?) },
         ranking: rank(&outcomes, args.resamples, args.seed).map_err(|e| {
             format!("no ranking: {e}; compare more systems against each other so every system both wins and loses somewhere")
         }),
-        length: length_probe(&outcomes, &answers),
+        length: length_probe(&outcomes, answers),
         self_preference: self_pref,
         low_mass: records.iter().filter(|r| r.captured_mass < 0.5).count(),
         outcomes,
     })
 }
 
-/// Run `assize compare`.
+/// The judge model recorded in a run folder's manifest.
+fn job_model(dir: &std::path::Path) -> String {
+    crate::store::read_manifest(dir)
+        .ok()
+        .flatten()
+        .map(|m| m.model_path)
+        .unwrap_or_default()
+}
+
+/// Run `assize compare`: check inputs and the run folder, load the judge only when
+/// pairs remain, judge them, print the report.
 pub fn run(args: CompareArgs) -> anyhow::Result<ExitCode> {
-    let judge = load_judge(&args.model, args.output.quiet)?;
-    let report = compare_run(&args, &judge)?;
+    let setup = compare_setup(&args)?;
+    let model_id = ModelId::resolve(&args.model)?;
+    let job = open_compare_job(&args, &setup, &model_id)?;
+    let judge = if job.remaining() > 0 {
+        Some(load_judge(&args.model, args.output.quiet)?)
+    } else {
+        None
+    };
+    let report = finish_compare(&args, &setup, job, judge.as_ref().map(|j| j as &dyn Backend))?;
     if args.output.json {
         print_json(&report)?;
     } else {

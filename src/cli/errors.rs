@@ -72,6 +72,12 @@ fn fix_for(err: &anyhow::Error) -> Option<String> {
         if let Some(fix) = crate::vet::fix_for(cause) {
             return Some(fix);
         }
+        if let Some(fix) = crate::store::fix_for(cause) {
+            return Some(fix);
+        }
+        if let Some(fix) = crate::jobs::merge::fix_for(cause) {
+            return Some(fix);
+        }
     }
     None
 }

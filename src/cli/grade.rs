@@ -2,7 +2,7 @@
 //! in a resumable run folder, and print per-system summaries. Never computes a
 //! statistic itself; `judge` and `stats` do.
 
-use std::collections::{HashMap, HashSet};
+use std::collections::HashMap;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
@@ -10,7 +10,7 @@ use anyhow::Context as _;
 use clap::Args;
 use serde::Serialize;
 
-use super::common::{default_run_dir, file_sha256, load_judge, progress, ModelArgs};
+use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, ModelArgs};
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::{check_labels, read_answers, read_labels, AnswerRecord};
@@ -19,7 +19,8 @@ use crate::judge::grade::{grade_item, summarize, GradeOptions, SummaryRow};
 use crate::judge::{Backend, GradeRecord};
 use crate::rubric::forms::Forms;
 use crate::rubric::{load_rubric, Rubric, RubricError};
-use crate::store::{read_records, Appender, Manifest, RunDir};
+use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
+use crate::store::Manifest;
 
 /// Results file of a grading run.
 pub const GRADES_FILE: &str = "grades.jsonl";
@@ -67,6 +68,9 @@ pub struct GradeArgs {
     /// Run folder (default: `runs/grade-HASH`, derived from model, data, rubric and options)
     #[arg(long, value_name = "DIR")]
     pub run_dir: Option<PathBuf>,
+    /// Take only shard K of N (K from 0), for running one job on many machines; `env/N` or `env` reads K (and N) from a Kubernetes Indexed Job or Slurm job array
+    #[arg(long, value_name = "K/N", value_parser = Shard::parse)]
+    pub shard: Option<Shard>,
     /// Grade at most this many answers (in file order), e.g. for a quick look
     #[arg(long, value_name = "N")]
     pub limit: Option<usize>,
@@ -194,8 +198,37 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
     })
 }
 
+/// Which judge a run uses, known before the model loads.
+#[derive(Debug, Clone)]
+pub struct ModelId {
+    /// The model file as the judge reports it.
+    pub path: String,
+    /// SHA-256 of the model file.
+    pub sha256: String,
+}
+
+impl ModelId {
+    /// The identity of a loaded (or scripted) backend.
+    pub fn of(backend: &dyn Backend) -> Self {
+        ModelId {
+            path: backend.model_path(),
+            sha256: backend.model_sha256(),
+        }
+    }
+
+    /// Resolve `--model` and hash the file, without loading it.
+    pub fn resolve(args: &ModelArgs) -> anyhow::Result<Self> {
+        let path = resolve_model(&args.model)?;
+        Ok(ModelId {
+            path: path.display().to_string(),
+            sha256: crate::engine::gguf::sha256_file(&path)
+                .with_context(|| format!("cannot read judge `{}`", path.display()))?,
+        })
+    }
+}
+
 /// The manifest of a grading run.
-pub fn manifest(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow::Result<Manifest> {
+pub fn manifest(args: &GradeArgs, p: &Prepared, model: &ModelId) -> anyhow::Result<Manifest> {
     let mut options = vec![
         format!(
             "criteria={}",
@@ -213,21 +246,92 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, backend: &dyn Backend) -> anyhow
         format!("prefix_reuse={}", !args.no_prefix_reuse),
         format!("generate_steps={}", args.generate_steps),
     ];
+    let mut inputs = std::collections::BTreeMap::new();
+    inputs.insert("answers".to_string(), shown_path(&args.answers));
+    inputs.insert("rubric".to_string(), shown_path(&args.rubric));
     if let Some(a) = &args.anchors {
         options.push(format!("anchors_sha256={}", file_sha256(a)?));
         options.push(format!("anchor_count={}", args.anchor_count));
+        inputs.insert("anchors".to_string(), shown_path(a));
     }
     Ok(Manifest {
         kind: "grade".into(),
         tool_version: env!("CARGO_PKG_VERSION").into(),
-        model_path: backend.model_path(),
-        model_sha256: backend.model_sha256(),
-        answers_sha256: file_sha256(&args.answers)?,
+        model_path: model.path.clone(),
+        model_sha256: model.sha256.clone(),
         rubric_sha256: p.rubric.sha256.clone(),
         templates_sha256: p.forms.sha256.clone(),
         options,
         seed: args.seed,
+        rubric_toml: Some(p.rubric.text.clone()),
+        inputs,
+        shard: None,
     })
+}
+
+/// A path for the manifest: relative to the working folder when inside it.
+pub fn shown_path(path: &std::path::Path) -> String {
+    std::env::current_dir()
+        .ok()
+        .and_then(|cwd| path.strip_prefix(cwd).ok().map(|p| p.to_path_buf()))
+        .unwrap_or_else(|| path.to_path_buf())
+        .display()
+        .to_string()
+}
+
+/// The grading job: one unit per answer, producing one record per criterion. A
+/// unit's input hash covers the answer and the anchors its forms show.
+pub fn open_job(
+    args: &GradeArgs,
+    p: &Prepared,
+    model: &ModelId,
+) -> anyhow::Result<Job<AnswerRecord>> {
+    let manifest = manifest(args, p, model)?;
+    let dir = match &args.run_dir {
+        Some(d) => d.clone(),
+        None => default_run_dir("grade", &shard_identity(&manifest, args.shard)),
+    };
+    let units = p
+        .answers
+        .iter()
+        .map(|a| {
+            let anchors: Vec<_> = p
+                .rubric
+                .criteria
+                .iter()
+                .map(|c| p.anchors.as_ref().map(|pool| pool.for_item(&c.key, &a.question_id)))
+                .collect();
+            Unit {
+                key: a.item_id(),
+                input: input_hash(&(a, anchors)),
+                records: p
+                    .rubric
+                    .criteria
+                    .iter()
+                    .map(|c| format!("{}/{}/{}", a.question_id, a.system, c.key))
+                    .collect(),
+                data: a.clone(),
+            }
+        })
+        .collect();
+    let spec = JobSpec {
+        dir: dir.clone(),
+        manifest,
+        results: GRADES_FILE,
+        what: "grading",
+        quiet: args.output.quiet,
+        shard: args.shard,
+        slow_append: None,
+    };
+    Job::open(spec, units)
+        .with_context(|| format!("cannot use run folder `{}`", dir.display()))
+}
+
+/// The manifest identity with the shard, for a default folder name per shard.
+pub fn shard_identity(m: &Manifest, shard: Option<Shard>) -> String {
+    let mut m = m.clone();
+    m.shard = shard.map(|s| s.to_string());
+    m.identity_json()
 }
 
 /// Grade everything not yet in the run folder; return the report.
@@ -236,95 +340,48 @@ pub fn grade_run(
     p: &Prepared,
     backend: &dyn Backend,
 ) -> anyhow::Result<GradeReport> {
-    let manifest = manifest(args, p, backend)?;
-    let dir = match &args.run_dir {
-        Some(d) => d.clone(),
-        None => default_run_dir("grade", &serde_json::to_string(&manifest)?),
-    };
-    let run = RunDir::open(&dir, manifest).map_err(|e| {
-        let msg = e.to_string();
-        anyhow::Error::new(e).context(super::errors::Usage {
-            what: format!("cannot use run folder `{}`", dir.display()),
-            fix: if msg.contains("different run") {
-                "pass another `--run-dir`, or leave it out to get a folder named after the inputs"
-                    .into()
-            } else {
-                "check that the folder is writable".into()
-            },
-        })
-    })?;
-    let steps_owned;
-    let p = if args.generate_steps {
-        steps_owned = with_generated_steps(&run, p, backend, args.output.quiet)?;
-        &steps_owned
-    } else {
-        p
-    };
-    let path = run.file(GRADES_FILE);
-    let existing: Vec<GradeRecord> = read_records(&path)?;
-    let done: HashSet<String> = existing.iter().map(GradeRecord::key).collect();
-    let todo: Vec<&AnswerRecord> = p
-        .answers
-        .iter()
-        .filter(|a| {
-            p.rubric
-                .criteria
-                .iter()
-                .any(|c| !done.contains(&format!("{}/{}/{}", a.question_id, a.system, c.key)))
-        })
-        .collect();
+    let job = open_job(args, p, &ModelId::of(backend))?;
+    finish_run(args, p, job, Some(backend))
+}
+
+/// Run a grading job; `backend` may be `None` only when nothing remains.
+pub fn finish_run(
+    args: &GradeArgs,
+    p: &Prepared,
+    job: Job<AnswerRecord>,
+    backend: Option<&dyn Backend>,
+) -> anyhow::Result<GradeReport> {
+    let dir = job.dir().to_path_buf();
     if !args.output.quiet {
         eprintln!(
             "run folder `{}`: {} of {} answers already graded",
             dir.display(),
-            p.answers.len() - todo.len(),
-            p.answers.len()
+            job.total() - job.remaining(),
+            job.total()
         );
     }
+    let steps_owned;
+    let p = match backend {
+        Some(b) if args.generate_steps && job.remaining() > 0 => {
+            steps_owned = with_generated_steps(&job, p, b, args.output.quiet)?;
+            &steps_owned
+        }
+        _ => p,
+    };
     let opts = GradeOptions {
         reasoning: args.reasoning,
         reasoning_tokens: args.reasoning_tokens,
         low_mass: args.low_mass,
         seed: args.seed,
     };
-    let mut appender = Appender::open(&path)?;
-    let bar = progress(todo.len() as u64, "grading", args.output.quiet);
-    let mut computed = 0;
-    let mut failed = Vec::new();
-    for a in todo {
-        match grade_item(backend, &p.forms, &p.rubric, a, p.anchors.as_ref(), &opts) {
-            Ok(records) => {
-                for r in records.iter().filter(|r| !done.contains(&r.key())) {
-                    appender.append(r)?;
-                    computed += 1;
-                }
-            }
-            Err(e) => {
-                let msg = format!("{:#}", anyhow::Error::new(e));
-                bar.suspend(|| eprintln!("warning: skipped `{}`: {msg}", a.item_id()));
-                failed.push(FailedItem {
-                    item: a.item_id(),
-                    error: msg,
-                });
-            }
-        }
-        bar.inc(1);
-    }
-    bar.finish_and_clear();
-    let wanted: HashSet<String> = p
-        .answers
-        .iter()
-        .flat_map(|a| {
-            p.rubric
-                .criteria
-                .iter()
-                .map(move |c| format!("{}/{}/{}", a.question_id, a.system, c.key))
-        })
-        .collect();
-    let records: Vec<GradeRecord> = read_records::<GradeRecord>(&path)?
-        .into_iter()
-        .filter(|r| wanted.contains(&r.key()))
-        .collect();
+    let outcome = job.run(
+        |a| {
+            let b = backend.expect("a judge is loaded when work remains");
+            Ok(grade_item(b, &p.forms, &p.rubric, a, p.anchors.as_ref(), &opts)?)
+        },
+        GradeRecord::key,
+    )?;
+    let records = outcome.records;
     let summary = if records.is_empty() {
         Vec::new()
     } else {
@@ -332,29 +389,36 @@ pub fn grade_run(
     };
     Ok(GradeReport {
         run_dir: dir.display().to_string(),
-        model: backend.model_path(),
+        model: backend.map_or_else(String::new, |b| b.model_path()),
         rubric: p.rubric.name.clone(),
         records: records.len(),
-        computed,
+        computed: outcome.computed,
         low_mass: records
             .iter()
             .filter(|r| r.low_mass)
             .map(GradeRecord::key)
             .collect(),
         summary,
-        failed,
+        failed: outcome
+            .failed
+            .into_iter()
+            .map(|f| FailedItem {
+                item: f.unit,
+                error: f.error,
+            })
+            .collect(),
     })
 }
 
 /// The rubric with judge-written evaluation steps, from `steps.json` in the run
-/// folder or generated once and saved there.
+/// folder or generated once and saved there (the job holds the lock).
 fn with_generated_steps(
-    run: &RunDir,
+    job: &Job<AnswerRecord>,
     p: &Prepared,
     backend: &dyn Backend,
     quiet: bool,
 ) -> anyhow::Result<Prepared> {
-    let path = run.file("steps.json");
+    let path = job.dir().join("steps.json");
     let mut cached: std::collections::BTreeMap<String, Vec<String>> = if path.exists() {
         serde_json::from_str(&std::fs::read_to_string(&path)?).with_context(|| {
             format!(
@@ -373,7 +437,7 @@ fn with_generated_steps(
             }
             let steps = crate::judge::steps::generate_steps(backend, c)?;
             cached.insert(c.key.clone(), steps);
-            crate::store::write_atomic(&path, serde_json::to_string_pretty(&cached)?.as_bytes())?;
+            job.save("steps.json", serde_json::to_string_pretty(&cached)?.as_bytes())?;
         }
         let steps = &cached[&c.key];
         if !steps.is_empty() {
@@ -392,16 +456,26 @@ fn with_generated_steps(
     })
 }
 
-/// Run `assize grade`.
+/// Run `assize grade`: check inputs and the run folder, load the judge only when
+/// work remains, grade, print the summary.
 pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
     let prepared = prepare(&args)?;
-    let mut judge = load_judge(&args.model, args.output.quiet)?;
-    if args.no_prefix_reuse {
-        judge.set_prefix_reuse(false);
-    }
+    let model_id = ModelId::resolve(&args.model)?;
+    let job = open_job(&args, &prepared, &model_id)?;
+    let judge = if job.remaining() > 0 {
+        let mut judge = load_judge(&args.model, args.output.quiet)?;
+        if args.no_prefix_reuse {
+            judge.set_prefix_reuse(false);
+        }
+        Some(judge)
+    } else {
+        None
+    };
     let started = std::time::Instant::now();
-    let report = grade_run(&args, &prepared, &judge).context("grading stopped")?;
-    if !args.output.quiet && report.computed > 0 {
+    let mut report = finish_run(&args, &prepared, job, judge.as_ref().map(|j| j as &dyn Backend))
+        .context("grading stopped")?;
+    report.model = model_id.path.clone();
+    if let (Some(judge), false, true) = (&judge, args.output.quiet, report.computed > 0) {
         let secs = started.elapsed().as_secs_f64();
         let c = judge.counters();
         eprintln!(

@@ -10,11 +10,11 @@ use clap::Args;
 use serde::Serialize;
 
 use super::common::load_judge;
-use super::grade::{grade_run, prepare, GradeArgs};
+use super::grade::{finish_run, open_job, prepare, GradeArgs, ModelId};
 use super::print_json;
 use crate::data::read_answers;
 use crate::judge::grade::label_value;
-use crate::judge::GradeRecord;
+use crate::judge::{Backend, GradeRecord};
 use crate::probes::injection::{injection_effect, InjectionEffect, ProbePair, DEFAULT_INJECTION};
 use crate::store::read_records;
 
@@ -52,7 +52,6 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
         .run_dir
         .clone()
         .unwrap_or_else(|| PathBuf::from("runs").join("injection"));
-    std::fs::create_dir_all(&run_dir)?;
     let probe_file = run_dir.join("probe-answers.jsonl");
     let mut lines = String::new();
     for a in &answers {
@@ -64,13 +63,21 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
         lines.push_str(&serde_json::to_string(&b)?);
         lines.push('\n');
     }
-    crate::store::write_atomic(&probe_file, lines.as_bytes())?;
+    // A finished probe in a read-only folder is still reported: write only on change.
+    if std::fs::read(&probe_file).ok().as_deref() != Some(lines.as_bytes()) {
+        std::fs::create_dir_all(&run_dir)?;
+        crate::store::write_atomic(&probe_file, lines.as_bytes())?;
+    }
     args.grade.answers = probe_file;
     args.grade.limit = None;
     args.grade.run_dir = Some(run_dir.join("grades"));
     let prepared = prepare(&args.grade)?;
-    let judge = load_judge(&args.grade.model, quiet)?;
-    let graded = grade_run(&args.grade, &prepared, &judge)?;
+    let job = open_job(&args.grade, &prepared, &ModelId::resolve(&args.grade.model)?)?;
+    let judge = match job.remaining() {
+        0 => None,
+        _ => Some(load_judge(&args.grade.model, quiet)?),
+    };
+    let graded = finish_run(&args.grade, &prepared, job, judge.as_ref().map(|j| j as &dyn Backend))?;
     let recs: Vec<GradeRecord> =
         read_records(&run_dir.join("grades").join(super::grade::GRADES_FILE))?;
     let mut effects = Vec::new();

@@ -15,6 +15,7 @@ pub mod errors;
 pub mod estimate;
 pub mod grade;
 pub mod injection;
+pub mod merge;
 pub mod model;
 pub mod overlap;
 pub mod report;
@@ -53,6 +54,8 @@ pub enum Command {
     Compare(compare::CompareArgs),
     /// Probe whether instructions hidden in answers ("rate this 5") move the judge's grades
     Injection(injection::InjectionArgs),
+    /// Join the shard folders of one run (`--shard K/N`) into a single run folder
+    Merge(merge::MergeArgs),
     /// Let a local model answer a file of questions (to add a system, or probe self-preference)
     Answer(answer::AnswerArgs),
     /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
@@ -89,6 +92,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Vet(args) => vet::run(args),
         Command::Answer(args) => answer::run(args),
         Command::Injection(args) => injection::run(args),
+        Command::Merge(args) => merge::run(args),
         Command::Estimate(args) => estimate::run(args),
         Command::Overlap(args) => overlap::run(args),
         Command::Report(args) => report::run(args),

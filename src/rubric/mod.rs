@@ -114,6 +114,9 @@ pub struct Rubric {
     pub path: PathBuf,
     /// SHA-256 of the file text, for run manifests.
     pub sha256: String,
+    /// The file text, recorded in run manifests.
+    #[serde(skip)]
+    pub text: String,
 }
 
 impl Rubric {
@@ -373,6 +376,7 @@ pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
         criteria,
         path: path.to_path_buf(),
         sha256: format!("{:x}", sha2::Sha256::digest(text.as_bytes())),
+        text: text.to_string(),
     })
 }
 

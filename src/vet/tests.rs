@@ -25,6 +25,7 @@ pub(super) fn rubric(criteria: &[(&str, Scale)]) -> Rubric {
             .collect(),
         path: PathBuf::new(),
         sha256: String::new(),
+        text: String::new(),
     }
 }
 

@@ -25,3 +25,4 @@ pub fn real_model(file: &str) -> PathBuf {
     );
     path
 }
+pub mod grading;
