@@ -163,16 +163,16 @@ fn hub_cache_with_tiny(dir: &Path) -> PathBuf {
     cache
 }
 
-/// Offline pull from a hub cache in the usual layout (models--OWNER--NAME/refs,
+/// Offline fetch from a hub cache in the usual layout (models--OWNER--NAME/refs,
 /// snapshots) built by the test: the file is found without any network.
 #[test]
-fn offline_pull_finds_a_cached_file() {
+fn offline_fetch_finds_a_cached_file() {
     let dir = tempfile::tempdir().expect("tmp");
     let cache = hub_cache_with_tiny(dir.path());
     let o = bin()
         .args([
             "model",
-            "pull",
+            "fetch",
             "example-org/tiny-judge",
             "tiny.gguf",
             "--json",
@@ -191,7 +191,7 @@ fn offline_pull_finds_a_cached_file() {
     // --cache-dir works the same as the environment variable.
     let o = run(&[
         "model",
-        "pull",
+        "fetch",
         "example-org/tiny-judge",
         "tiny.gguf",
         "--offline",
@@ -203,13 +203,13 @@ fn offline_pull_finds_a_cached_file() {
 
 /// A file missing from an offline cache is a clear error naming file, repo and cache.
 #[test]
-fn offline_pull_of_a_missing_file_is_a_clear_error() {
+fn offline_fetch_of_a_missing_file_is_a_clear_error() {
     let dir = tempfile::tempdir().expect("tmp");
     let cache = hub_cache_with_tiny(dir.path());
     let o = bin()
         .args([
             "model",
-            "pull",
+            "fetch",
             "example-org/tiny-judge",
             "other.gguf",
             "--offline",
@@ -265,14 +265,14 @@ fn bad_rubric_is_reported_with_lines() {
     let r = dir.path().join("r.toml");
     std::fs::write(
         &r,
-        "name = \"x\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-4\"\n",
+        "name = \"x\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-12\"\n",
     )
     .expect("write");
     let o = run(&["rubric", "check", r.to_str().expect("utf-8")]);
     assert_eq!(o.status.code(), Some(2));
     let e = stderr(&o);
     assert!(
-        e.contains("line 5: criterion `a`: unknown scale `1-4`"),
+        e.contains("line 5: criterion `a`: unknown scale `1-12`"),
         "{e}"
     );
     assert!(e.contains("fix:"), "{e}");

@@ -364,7 +364,7 @@ fn json_report_carries_schema_and_the_expected_cautions() {
     report(&["--json", js.to_str().expect("utf-8 path")]);
     let v: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(js).expect("json")).expect("valid JSON");
-    assert_eq!(v["schema"], "assize.report/1");
+    assert_eq!(v["schema"], "assize.report/2");
     let kinds: Vec<&str> = v["cautions"]
         .as_array()
         .expect("cautions")

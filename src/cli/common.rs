@@ -11,7 +11,7 @@ use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use sha2::{Digest, Sha256};
 
 use super::errors::usage;
-use super::models_dir;
+use super::models_dirs;
 use crate::engine::decoder::LoadOptions;
 use crate::engine::JudgeModel;
 
@@ -39,33 +39,35 @@ pub struct ModelArgs {
     pub context: Option<usize>,
 }
 
-/// Resolve `--model` to a file path.
+/// Resolve `--model` to a file path: a short judge name (`default`, `small`,
+/// `gemma`) looked up in the models folders, else an existing file, else a file name
+/// inside the models folders.
 pub fn resolve_model(name: &str) -> anyhow::Result<PathBuf> {
-    let dir = models_dir();
-    for (alias, file) in ALIASES {
-        if name == *alias {
-            let p = dir.join(file);
-            if !p.exists() {
-                return Err(usage(
-                    format!("judge `{alias}` is not fetched yet (looked for `{}`)", p.display()),
-                    "run `scripts/fetch-models --all`, or set `ASSIZE_MODELS_DIR` to the folder that holds it",
-                ));
-            }
-            return Ok(p);
-        }
+    let dirs = models_dirs();
+    let alias = ALIASES.iter().find(|(a, _)| *a == name);
+    let as_path = PathBuf::from(name);
+    if alias.is_none() && as_path.is_file() {
+        return Ok(as_path);
     }
-    let p = PathBuf::from(name);
-    if p.exists() {
+    let file = alias.map_or(name, |(_, f)| *f);
+    if let Some(p) = dirs.iter().map(|d| d.join(file)).find(|p| p.is_file()) {
         return Ok(p);
     }
-    let in_dir = dir.join(name);
-    if in_dir.exists() {
-        return Ok(in_dir);
-    }
-    Err(usage(
-        format!("model `{name}` is neither a file nor a known judge name"),
-        "pass a GGUF path, or one of `default`, `small`, `gemma` (fetch them with `scripts/fetch-models --all`)",
-    ))
+    let looked = dirs
+        .iter()
+        .map(|d| format!("`{}`", d.display()))
+        .collect::<Vec<_>>()
+        .join(", ");
+    Err(match alias {
+        Some((alias, _)) => usage(
+            format!("judge `{alias}` is not fetched yet (looked for `{file}` in {looked})"),
+            format!("run `scripts/fetch-models --model {alias}` in the source checkout, or set `ASSIZE_MODELS_DIR` to the folder that holds it"),
+        ),
+        None => usage(
+            format!("model `{name}` is neither a file nor a known judge name (also looked in {looked})"),
+            "pass a GGUF path, or one of `default`, `small`, `gemma` (fetch them with `scripts/fetch-models --model NAME`)",
+        ),
+    })
 }
 
 /// Load the judge named by the arguments, telling stderr what happens.

@@ -47,8 +47,8 @@ pub struct CompareArgs {
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     #[command(flatten)]
@@ -466,20 +466,19 @@ pub fn compare_text(r: &CompareReport) -> String {
     }
     match &r.ranking {
         Ok(k) => {
-            s.push_str("\nranking (debiased verdicts, Bradley-Terry on the Elo scale, 95% bootstrap CI over questions)\n");
+            s.push_str("\nchance of beating a system of average strength (Bradley-Terry fit of the debiased verdicts, Hunter 2004; 95% bootstrap interval over questions)\n");
             if let Some(p) = &k.prior {
                 s.push_str(&format!("  note: {p}\n"));
             }
             for row in &k.rows {
                 s.push_str(&format!(
-                    "  {:<20} {:>7.0} [{:>5.0}, {:>5.0}]  wins {:>3}  ties {:>3}  losses {:>3}\n",
+                    "  {:<20} {:>4.0}%  ({:.0}% to {:.0}%)  won {} of {} compared (ties count half)\n",
                     row.system,
-                    row.rating,
-                    row.rating_low,
-                    row.rating_high,
-                    row.wins,
-                    row.ties,
-                    row.losses
+                    row.beats_average * 100.0,
+                    row.beats_average_low * 100.0,
+                    row.beats_average_high * 100.0,
+                    row.wins as f64 + 0.5 * row.ties as f64,
+                    row.comparisons()
                 ));
             }
         }
@@ -489,13 +488,13 @@ pub fn compare_text(r: &CompareReport) -> String {
         s.push_str("\nlength (words)\n");
         for l in &r.length {
             s.push_str(&format!(
-                "  {} vs {}: mean difference {:+.1}, longer answer won {} of decisive pairs, raw win rate {:.2}, length-controlled {}\n",
+                "  {} vs {}: mean difference {:+.1}, longer answer won {} of decisive pairs, raw win rate {:.2}, win rate at equal length {}\n",
                 l.a,
                 l.b,
                 l.mean_length_difference,
                 l.longer_wins.map_or("-".into(), |v| format!("{:.0}%", v * 100.0)),
                 l.raw_win_rate,
-                l.length_controlled_win_rate.map_or("-".into(), |v| format!("{v:.2}"))
+                l.win_rate_at_equal_length.map_or("-".into(), |v| format!("{v:.2}"))
             ));
         }
     }

@@ -85,7 +85,7 @@ fn fix_for(err: &anyhow::Error) -> Option<String> {
 fn engine_fix(e: &EngineError) -> Option<String> {
     Some(match e {
         EngineError::Io { .. } => {
-            "check the path; fetch the bundled judges with `scripts/fetch-models --all`".into()
+            "check the path; fetch the known judges with `scripts/fetch-models --all`".into()
         }
         EngineError::NotGguf { .. } => "pass a GGUF model file (`*.gguf`)".into(),
         EngineError::Truncated { .. } => {

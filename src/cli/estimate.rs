@@ -36,8 +36,8 @@ pub struct EstimateArgs {
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     /// Use only this share of the labelled items (seeded), holding the rest out to show

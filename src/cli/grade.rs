@@ -31,12 +31,12 @@ pub struct GradeArgs {
     /// Answers to grade (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by)
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
-    /// Rubric file (TOML); bundled ones are in judge-templates/rubrics/
+    /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     /// Grade only these criteria (comma-separated keys)
@@ -479,7 +479,7 @@ pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
         let secs = started.elapsed().as_secs_f64();
         let c = judge.counters();
         eprintln!(
-            "computed {} records in {:.1} s ({:.1} answers/min); prompt tokens run {} , reused {}, generated {}",
+            "computed {} records in {:.1} s ({:.1} answers/min); prompt tokens: {} computed, {} reused from shared prefixes; {} generated",
             report.computed,
             secs,
             report.computed as f64 / prepared.rubric.criteria.len().max(1) as f64 / secs * 60.0,

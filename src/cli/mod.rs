@@ -106,9 +106,29 @@ pub fn print_json<T: serde::Serialize>(value: &T) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// Folder holding the fetched judge models: `$ASSIZE_MODELS_DIR`, else `./models`.
-pub fn models_dir() -> PathBuf {
-    std::env::var_os("ASSIZE_MODELS_DIR")
+/// Folders searched for fetched judge models, in order: `$ASSIZE_MODELS_DIR` alone
+/// when set; otherwise the per-user data folder (where `scripts/fetch-models` puts
+/// them by default), then `models/` in the current folder (a development checkout).
+pub fn models_dirs() -> Vec<PathBuf> {
+    if let Some(dir) = std::env::var_os("ASSIZE_MODELS_DIR") {
+        return vec![PathBuf::from(dir)];
+    }
+    let mut dirs: Vec<PathBuf> = user_models_dir().into_iter().collect();
+    dirs.push(PathBuf::from("models"));
+    dirs
+}
+
+/// The per-user models folder: `$XDG_DATA_HOME/assize/models`, else
+/// `~/.local/share/assize/models` (XDG Base Directory specification: a relative
+/// `XDG_DATA_HOME` is ignored). `None` without a home folder.
+pub fn user_models_dir() -> Option<PathBuf> {
+    let xdg = std::env::var_os("XDG_DATA_HOME")
         .map(PathBuf::from)
-        .unwrap_or_else(|| PathBuf::from("models"))
+        .filter(|p| p.is_absolute());
+    let data = xdg.or_else(|| {
+        std::env::var_os("HOME")
+            .filter(|h| !h.is_empty())
+            .map(|h| PathBuf::from(h).join(".local/share"))
+    })?;
+    Some(data.join("assize/models"))
 }

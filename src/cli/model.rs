@@ -25,7 +25,7 @@ pub enum ModelCommand {
     /// The cache folder is `--cache-dir`, else `$HF_HUB_CACHE`, else `$HF_HOME/hub`,
     /// else the hub client's default folder in your home cache. With `--offline` or `HF_HUB_OFFLINE=1`
     /// nothing is downloaded and a file missing from the cache is an error.
-    Pull(PullArgs),
+    Fetch(FetchArgs),
     /// Show how the judge's tokenizer splits a text: ids and pieces
     Tokens(TokensArgs),
     /// Show the judge's most likely next tokens after a prompt, with probabilities
@@ -91,7 +91,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "N", default_value_t = 64)]
     pub gen_tokens: usize,
     /// Kernel threads (0 = all cores)
-    #[arg(long, value_name = "N", default_value_t = 2)]
+    #[arg(long, value_name = "N", default_value_t = 0)]
     pub threads: usize,
     #[command(flatten)]
     pub output: OutputArgs,
@@ -100,16 +100,16 @@ pub struct BenchArgs {
 /// Arguments of `assize model info`.
 #[derive(Debug, Args)]
 pub struct InfoArgs {
-    /// GGUF model file
-    #[arg(value_name = "FILE")]
-    pub file: PathBuf,
+    /// Judge model (GGUF path or `default`, `small`, `gemma`)
+    #[arg(value_name = "MODEL")]
+    pub model: String,
     #[command(flatten)]
     pub output: OutputArgs,
 }
 
-/// Arguments of `assize model pull`.
+/// Arguments of `assize model fetch`.
 #[derive(Debug, Args)]
-pub struct PullArgs {
+pub struct FetchArgs {
     /// Hub repository, `OWNER/NAME`
     #[arg(value_name = "REPO")]
     pub repo: String,
@@ -133,7 +133,7 @@ pub struct PullArgs {
 pub fn run(cmd: ModelCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         ModelCommand::Info(args) => info(&args),
-        ModelCommand::Pull(args) => pull(&args),
+        ModelCommand::Fetch(args) => fetch(&args),
         ModelCommand::Tokens(args) => tokens(&args),
         ModelCommand::Next(args) => next(&args),
         ModelCommand::Bench(args) => bench(&args),
@@ -141,7 +141,7 @@ pub fn run(cmd: ModelCommand) -> anyhow::Result<ExitCode> {
 }
 
 fn info(args: &InfoArgs) -> anyhow::Result<ExitCode> {
-    let gguf = GgufFile::open(&args.file)?;
+    let gguf = GgufFile::open(&resolve_model(&args.model)?)?;
     let info = ModelInfo::from_file(&gguf)?;
     if args.output.json {
         print_json(&info)?;
@@ -225,9 +225,9 @@ fn info_text(i: &ModelInfo) -> String {
     s
 }
 
-/// Result of `assize model pull`.
+/// Result of `assize model fetch`.
 #[derive(Debug, serde::Serialize)]
-pub struct PullResult {
+pub struct FetchResult {
     /// Repository the file belongs to.
     pub repo: String,
     /// File name inside the repository.
@@ -257,7 +257,7 @@ fn offline_from_env() -> bool {
         .unwrap_or(false)
 }
 
-fn pull(args: &PullArgs) -> anyhow::Result<ExitCode> {
+fn fetch(args: &FetchArgs) -> anyhow::Result<ExitCode> {
     if !args.repo.contains('/') {
         return Err(usage(
             format!("repository `{}` is not of the form `OWNER/NAME`", args.repo),
@@ -297,9 +297,9 @@ fn pull(args: &PullArgs) -> anyhow::Result<ExitCode> {
             (p, false)
         }
     };
-    // A pulled file is only useful if it is a readable model.
+    // A fetched file is only useful if it is a readable model.
     GgufFile::open(&path)?;
-    let result = PullResult {
+    let result = FetchResult {
         repo: args.repo.clone(),
         file: args.file.clone(),
         revision: args.revision.clone(),

@@ -42,8 +42,8 @@ pub struct ReportArgs {
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     /// Answers file: texts of flagged items, answer lengths for the length probe and `written_by` for the self-preference probe
@@ -58,7 +58,7 @@ pub struct ReportArgs {
     /// Write the Markdown summary here
     #[arg(long, value_name = "FILE")]
     pub markdown: Option<PathBuf>,
-    /// Write the JSON report (schema `assize.report/1`) here
+    /// Write the JSON report (schema `assize.report/2`) here
     #[arg(long, value_name = "FILE")]
     pub json: Option<PathBuf>,
     /// Seed of every random draw (bootstrap intervals)

@@ -15,7 +15,7 @@ use crate::engine::chat::{ChatFormat, ChatMessage, Role};
 use crate::engine::tokenizer::JudgeTokenizer;
 use crate::engine::GgufFile;
 use crate::rubric::forms::Forms;
-use crate::rubric::load_rubric;
+use crate::rubric::{bundled_names, bundled_text, load_rubric, BUNDLED};
 
 /// `assize rubric` subcommands.
 #[derive(Debug, Subcommand)]
@@ -24,13 +24,32 @@ pub enum RubricCommand {
     Check(CheckArgs),
     /// Show the exact prompt the judge sees for one answer and criterion (no model run)
     Show(ShowArgs),
+    /// List the rubrics built into the binary, usable by name with `--rubric`
+    List(ListArgs),
+    /// Print a bundled rubric's TOML, to start a rubric of your own from it
+    Print(PrintArgs),
+}
+
+/// Arguments of `assize rubric list`.
+#[derive(Debug, Args)]
+pub struct ListArgs {
+    #[command(flatten)]
+    pub output: OutputArgs,
+}
+
+/// Arguments of `assize rubric print`.
+#[derive(Debug, Args)]
+pub struct PrintArgs {
+    /// Bundled rubric name (see `assize rubric list`)
+    #[arg(value_name = "NAME")]
+    pub name: String,
 }
 
 /// Arguments of `assize rubric check`.
 #[derive(Debug, Args)]
 pub struct CheckArgs {
-    /// Rubric file (TOML)
-    #[arg(value_name = "FILE")]
+    /// Rubric: a bundled one by name or a TOML file
+    #[arg(value_name = "RUBRIC")]
     pub rubric: PathBuf,
     #[command(flatten)]
     pub output: OutputArgs,
@@ -39,12 +58,12 @@ pub struct CheckArgs {
 /// Arguments of `assize rubric show`.
 #[derive(Debug, Args)]
 pub struct ShowArgs {
-    /// Rubric file (TOML)
+    /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     /// Answers file
@@ -74,7 +93,56 @@ pub fn run(cmd: RubricCommand) -> anyhow::Result<ExitCode> {
     match cmd {
         RubricCommand::Check(a) => check(&a),
         RubricCommand::Show(a) => show(&a),
+        RubricCommand::List(a) => list(&a),
+        RubricCommand::Print(a) => print(&a),
     }
+}
+
+/// One line of `assize rubric list --json`.
+#[derive(Debug, Serialize)]
+pub struct BundledRubric {
+    /// Name to pass to `--rubric`.
+    pub name: String,
+    /// The rubric's one-line description.
+    pub description: String,
+    /// Criterion keys with their scales, as `key (scale)`.
+    pub criteria: Vec<String>,
+}
+
+fn list(args: &ListArgs) -> anyhow::Result<ExitCode> {
+    let mut rows = Vec::new();
+    for (name, _) in BUNDLED {
+        let r = load_rubric(std::path::Path::new(name))?;
+        rows.push(BundledRubric {
+            name: name.to_string(),
+            description: r.description,
+            criteria: r
+                .criteria
+                .iter()
+                .map(|c| format!("{} ({})", c.key, c.scale.name()))
+                .collect(),
+        });
+    }
+    if args.output.json {
+        print_json(&rows)?;
+        return Ok(ExitCode::SUCCESS);
+    }
+    for r in &rows {
+        println!("{:<10} {}", r.name, r.description);
+        println!("{:<10} criteria: {}", "", r.criteria.join(", "));
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn print(args: &PrintArgs) -> anyhow::Result<ExitCode> {
+    let text = bundled_text(std::path::Path::new(&args.name)).ok_or_else(|| {
+        usage(
+            format!("no bundled rubric `{}`", args.name),
+            format!("use one of {}", bundled_names()),
+        )
+    })?;
+    print!("{text}");
+    Ok(ExitCode::SUCCESS)
 }
 
 fn check(args: &CheckArgs) -> anyhow::Result<ExitCode> {

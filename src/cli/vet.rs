@@ -35,8 +35,8 @@ pub struct VetArgs {
     #[arg(
         long,
         short = 'r',
-        value_name = "FILE",
-        default_value = "judge-templates/rubrics/support.toml"
+        value_name = "RUBRIC",
+        default_value = "support"
     )]
     pub rubric: PathBuf,
     /// More grading runs to show side by side, as `NAME=DIR` (e.g. `reasoning=runs/grade-…`)

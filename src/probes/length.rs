@@ -1,6 +1,6 @@
 //! Length probe: does the judge prefer longer answers? For each pair of systems,
 //! the association between the debiased verdict and the answer-length difference
-//! (in words), and a length-controlled win rate from a logistic model whose length
+//! (in words), and a win rate at equal length from a logistic model whose length
 //! term is set to zero at prediction (Dubois, Galambosi, Liang & Hashimoto 2024).
 //! Input: `PairOutcome`s and answers. Output: `LengthProbe` rows. Never changes a
 //! verdict.
@@ -12,7 +12,7 @@ use serde::Serialize;
 use super::PairOutcome;
 use crate::data::AnswerRecord;
 use crate::stats::correlation::spearman;
-use crate::stats::logistic::length_controlled_win_rate;
+use crate::stats::logistic::win_rate_at_equal_length;
 
 /// L2 penalty of the length model's slope, so a perfectly separable sample (every
 /// longer answer won) still gives a finite fit; the intercept is not penalised.
@@ -36,7 +36,7 @@ pub struct LengthProbe {
     /// A's raw debiased win rate (ties count half).
     pub raw_win_rate: f64,
     /// A's win rate predicted at equal length (`None` when the fit failed).
-    pub length_controlled_win_rate: Option<f64>,
+    pub win_rate_at_equal_length: Option<f64>,
     /// Fitted length coefficient φ (> 0: longer answers favoured).
     pub length_coefficient: Option<f64>,
     /// Why the model could not be fitted, if it could not.
@@ -89,7 +89,7 @@ pub fn length_probe(outcomes: &[PairOutcome], answers: &[AnswerRecord]) -> Vec<L
                     .count() as f64
                     / decisive.len() as f64
             });
-            let fit = length_controlled_win_rate(&d, &y, LENGTH_L2);
+            let fit = win_rate_at_equal_length(&d, &y, LENGTH_L2);
             LengthProbe {
                 n: v.len(),
                 mean_length_difference: d.iter().sum::<f64>() / d.len() as f64,
@@ -99,7 +99,7 @@ pub fn length_probe(outcomes: &[PairOutcome], answers: &[AnswerRecord]) -> Vec<L
                     .map(|c| c.coefficient)
                     .filter(|c| c.is_finite()),
                 raw_win_rate: y.iter().sum::<f64>() / y.len() as f64,
-                length_controlled_win_rate: fit.as_ref().ok().map(|f| f.lc_win_rate),
+                win_rate_at_equal_length: fit.as_ref().ok().map(|f| f.at_equal_length),
                 length_coefficient: fit.as_ref().ok().map(|f| f.phi),
                 note: fit.err().map(|e| e.to_string()),
                 a,

@@ -1,6 +1,7 @@
 //! Rankings of systems from debiased pairwise verdicts: Bradley-Terry maximum
-//! likelihood (Hunter 2004, MM algorithm; ties as half wins) on the Elo scale, with
-//! seeded bootstrap intervals over questions, and the win/tie/loss matrix. Input:
+//! likelihood (Hunter 2004, MM algorithm; ties as half wins) presented as each
+//! system's modelled chance of beating a system of average strength, with seeded
+//! bootstrap intervals over questions, and the head-to-head verdict counts. Input:
 //! `PairOutcome`s. Output: `Ranking`. Never hides a disconnected comparison graph:
 //! it says which systems cannot be placed. When a system won (or lost) every
 //! comparison the plain estimate is infinite; then one virtual tie per compared pair
@@ -29,12 +30,25 @@ pub struct RankingRow {
     pub losses: usize,
     /// Bradley-Terry strength (all strengths sum to 1).
     pub strength: f64,
-    /// Rating on the Elo scale: 400·log10(strength), shifted to mean 1000.
-    pub rating: f64,
-    /// Lower end of the 95% bootstrap percentile interval of the rating.
-    pub rating_low: f64,
+    /// Modelled chance of beating a system of average strength (mean log-strength);
+    /// 0.5 is exactly average.
+    pub beats_average: f64,
+    /// Lower end of the 95% bootstrap percentile interval of `beats_average`.
+    pub beats_average_low: f64,
     /// Upper end of that interval.
-    pub rating_high: f64,
+    pub beats_average_high: f64,
+}
+
+impl RankingRow {
+    /// Debiased verdicts this system took part in.
+    pub fn comparisons(&self) -> usize {
+        self.wins + self.ties + self.losses
+    }
+
+    /// Share of its comparisons won, a tie counting half.
+    pub fn won_share(&self) -> f64 {
+        (self.wins as f64 + 0.5 * self.ties as f64) / self.comparisons().max(1) as f64
+    }
 }
 
 /// The ranking of all systems.
@@ -106,7 +120,7 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
                 1e-10,
                 10_000,
             )?;
-            let note = "a system won or lost every comparison, so the plain Bradley-Terry estimate is infinite; one virtual tie per compared pair of systems keeps it finite and pulls ratings slightly together";
+            let note = "a system won or lost every comparison, so the plain Bradley-Terry estimate is infinite; one virtual tie per compared pair of systems keeps it finite and pulls the systems' chances slightly toward even";
             (bt, Some(note.to_string()))
         }
     };
@@ -146,11 +160,13 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
                 .collect();
             let w = wins_matrix(&chosen, &systems);
             let w = if smooth { with_virtual_ties(w) } else { w };
-            bradley_terry(&w, 1e-8, 10_000).ok().map(|b| b.elo_scale[i])
+            bradley_terry(&w, 1e-8, 10_000)
+                .ok()
+                .map(|b| b.beats_average()[i])
         })?;
         skipped = skipped.max(reps.skipped);
         let (lo, hi) = if reps.values.len() >= 2 {
-            let ci = percentile_interval(&reps, bt.elo_scale[i], 0.95)?;
+            let ci = percentile_interval(&reps, bt.beats_average()[i], 0.95)?;
             (ci.lower, ci.upper)
         } else {
             (f64::NAN, f64::NAN)
@@ -162,12 +178,12 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
             ties: sum(1),
             losses: sum(2),
             strength: bt.pi[i],
-            rating: bt.elo_scale[i],
-            rating_low: lo,
-            rating_high: hi,
+            beats_average: bt.beats_average()[i],
+            beats_average_low: lo,
+            beats_average_high: hi,
         });
     }
-    rows.sort_by(|x, y| y.rating.total_cmp(&x.rating));
+    rows.sort_by(|x, y| y.strength.total_cmp(&x.strength));
     Ok(Ranking {
         rows,
         matrix,
@@ -222,7 +238,8 @@ mod tests {
         assert!(r.prior.is_some());
         assert_eq!(r.rows[0].system, "best");
         assert_eq!(r.rows[0].wins, 2);
-        assert!(r.rows[0].rating > r.rows[1].rating);
+        assert!(r.rows[0].beats_average > r.rows[1].beats_average);
+        assert!(r.rows[0].beats_average > 0.5 && r.rows[2].beats_average < 0.5);
     }
 
     /// Systems that never met cannot be placed: an error, not a guess.

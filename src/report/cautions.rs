@@ -170,7 +170,7 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
             let overlaps: Vec<String> = k
                 .rows
                 .windows(2)
-                .filter(|w| w[1].rating_high >= w[0].rating_low)
+                .filter(|w| w[1].beats_average_high >= w[0].beats_average_low)
                 .map(|w| format!("`{}` and `{}`", w[0].system, w[1].system))
                 .collect();
             if !overlaps.is_empty() {

@@ -51,11 +51,31 @@ fn signed(v: Option<f64>, digits: Option<usize>) -> String {
     }
 }
 
+/// `prose`: a message written with Markdown-style backticks (cautions, verdict lines,
+/// notes) as HTML: escaped first, then each `x` pair becomes <code>x</code>. Only for
+/// the tool's own messages, never for answers or other data text.
+fn prose(text: &str) -> Value {
+    let escaped = minijinja::HtmlEscape(text).to_string();
+    let mut out = String::with_capacity(escaped.len());
+    for (i, part) in escaped.split('`').enumerate() {
+        match i % 2 {
+            1 => out.push_str(&format!("<code>{part}</code>")),
+            _ => out.push_str(part),
+        }
+    }
+    if escaped.matches('`').count() % 2 == 1 {
+        // An unpaired backtick stays as written.
+        return Value::from_safe_string(escaped);
+    }
+    Value::from_safe_string(out)
+}
+
 fn environment() -> Result<Environment<'static>, minijinja::Error> {
     let mut env = Environment::new();
     env.set_auto_escape_callback(|_| AutoEscape::Html);
     env.add_filter("num", num);
     env.add_filter("signed", signed);
+    env.add_filter("prose", prose);
     env.add_template("charts.j2", CHARTS)?;
     env.add_template("report.html.j2", PAGE)?;
     Ok(env)
@@ -106,6 +126,15 @@ pub fn render(r: &Report) -> Result<String, ReportError> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn prose_turns_backtick_pairs_into_code_after_escaping() {
+        assert_eq!(
+            prose("systems `a<b>` and `c`").to_string(),
+            "systems <code>a&lt;b&gt;</code> and <code>c</code>"
+        );
+        assert_eq!(prose("one ` tick").to_string(), "one ` tick");
+    }
 
     #[test]
     fn number_filters_write_missing_values_as_n_a() {

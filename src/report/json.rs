@@ -1,4 +1,4 @@
-//! Report stage, JSON writer: the `assize.report/1` document (documented in
+//! Report stage, JSON writer: the `assize.report/2` document (documented in
 //! `docs/report-schema.md`). Input: a `Report`. Output: pretty JSON text ending in a
 //! newline. Never adds or drops a field the schema does not list; undefined numbers
 //! (e.g. an interval of one item) are written as `null`.

@@ -29,6 +29,15 @@ fn signed(v: f64) -> String {
     }
 }
 
+/// A probability as a whole percentage.
+fn percent(v: f64) -> String {
+    if v.is_finite() {
+        format!("{:.0}%", v * 100.0)
+    } else {
+        "n/a".into()
+    }
+}
+
 fn opt(v: Option<f64>, digits: usize) -> String {
     v.map_or_else(|| "n/a".into(), |x| num(x, digits))
 }
@@ -196,20 +205,18 @@ fn pairwise(s: &mut String, r: &Report) {
             }
             let _ = writeln!(
                 s,
-                "| rank | system | rating [95% CI] | wins–ties–losses |\n|---|---|---|---|"
+                "| system | chance of beating an average system (95% interval) | won of compared, ties half |\n|---|---|---|"
             );
-            for (i, row) in k.rows.iter().enumerate() {
+            for row in &k.rows {
                 let _ = writeln!(
                     s,
-                    "| {} | `{}` | {} [{}, {}] | {}–{}–{} |",
-                    i + 1,
+                    "| `{}` | {} ({} to {}) | {} of {} |",
                     cell(&row.system),
-                    num(row.rating, 0),
-                    num(row.rating_low, 0),
-                    num(row.rating_high, 0),
-                    row.wins,
-                    row.ties,
-                    row.losses
+                    percent(row.beats_average),
+                    percent(row.beats_average_low),
+                    percent(row.beats_average_high),
+                    row.wins as f64 + 0.5 * row.ties as f64,
+                    row.comparisons()
                 );
             }
         }

@@ -1,7 +1,7 @@
 //! Report stage: the data model of a report people read. Input: finished run folders'
 //! records (one or more grading runs, the first being the baseline; optionally a
 //! comparison run), human labels and preferences, the rubric and the answers, all
-//! already loaded. Output: a `Report` (the `assize.report/1` JSON format), rendered by
+//! already loaded. Output: a `Report` (the `assize.report/2` JSON format), rendered by
 //! one writer per format (`html`, `markdown`, `json`). Never reads or writes files,
 //! never runs the model, and computes no statistic itself: it calls `judge`, `vet`,
 //! `probes` and `stats`.
@@ -27,7 +27,7 @@ use crate::rubric::Rubric;
 use crate::stats::calibration::ReliabilityBin;
 
 /// Name and version of the JSON format; bumped on any incompatible change.
-pub const SCHEMA: &str = "assize.report/1";
+pub const SCHEMA: &str = "assize.report/2";
 
 /// A judged item counts as disputed when the judge's expected score and the human
 /// consensus differ by at least this many scale points.

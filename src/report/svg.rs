@@ -461,23 +461,9 @@ pub fn position_chart(p: &Position) -> IntervalChart {
     )
 }
 
-/// Elo-scale ratings with bootstrap intervals, strongest first.
+/// Each system's chance of beating an average system, with bootstrap intervals,
+/// strongest first, against the even-chance line.
 pub fn ranking_chart(k: &Ranking) -> IntervalChart {
-    let ends: Vec<f64> = k
-        .rows
-        .iter()
-        .flat_map(|r| [r.rating, r.rating_low, r.rating_high])
-        .filter(|v| v.is_finite())
-        .collect();
-    let lo = (ends.iter().cloned().fold(1000.0, f64::min) / 50.0).floor() * 50.0 - 50.0;
-    let hi = (ends.iter().cloned().fold(1000.0, f64::max) / 50.0).ceil() * 50.0 + 50.0;
-    let step = if hi - lo > 600.0 {
-        200.0
-    } else if hi - lo > 300.0 {
-        100.0
-    } else {
-        50.0
-    };
     let rows = k
         .rows
         .iter()
@@ -485,24 +471,24 @@ pub fn ranking_chart(k: &Ranking) -> IntervalChart {
         .map(|(i, r)| {
             row(
                 i,
-                format!("{}. {}", i + 1, r.system),
-                (r.rating, r.rating_low, r.rating_high),
-                (lo, hi),
-                format!("{:.0}", r.rating),
-                format!("W{} T{} L{}", r.wins, r.ties, r.losses),
+                r.system.clone(),
+                (r.beats_average, r.beats_average_low, r.beats_average_high),
+                (0.0, 1.0),
+                format!("{:.0}%", r.beats_average * 100.0),
+                format!("won {} of {}", r.wins as f64 + 0.5 * r.ties as f64, r.comparisons()),
                 true,
             )
         })
         .collect();
     let reference = Some(Tick {
-        x: map(1000.0, lo, hi, AXIS.0, AXIS.1),
-        label: "1000: average".into(),
+        x: map(0.5, 0.0, 1.0, AXIS.0, AXIS.1),
+        label: "even chance".into(),
     });
     interval_chart(
         "ranking",
-        "Ranking: Bradley-Terry rating (Elo scale) with 95% bootstrap interval".into(),
+        "Chance of beating a system of average strength (Bradley-Terry), 95% bootstrap interval".into(),
         rows,
-        ticks(lo, hi, step, 0),
+        ticks(0.0, 1.0, 0.25, 2),
         reference,
     )
 }

@@ -11,46 +11,57 @@ use std::path::{Path, PathBuf};
 use serde::{Deserialize, Serialize};
 
 /// A score scale a criterion can use.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Scale {
-    /// Labels `1`..`5`.
-    OneToFive,
-    /// Labels `1`..`3`.
-    OneToThree,
-    /// Labels `0`..`10`.
-    ZeroToTen,
+    /// Integer labels `low`..=`high`, 2 to 11 points (`1-5`, `1-7`, `0-10`, ...).
+    Points {
+        /// Lowest label.
+        low: u32,
+        /// Highest label.
+        high: u32,
+    },
     /// Labels `yes` (value 1) and `no` (value 0).
     YesNo,
 }
 
+/// Fewest and most points an integer scale may have.
+pub const SCALE_POINTS: std::ops::RangeInclusive<u32> = 2..=11;
+
 impl Scale {
-    /// Parse the rubric spelling (`1-5`, `1-3`, `0-10`, `yes-no`).
+    /// Integer labels `low`..=`high`.
+    pub const fn points(low: u32, high: u32) -> Scale {
+        Scale::Points { low, high }
+    }
+
+    /// Parse the rubric spelling: `A-B` with whole numbers `A < B` and 2 to 11
+    /// points, or `yes-no`.
     pub fn parse(s: &str) -> Option<Scale> {
-        match s.trim() {
-            "1-5" => Some(Scale::OneToFive),
-            "1-3" => Some(Scale::OneToThree),
-            "0-10" => Some(Scale::ZeroToTen),
-            "yes-no" => Some(Scale::YesNo),
-            _ => None,
+        let s = s.trim();
+        if s == "yes-no" {
+            return Some(Scale::YesNo);
         }
+        let (a, b) = s.split_once('-')?;
+        let digits = |t: &str| !t.is_empty() && t.len() <= 3 && t.bytes().all(|c| c.is_ascii_digit());
+        if !digits(a) || !digits(b) {
+            return None;
+        }
+        let (low, high): (u32, u32) = (a.parse().ok()?, b.parse().ok()?);
+        let points = high.checked_sub(low)? + 1;
+        SCALE_POINTS.contains(&points).then_some(Scale::Points { low, high })
     }
 
     /// The rubric spelling.
-    pub fn name(&self) -> &'static str {
+    pub fn name(&self) -> String {
         match self {
-            Scale::OneToFive => "1-5",
-            Scale::OneToThree => "1-3",
-            Scale::ZeroToTen => "0-10",
-            Scale::YesNo => "yes-no",
+            Scale::Points { low, high } => format!("{low}-{high}"),
+            Scale::YesNo => "yes-no".into(),
         }
     }
 
     /// Labels in scale order (lowest value first).
     pub fn labels(&self) -> Vec<String> {
         match self {
-            Scale::OneToFive => (1..=5).map(|i| i.to_string()).collect(),
-            Scale::OneToThree => (1..=3).map(|i| i.to_string()).collect(),
-            Scale::ZeroToTen => (0..=10).map(|i| i.to_string()).collect(),
+            Scale::Points { low, high } => (*low..=*high).map(|i| i.to_string()).collect(),
             Scale::YesNo => vec!["no".into(), "yes".into()],
         }
     }
@@ -58,18 +69,20 @@ impl Scale {
     /// Numeric values of the labels, in the same order.
     pub fn values(&self) -> Vec<f64> {
         match self {
+            Scale::Points { low, high } => (*low..=*high).map(f64::from).collect(),
             Scale::YesNo => vec![0.0, 1.0],
-            _ => self
-                .labels()
-                .iter()
-                .map(|l| l.parse::<f64>().expect("numeric scale labels are integers"))
-                .collect(),
         }
     }
 
     /// Position of a label on the scale.
     pub fn index_of(&self, label: &str) -> Option<usize> {
         self.labels().iter().position(|l| l == label.trim())
+    }
+}
+
+impl Serialize for Scale {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&self.name())
     }
 }
 
@@ -205,9 +218,10 @@ pub enum RubricError {
 pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
     let e = err.downcast_ref::<RubricError>()?;
     Some(match e {
-        RubricError::Io { .. } => {
-            "check the path; bundled rubrics are in judge-templates/rubrics/".into()
-        }
+        RubricError::Io { .. } => format!(
+            "check the path, or name a bundled rubric: {}",
+            bundled_names()
+        ),
         RubricError::Invalid { .. } => {
             "fix the listed lines; the rubric format is described in the README (Formats)".into()
         }
@@ -248,8 +262,36 @@ fn line_of(text: &str, offset: usize) -> usize {
     text[..offset.min(text.len())].matches('\n').count() + 1
 }
 
-/// Read and check a rubric file; every problem is reported at once.
+/// Rubrics built into the binary: (name, TOML text). Their sources are
+/// `judge-templates/rubrics/NAME.toml`.
+pub const BUNDLED: &[(&str, &str)] = &[
+    ("support", include_str!("../../judge-templates/rubrics/support.toml")),
+    ("quick", include_str!("../../judge-templates/rubrics/quick.toml")),
+];
+
+/// The bundled rubric names, as `support`, `quick` for messages.
+pub fn bundled_names() -> String {
+    BUNDLED
+        .iter()
+        .map(|(n, _)| format!("`{n}`"))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// The text of a bundled rubric when `spec` is one's bare name (no folder, no
+/// extension). A file of that name in the current folder is not consulted: a bare
+/// name always means the built-in rubric, so a command means the same in any folder.
+pub fn bundled_text(spec: &Path) -> Option<&'static str> {
+    let name = spec.to_str()?;
+    BUNDLED.iter().find(|(n, _)| *n == name).map(|(_, t)| *t)
+}
+
+/// Read and check a rubric: a bundled one by name (`support`), else a TOML file.
+/// Every problem is reported at once.
 pub fn load_rubric(path: &Path) -> Result<Rubric, RubricError> {
+    if let Some(text) = bundled_text(path) {
+        return parse_rubric(path, text);
+    }
     let text = std::fs::read_to_string(path).map_err(|source| RubricError::Io {
         path: path.to_path_buf(),
         source,
@@ -306,7 +348,7 @@ pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
         let Some(scale) = Scale::parse(c.scale.get_ref()) else {
             bad(
                 format!(
-                    "criterion `{}`: unknown scale `{}` (use `1-5`, `1-3`, `0-10` or `yes-no`)",
+                    "criterion `{}`: unknown scale `{}` (use `A-B` with whole numbers and 2 to 11 points, such as `1-5` or `0-10`, or `yes-no`)",
                     c.key,
                     c.scale.get_ref()
                 ),
@@ -408,7 +450,7 @@ scale = "yes-no"
 [[criterion]]
 key = "a"
 question = "Q"
-scale = "1-7"
+scale = "1-12"
 
 [[criterion]]
 key = "b"
@@ -425,11 +467,36 @@ needs = ["sources"]
         };
         assert_eq!(problems.len(), 3, "{err}");
         assert_eq!(problems[0].line, 5);
-        assert!(problems[0].message.contains("unknown scale `1-7`"));
+        assert!(problems[0].message.contains("unknown scale `1-12`"));
         assert_eq!(problems[1].line, 11);
         assert!(problems[2]
             .message
             .contains("no description for scale point `3`"));
+    }
+
+    /// Four- and seven-point scales are common practice in annotation guidelines (from
+    /// memory); the bounds 2 and 11 points are this project's rule.
+    #[test]
+    fn integer_scales_of_two_to_eleven_points_parse() {
+        assert_eq!(Scale::parse("1-7"), Some(Scale::points(1, 7)));
+        assert_eq!(Scale::parse("1-4").map(|s| s.labels()), Some(vec!["1".into(), "2".into(), "3".into(), "4".into()]));
+        assert_eq!(Scale::parse("0-10").map(|s| s.values().len()), Some(11));
+        assert_eq!(Scale::parse("0-1"), Some(Scale::points(0, 1)));
+        assert_eq!(Scale::parse("yes-no"), Some(Scale::YesNo));
+        assert_eq!(Scale::points(1, 7).name(), "1-7");
+        for bad in ["1-1", "5-1", "1-12", "0-11", "-1-5", "1-5.5", "a-b", "1-", "15"] {
+            assert_eq!(Scale::parse(bad), None, "{bad}");
+        }
+    }
+
+    #[test]
+    fn seven_point_rubric_needs_a_description_per_point() {
+        let text = "name = \"t\"\n[[criterion]]\nkey = \"a\"\nquestion = \"Q\"\nscale = \"1-7\"\n[criterion.points]\n\"1\" = \"x\"\n\"7\" = \"y\"\n";
+        let err = parse_rubric(Path::new("r.toml"), text).expect_err("five points lack text");
+        let RubricError::Invalid { problems, .. } = &err else {
+            panic!("{err}")
+        };
+        assert_eq!(problems.len(), 5, "{err}");
     }
 
     #[test]
@@ -440,12 +507,21 @@ needs = ["sources"]
     }
 
     #[test]
-    fn bundled_rubrics_are_valid() {
-        for name in ["support", "quick"] {
+    fn bundled_rubrics_are_valid_and_match_their_files() {
+        for (name, _) in BUNDLED {
             let p = Path::new(env!("CARGO_MANIFEST_DIR"))
                 .join("judge-templates/rubrics")
                 .join(format!("{name}.toml"));
-            load_rubric(&p).unwrap_or_else(|e| panic!("{name}: {e}"));
+            let from_file = load_rubric(&p).unwrap_or_else(|e| panic!("{name}: {e}"));
+            let built_in = load_rubric(Path::new(name)).unwrap_or_else(|e| panic!("{name}: {e}"));
+            assert_eq!(from_file.sha256, built_in.sha256, "{name}");
         }
+    }
+
+    #[test]
+    fn unknown_rubric_name_names_the_bundled_ones_in_its_fix() {
+        let err = load_rubric(Path::new("suport")).expect_err("no such file or name");
+        let fix = fix_for(&err).expect("rubric errors have a fix");
+        assert!(fix.contains("`support`") && fix.contains("`quick`"), "{fix}");
     }
 }

@@ -1,4 +1,4 @@
-//! Statistics stage: logistic regression and the length-controlled win rate.
+//! Statistics stage: logistic regression and the win rate at equal length.
 //! Input: predictor columns and 0/1 (or fractional) outcomes. Output: coefficients,
 //! standard errors and convergence details; the win rate with the length effect
 //! removed. Never does I/O and never reports a fit that did not converge.
@@ -232,15 +232,15 @@ fn invert(a: &[Vec<f64>]) -> Option<Vec<Vec<f64>>> {
     )
 }
 
-/// Length-controlled win rate of a model against a baseline.
+/// Win rate at equal length of a model against a baseline.
 #[derive(Debug, Clone, PartialEq, Serialize)]
-pub struct LengthControlledWinRate {
+pub struct WinRateAtEqualLength {
     /// Number of judged pairs.
     pub n: usize,
     /// Raw win rate: mean of the outcomes (ties count as given, e.g. 0.5).
     pub raw_win_rate: f64,
     /// Win rate with the length term set to zero: logistic(θ).
-    pub lc_win_rate: f64,
+    pub at_equal_length: f64,
     /// Intercept θ (model-versus-baseline strength at equal length).
     pub theta: f64,
     /// Slope φ on the squashed length difference.
@@ -251,19 +251,19 @@ pub struct LengthControlledWinRate {
     pub length_sd: f64,
 }
 
-/// Length-controlled win rate (Dubois, Galambosi, Liang & Hashimoto 2024).
+/// Win rate at equal length (Dubois, Galambosi, Liang & Hashimoto 2024).
 ///
 /// Fits y ~ logistic(θ + φ·tanh(Δlen / sd(Δlen))) with sd the sample standard
-/// deviation (ddof = 1); the LC win rate is logistic(θ), the predicted preference at
+/// deviation (ddof = 1); the win rate at equal length is logistic(θ), the predicted preference at
 /// equal length. `len_diff[i]` = len(model answer) − len(baseline answer); `outcome[i]`
 /// = 1 model preferred, 0 baseline preferred, 0.5 tie. This is the one-baseline form
 /// without the instruction-difficulty term; when every length difference is equal the
 /// length term is dropped (it cannot be told apart from θ).
-pub fn length_controlled_win_rate(
+pub fn win_rate_at_equal_length(
     len_diff: &[f64],
     outcome: &[f64],
     l2: f64,
-) -> Result<LengthControlledWinRate, StatsError> {
+) -> Result<WinRateAtEqualLength, StatsError> {
     let n = len_diff.len();
     if outcome.len() != n {
         return Err(StatsError::LengthMismatch {
@@ -293,10 +293,10 @@ pub fn length_controlled_win_rate(
         let fit = fit_logistic(&[], outcome, options)?;
         (fit.coefficients[0], 0.0, fit.standard_errors[0])
     };
-    Ok(LengthControlledWinRate {
+    Ok(WinRateAtEqualLength {
         n,
         raw_win_rate,
-        lc_win_rate: logistic(theta),
+        at_equal_length: logistic(theta),
         theta,
         phi,
         theta_se,
@@ -320,19 +320,19 @@ mod tests {
     /// Dubois et al. 2024 tagged from memory): sd = 213.07960171416377, θ =
     /// −0.4403542188429178, φ = 3.5104649871219187, LC 0.39165656923128134, raw 0.625.
     #[test]
-    fn lc_win_rate_matches_statsmodels_toy_check() {
-        let lc = length_controlled_win_rate(&DLEN, &Y, 0.0).unwrap();
-        assert!((lc.length_sd - 213.07960171416377).abs() < 1e-9);
-        assert!((lc.theta - -0.4403542188429178).abs() < 1e-8);
-        assert!((lc.phi - 3.5104649871219187).abs() < 1e-8);
-        assert!((lc.lc_win_rate - 0.39165656923128134).abs() < 1e-8);
-        assert_eq!(lc.raw_win_rate, 0.625);
+    fn win_rate_at_equal_length_matches_statsmodels_toy_check() {
+        let fit = win_rate_at_equal_length(&DLEN, &Y, 0.0).unwrap();
+        assert!((fit.length_sd - 213.07960171416377).abs() < 1e-9);
+        assert!((fit.theta - -0.4403542188429178).abs() < 1e-8);
+        assert!((fit.phi - 3.5104649871219187).abs() < 1e-8);
+        assert!((fit.at_equal_length - 0.39165656923128134).abs() < 1e-8);
+        assert_eq!(fit.raw_win_rate, 0.625);
     }
 
     /// Dubois et al. (2024) identity property: a model against itself, each pair seen
     /// from both sides (Δ, y) and (−Δ, 1 − y), has LC win rate exactly 50%.
     #[test]
-    fn lc_win_rate_of_model_against_itself_is_one_half() {
+    fn win_rate_at_equal_length_of_model_against_itself_is_one_half() {
         let dlen: Vec<f64> = DLEN
             .iter()
             .chain(DLEN.iter().map(|d| -d).collect::<Vec<_>>().iter())
@@ -343,22 +343,22 @@ mod tests {
             .chain(Y.iter().map(|v| 1.0 - v).collect::<Vec<_>>().iter())
             .copied()
             .collect();
-        let lc = length_controlled_win_rate(&dlen, &y, 0.0).unwrap();
-        assert!((lc.lc_win_rate - 0.5).abs() < 1e-12);
+        let fit = win_rate_at_equal_length(&dlen, &y, 0.0).unwrap();
+        assert!((fit.at_equal_length - 0.5).abs() < 1e-12);
         // Identical answers: no length difference, every verdict a tie.
-        let same = length_controlled_win_rate(&[0.0; 6], &[0.5; 6], 0.0).unwrap();
-        assert!((same.lc_win_rate - 0.5).abs() < 1e-12 && same.phi == 0.0);
+        let same = win_rate_at_equal_length(&[0.0; 6], &[0.5; 6], 0.0).unwrap();
+        assert!((same.at_equal_length - 0.5).abs() < 1e-12 && same.phi == 0.0);
     }
 
     /// Dubois et al. (2024) symmetry property: swapping model and baseline (Δ → −Δ,
     /// y → 1 − y) turns the LC win rate w into 1 − w.
     #[test]
-    fn lc_win_rate_is_symmetric_under_swapping_sides() {
-        let a = length_controlled_win_rate(&DLEN, &Y, 0.0).unwrap();
+    fn win_rate_at_equal_length_is_symmetric_under_swapping_sides() {
+        let a = win_rate_at_equal_length(&DLEN, &Y, 0.0).unwrap();
         let dneg: Vec<f64> = DLEN.iter().map(|d| -d).collect();
         let yneg: Vec<f64> = Y.iter().map(|v| 1.0 - v).collect();
-        let b = length_controlled_win_rate(&dneg, &yneg, 0.0).unwrap();
-        assert!((a.lc_win_rate + b.lc_win_rate - 1.0).abs() < 1e-12);
+        let b = win_rate_at_equal_length(&dneg, &yneg, 0.0).unwrap();
+        assert!((a.at_equal_length + b.at_equal_length - 1.0).abs() < 1e-12);
     }
 
     /// Intercept-only fit is the logit of the mean (closed-form MLE), SE =
@@ -389,8 +389,8 @@ mod tests {
         )
         .unwrap();
         assert!(fit.coefficients[1] > 0.0 && fit.coefficients[1].is_finite());
-        let free = length_controlled_win_rate(&DLEN, &Y, 0.0).unwrap();
-        let shrunk = length_controlled_win_rate(&DLEN, &Y, 5.0).unwrap();
+        let free = win_rate_at_equal_length(&DLEN, &Y, 0.0).unwrap();
+        let shrunk = win_rate_at_equal_length(&DLEN, &Y, 5.0).unwrap();
         assert!(shrunk.phi.abs() < free.phi.abs());
     }
 
@@ -398,6 +398,6 @@ mod tests {
     fn bad_inputs_are_errors() {
         assert!(fit_logistic(&[&[1.0]], &[1.0, 0.0], LogisticOptions::default()).is_err());
         assert!(fit_logistic(&[], &[2.0], LogisticOptions::default()).is_err());
-        assert!(length_controlled_win_rate(&[1.0], &[1.0], 0.0).is_err());
+        assert!(win_rate_at_equal_length(&[1.0], &[1.0], 0.0).is_err());
     }
 }

@@ -1,7 +1,8 @@
 //! Statistics stage: rankings from pairwise outcomes. Input: comparisons as
-//! (item, item, outcome) or a win matrix. Output: Bradley–Terry strengths on the
-//! probability, log and Elo scales, and sequential Elo ratings. Never does I/O and
-//! never returns a ranking when the comparisons admit no finite estimate.
+//! (item, item, outcome) or a win matrix. Output: Bradley–Terry strengths, their
+//! logarithms, and each item's modelled chance of beating an item of average strength.
+//! Never does I/O and never returns a ranking when the comparisons admit no finite
+//! estimate.
 
 use serde::Serialize;
 
@@ -71,8 +72,6 @@ pub struct BradleyTerry {
     pub pi: Vec<f64>,
     /// Log-strengths θ_i = ln π_i.
     pub theta: Vec<f64>,
-    /// Elo-scale ratings 400·log10(π_i), shifted to mean 1000.
-    pub elo_scale: Vec<f64>,
     /// MM iterations used.
     pub iterations: usize,
 }
@@ -87,6 +86,18 @@ impl BradleyTerry {
                 allowed: format!("item indices below {}", self.pi.len()),
             }),
         }
+    }
+
+    /// Each item's modelled chance of beating an item of average strength: the item
+    /// whose log-strength is the mean θ̄, so P_i = 1 / (1 + exp(θ̄ − θ_i)). Unlike a
+    /// rating scale this needs no arbitrary offset and reads as a probability; 0.5 is
+    /// exactly average.
+    pub fn beats_average(&self) -> Vec<f64> {
+        let mean = self.theta.iter().sum::<f64>() / self.theta.len().max(1) as f64;
+        self.theta
+            .iter()
+            .map(|t| 1.0 / (1.0 + (mean - t).exp()))
+            .collect()
     }
 }
 
@@ -146,13 +157,9 @@ pub fn bradley_terry(
         pi = next;
         if change < tolerance {
             let theta: Vec<f64> = pi.iter().map(|p| p.ln()).collect();
-            let raw: Vec<f64> = pi.iter().map(|p| 400.0 * p.log10()).collect();
-            let mean = raw.iter().sum::<f64>() / n as f64;
-            let elo_scale = raw.iter().map(|r| r - mean + 1000.0).collect();
             return Ok(BradleyTerry {
                 pi,
                 theta,
-                elo_scale,
                 iterations: iteration,
             });
         }
@@ -246,58 +253,6 @@ fn describe(groups: &[Vec<usize>]) -> String {
         .join(" ")
 }
 
-/// Elo (1978) expected score of a player rated `rating_a` against `rating_b`.
-pub fn elo_expected(rating_a: f64, rating_b: f64) -> f64 {
-    1.0 / (1.0 + 10f64.powf((rating_b - rating_a) / 400.0))
-}
-
-/// One Elo (1978) update: R' = R + K(S − E), with `score_a` 1 (win), 0.5 (tie) or 0 (loss).
-pub fn elo_update(
-    rating_a: f64,
-    rating_b: f64,
-    score_a: f64,
-    k: f64,
-) -> Result<(f64, f64), StatsError> {
-    if !(0.0..=1.0).contains(&score_a) {
-        return Err(StatsError::OutOfRange {
-            value: score_a.to_string(),
-            allowed: "a score in [0, 1]".into(),
-        });
-    }
-    let expected_a = elo_expected(rating_a, rating_b);
-    let delta = k * (score_a - expected_a);
-    Ok((rating_a + delta, rating_b - delta))
-}
-
-/// Sequential Elo ratings of `n_items` items over comparisons in the given order.
-///
-/// Order-dependent by design (unlike Bradley–Terry); every item starts at `initial`.
-pub fn elo_ratings(
-    n_items: usize,
-    comparisons: &[(usize, usize, Outcome)],
-    k: f64,
-    initial: f64,
-) -> Result<Vec<f64>, StatsError> {
-    let mut ratings = vec![initial; n_items];
-    for &(i, j, outcome) in comparisons {
-        if i >= n_items || j >= n_items || i == j {
-            return Err(StatsError::OutOfRange {
-                value: format!("({i}, {j})"),
-                allowed: format!("two different item indices below {n_items}"),
-            });
-        }
-        let score = match outcome {
-            Outcome::Win => 1.0,
-            Outcome::Tie => 0.5,
-            Outcome::Loss => 0.0,
-        };
-        let (a, b) = elo_update(ratings[i], ratings[j], score, k)?;
-        ratings[i] = a;
-        ratings[j] = b;
-    }
-    Ok(ratings)
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -312,7 +267,9 @@ mod tests {
 
     /// METHODS section 11 ([lib] choix 0.4.1, 8 d.p. display): W = [[0,3,2],[1,0,3],[2,1,0]]
     /// → π = [0.45183167, 0.32063496, 0.22753337], P(0 beats 1) = 0.58492063,
-    /// Elo scale [1059.58631567, 1000, 940.41368433], θ differences 0.343006406.
+    /// θ differences 0.343006406 (equal steps, so item 1 sits at the mean log-strength).
+    /// Hence the chance of beating an average item is P(0 beats 1) for item 0, 0.5 for
+    /// item 1 and 1 − P(0 beats 1) = 0.41507937 for item 2.
     #[test]
     fn bradley_terry_matches_choix_example() {
         let bt = bradley_terry(&example(), 1e-13, 10_000).unwrap();
@@ -321,9 +278,9 @@ mod tests {
         }
         assert!((bt.win_probability(0, 1).unwrap() - 0.58492063).abs() < 5e-9);
         for (r, w) in bt
-            .elo_scale
+            .beats_average()
             .iter()
-            .zip([1059.58631567, 1000.0, 940.41368433])
+            .zip([0.58492063, 0.5, 0.41507937])
         {
             assert!((r - w).abs() < 5e-8, "{r} vs {w}");
         }
@@ -401,45 +358,5 @@ mod tests {
             Err(StatsError::Undefined(msg)) => assert!(msg.contains("{0}"), "{msg}"),
             other => panic!("expected an error, got {other:?}"),
         }
-    }
-
-    /// METHODS section 11 Elo checks (K = 32, [lib]): 1500 v 1500 win → 1516/1484;
-    /// 1600 v 1400 win → 1607.6880983472654/1392.3119016527346 with E_A =
-    /// 0.7597469266479578; loss → 1575.6880983472654/1424.3119016527346; draw at
-    /// 1500/1500 unchanged.
-    #[test]
-    fn elo_updates_match_methods_values() {
-        assert_eq!(
-            elo_update(1500.0, 1500.0, 1.0, 32.0).unwrap(),
-            (1516.0, 1484.0)
-        );
-        assert!((elo_expected(1600.0, 1400.0) - 0.7597469266479578).abs() < 1e-12);
-        let (a, b) = elo_update(1600.0, 1400.0, 1.0, 32.0).unwrap();
-        assert!((a - 1607.6880983472654).abs() < 1e-9 && (b - 1392.3119016527346).abs() < 1e-9);
-        let (a, b) = elo_update(1600.0, 1400.0, 0.0, 32.0).unwrap();
-        assert!((a - 1575.6880983472654).abs() < 1e-9 && (b - 1424.3119016527346).abs() < 1e-9);
-        assert_eq!(
-            elo_update(1500.0, 1500.0, 0.5, 32.0).unwrap(),
-            (1500.0, 1500.0)
-        );
-        assert!(elo_update(1500.0, 1500.0, 2.0, 32.0).is_err());
-    }
-
-    /// Sequential Elo applies the same updates in order (first game 1516/1484, then a
-    /// loss of item 0 to item 2 from 1516 v 1500) and conserves the rating total.
-    #[test]
-    fn elo_sequence_applies_updates_in_order() {
-        let r = elo_ratings(
-            3,
-            &[(0, 1, Outcome::Win), (2, 0, Outcome::Win)],
-            32.0,
-            1500.0,
-        )
-        .unwrap();
-        let (a, c) = elo_update(1516.0, 1500.0, 0.0, 32.0).unwrap();
-        assert!(
-            (r[0] - a).abs() < 1e-12 && (r[1] - 1484.0).abs() < 1e-12 && (r[2] - c).abs() < 1e-12
-        );
-        assert!((r.iter().sum::<f64>() - 4500.0).abs() < 1e-9);
     }
 }

@@ -12,6 +12,14 @@
 //! sample-size advice (Fleiss, Cohen & Everitt 1969 precision form, pass/fail
 //! approximation) asks for more items than there are, or the interval is wider than
 //! [`MAX_CI_WIDTH`].
+//!
+//! The rule is close to the alternative annotator test of Calderon, Reichart & Dror
+//! (2025), which holds out each annotator in turn, tests per annotator whether the judge
+//! matches the remaining annotators at least as well as the held-out one did (within a
+//! margin ε), corrects for the many tests and passes the judge when it wins for at
+//! least half the annotators. Here the raters are pooled instead: one gap between the
+//! judge's kappa and the mean leave-one-rater-out kappa, one paired bootstrap interval,
+//! and a third answer, "cannot tell yet", when the interval straddles the margin.
 
 use serde::Serialize;
 

@@ -135,12 +135,12 @@ fn dummy_report() -> VetReport {
             record(
                 &format!("q{i:03}"),
                 "c",
-                Scale::OneToFive,
+                Scale::points(1, 5),
                 &peaked(5, h, 0.7),
             )
         })
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     vet(
         &[variant("judge", &recs, VariantKind::Argmax)],
         &rows,

@@ -132,8 +132,8 @@ pub(super) fn categorical(r: &VetReport) -> &CategoricalAgreement {
 fn ordinal_example_gives_the_reference_kappas() {
     let a = [1, 2, 3, 4, 2, 3, 4, 1, 2, 3, 3, 4].map(|x| x - 1);
     let b = [1, 2, 3, 3, 2, 4, 4, 2, 2, 3, 2, 4].map(|x| x - 1);
-    let (recs, rows) = one_rater(Scale::OneToFive, &a, &b);
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let (recs, rows) = one_rater(Scale::points(1, 5), &a, &b);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -165,8 +165,8 @@ fn ordinal_example_gives_the_reference_kappas() {
 fn unused_middle_label_still_counts_in_weighted_kappa() {
     let a = [1, 2, 3, 5, 5, 1, 2, 3].map(|x| x - 1);
     let b = [1, 3, 3, 5, 3, 2, 2, 5].map(|x| x - 1);
-    let (recs, rows) = one_rater(Scale::OneToFive, &a, &b);
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let (recs, rows) = one_rater(Scale::points(1, 5), &a, &b);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -191,11 +191,11 @@ fn unused_middle_label_still_counts_in_weighted_kappa() {
 fn correlations_and_errors_match_the_scipy_example() {
     let x = [1, 2, 2, 3, 4, 4, 4, 5].map(|v| v - 1);
     let y = [2, 1, 3, 3, 4, 5, 4, 5].map(|v| v - 1);
-    let (mut recs, rows) = one_rater(Scale::OneToFive, &x, &y);
+    let (mut recs, rows) = one_rater(Scale::points(1, 5), &x, &y);
     for (r, &v) in recs.iter_mut().zip(&x) {
         r.expected = (v + 1) as f64; // the continuous score the correlations use
     }
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("expected", &recs, VariantKind::ExpectedScore)],
         &rows,
@@ -237,8 +237,8 @@ fn gwet_coefficients_match_the_handbook_table() {
             j.extend(std::iter::repeat_n(jj, n));
         }
     }
-    let (recs, rows) = one_rater(Scale::OneToThree, &j, &h);
-    let rb = rubric(&[("c", Scale::OneToThree)]);
+    let (recs, rows) = one_rater(Scale::points(1, 3), &j, &h);
+    let rb = rubric(&[("c", Scale::points(1, 3))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -289,14 +289,14 @@ fn calibration_matches_the_multiclass_example() {
     let recs: Vec<GradeRecord> = p
         .iter()
         .enumerate()
-        .map(|(i, row)| record(&format!("q{i}"), "c", Scale::OneToFive, row))
+        .map(|(i, row)| record(&format!("q{i}"), "c", Scale::points(1, 5), row))
         .collect();
     let rows: Vec<LabelRow> = y
         .iter()
         .enumerate()
         .map(|(i, s)| label(&format!("q{i}"), "c", "r1", s))
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("expected", &recs, VariantKind::ExpectedScore)],
         &rows,
@@ -383,7 +383,7 @@ fn ceiling_alpha_matches_krippendorffs_published_example() {
             }
         }
     }
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let lab = items::group_labels(&rows, &rb).expect("labels");
     let h = ceiling::ceiling(&lab[0]);
     close(h.alpha_ordinal.expect("defined"), 0.8153875037548814, 1e-12);

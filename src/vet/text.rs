@@ -44,15 +44,9 @@ pub fn report_text(r: &VetReport, p: Option<&PairVetReport>) -> String {
         o.level * 100.0,
         o.margin
     );
-    for c in &r.criteria {
-        criterion(&mut s, c);
-    }
-    for k in &r.skipped {
-        let _ = writeln!(s, "\nnot vetted: `{}` ({})", k.criterion, k.reason);
-    }
     let _ = writeln!(
         s,
-        "\ntrust summary (primary variant `{}`)",
+        "\ntrust summary (primary variant `{}`; details per criterion below)",
         r.variants.first().map_or("", |v| v.name.as_str())
     );
     for c in &r.criteria {
@@ -67,6 +61,12 @@ pub fn report_text(r: &VetReport, p: Option<&PairVetReport>) -> String {
             c.criterion,
             c.trust.verdict.as_str()
         );
+    }
+    for c in &r.criteria {
+        criterion(&mut s, c);
+    }
+    for k in &r.skipped {
+        let _ = writeln!(s, "\nnot vetted: `{}` ({})", k.criterion, k.reason);
     }
     if let Some(p) = p {
         pairs(&mut s, p);
@@ -83,6 +83,7 @@ fn criterion(s: &mut String, c: &CriterionReport) {
         c.labelled_items,
         c.raters.join(", ")
     );
+    card(s, c);
     let _ = writeln!(s, "\n  variants against the human consensus");
     let _ = writeln!(
         s,
@@ -204,7 +205,7 @@ fn criterion(s: &mut String, c: &CriterionReport) {
     }
     let _ = writeln!(
         s,
-        "    typical rater: kappa_q {}, spearman {}; ordinal alpha among raters {}",
+        "    typical rater (mean over raters, each on every item it labelled): kappa_q {}, spearman {}; ordinal alpha among raters {}",
         num(h.mean_kappa_quadratic),
         num(h.mean_spearman),
         num(h.alpha_ordinal)
@@ -212,7 +213,6 @@ fn criterion(s: &mut String, c: &CriterionReport) {
     if let Some(n) = &h.note {
         let _ = writeln!(s, "    note: {n}");
     }
-    card(s, c);
     calibration(s, c);
     for n in c
         .variants
@@ -230,17 +230,17 @@ fn card(s: &mut String, c: &CriterionReport) {
     let t = &c.trust;
     let _ = writeln!(
         s,
-        "\n  trust card for `{}`: can `{}` stand in for a rater? {}",
+        "  trust card for `{}`: can `{}` stand in for a rater? {}",
         c.criterion,
         t.variant,
         t.verdict.as_str().to_uppercase()
     );
     let _ = writeln!(
         s,
-        "    judge kappa_q {} vs typical rater {} on {} items (judge against the raters' own leave-one-out references: {})",
+        "    on the {} items the judge graded: judge kappa_q {} vs typical rater {} (judge against the raters' own leave-one-out references: {})",
+        t.n_items,
         num(t.judge_kappa_quadratic),
         num(t.human_kappa_quadratic),
-        t.n_items,
         num(t.judge_kappa_matched)
     );
     let _ = writeln!(s, "    why: {}", t.reason);

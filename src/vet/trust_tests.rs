@@ -45,12 +45,12 @@ fn perfect_judge_has_kappa_one_and_is_trusted() {
             record(
                 &format!("q{i:03}"),
                 "c",
-                Scale::OneToFive,
+                Scale::points(1, 5),
                 &peaked(5, h, 0.9),
             )
         })
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -81,12 +81,12 @@ fn random_judge_is_not_trusted() {
             record(
                 &format!("q{i:03}"),
                 "c",
-                Scale::OneToFive,
+                Scale::points(1, 5),
                 &peaked(5, rng.random_range(0..5), 0.5),
             )
         })
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -112,12 +112,12 @@ fn a_yes_on_few_items_is_called_thin_in_words() {
             record(
                 &format!("q{i:03}"),
                 "c",
-                Scale::OneToFive,
+                Scale::points(1, 5),
                 &peaked(5, h, 0.9),
             )
         })
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let r = vet(
         &[variant("argmax", &recs, VariantKind::Argmax)],
         &rows,
@@ -146,7 +146,7 @@ fn baseline_variant_gets_correlations_only() {
             record(
                 &format!("q{i:03}"),
                 "c",
-                Scale::OneToFive,
+                Scale::points(1, 5),
                 &peaked(5, h, 0.9),
             )
         })
@@ -160,7 +160,7 @@ fn baseline_variant_gets_correlations_only() {
             ..r.clone()
         })
         .collect();
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let vs = [
         variant("judge", &judge, VariantKind::Argmax),
         variant("overlap", &base, VariantKind::Baseline),
@@ -185,8 +185,8 @@ fn baseline_variant_gets_correlations_only() {
 /// a baseline listed first and labels the judge never graded are errors naming the problem.
 #[test]
 fn bad_inputs_are_errors_that_name_the_problem() {
-    let rb = rubric(&[("c", Scale::OneToFive)]);
-    let recs = vec![record("q1", "c", Scale::OneToFive, &peaked(5, 2, 0.8))];
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
+    let recs = vec![record("q1", "c", Scale::points(1, 5), &peaked(5, 2, 0.8))];
     let v = [variant("judge", &recs, VariantKind::Argmax)];
     let e =
         vet(&v, &[label("q1", "tone", "r", "3")], &rb, &quick()).expect_err("unknown criterion");
@@ -221,8 +221,8 @@ fn bad_inputs_are_errors_that_name_the_problem() {
         Err(VetError::PrimaryIsBaseline { .. })
     ));
     assert!(fix_for(&e).is_some());
-    let other = vec![record("q1", "d", Scale::OneToFive, &peaked(5, 2, 0.8))];
-    let rb2 = rubric(&[("c", Scale::OneToFive), ("d", Scale::OneToFive)]);
+    let other = vec![record("q1", "d", Scale::points(1, 5), &peaked(5, 2, 0.8))];
+    let rb2 = rubric(&[("c", Scale::points(1, 5)), ("d", Scale::points(1, 5))]);
     let e = vet(
         &[variant("judge", &other, VariantKind::Argmax)],
         &[label("q1", "c", "r", "3")],
