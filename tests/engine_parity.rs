@@ -12,10 +12,12 @@ use std::sync::Mutex;
 
 use assize::engine::decoder::{log_softmax, Activation, Decoder, LoadOptions, Numerics};
 use assize::engine::linear::MatmulPolicy;
-use assize::engine::{EngineError, GgufFile};
+use assize::engine::{EngineError, GgufFile, ModelInfo};
 use candle_core::quantized::gguf_file::Value;
 use candle_core::{Device, Tensor};
-use candle_transformers::models::{quantized_gemma3, quantized_llama, quantized_qwen2};
+use candle_transformers::models::{
+    quantized_gemma3, quantized_llama, quantized_phi3, quantized_qwen2, quantized_qwen3,
+};
 use common::tiny_gguf::{Tiny, VOCAB};
 
 const QWEN_1_5B: &str = "qwen2.5-coder-1.5b-instruct-q4_k_m.gguf";
@@ -75,6 +77,18 @@ fn stock_logits(path: &Path, prompts: &[Vec<u32>], f32_weights: bool) -> Vec<Vec
             }
             "gemma3" => {
                 let mut m = quantized_gemma3::ModelWeights::from_gguf(ct, r, &dev).expect("gemma3");
+                Box::new(move |x| m.forward(x, 0))
+            }
+            "qwen3" => {
+                let mut m = quantized_qwen3::ModelWeights::from_gguf(ct, r, &dev).expect("qwen3");
+                Box::new(move |x| {
+                    m.clear_kv_cache();
+                    m.forward(x, 0)
+                })
+            }
+            "phi3" => {
+                let mut m =
+                    quantized_phi3::ModelWeights::from_gguf(false, ct, r, &dev).expect("phi3");
                 Box::new(move |x| m.forward(x, 0))
             }
             other => panic!("no stock model for {other}"),
@@ -239,6 +253,22 @@ fn tiny_gemma3_matches_candle_quantized_gemma3() {
     tiny_parity("gemma3");
 }
 
+/// Reference: candle-transformers 0.11.1 `quantized_qwen3::ModelWeights` on the same
+/// tiny file (per-head q/k RMS norms before RoPE, heads wider than hidden / heads,
+/// output tied to the embedding table), run in f32 (`general.dtype = 0`).
+#[test]
+fn tiny_qwen3_matches_candle_quantized_qwen3() {
+    tiny_parity("qwen3");
+}
+
+/// Reference: candle-transformers 0.11.1 `quantized_phi3::ModelWeights` on the same
+/// tiny file (q/k/v in one fused tensor, gate and up in another, grouped key/value
+/// heads, separate output projection).
+#[test]
+fn tiny_phi3_matches_candle_quantized_phi3() {
+    tiny_parity("phi3");
+}
+
 /// Shapes read from the metadata; logits have one entry per vocabulary row.
 #[test]
 fn tiny_models_load_with_expected_shapes() {
@@ -247,6 +277,8 @@ fn tiny_models_load_with_expected_shapes() {
         ("llama", 256, 4, 2, 64, true),
         ("qwen2", 256, 4, 2, 64, false),
         ("gemma3", 320, 2, 1, 128, true),
+        ("qwen3", 256, 4, 2, 128, true),
+        ("phi3", 256, 4, 2, 64, false),
     ] {
         let dec = load(
             &Tiny::new(arch).write(dir.path()),
@@ -275,6 +307,95 @@ fn tiny_models_load_with_expected_shapes() {
             .iter()
             .all(|r| r.len() == VOCAB && r.iter().all(|v| v.is_finite())));
         assert_eq!(cache.len(), 3);
+    }
+}
+
+/// Gemma 3's window keys in both spellings: llama.cpp's converter
+/// (`rope.freq_base_swa`, `attention.sliding_window_pattern`, as a period or one
+/// boolean per block) and candle-transformers' older one (`rope.local_freq_base`,
+/// `attention.sliding_window_type`). The same pattern and base written either way give
+/// the same blocks and bit-identical logits; where both are present, llama.cpp's wins;
+/// without them the defaults (every 6th block global, base 10000) apply, and the logits
+/// differ (a decoder that ignored the keys would fail here).
+#[test]
+fn gemma3_window_keys_read_in_both_spellings() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let key = |k: &str| format!("gemma3.{k}");
+    let spec = |pattern: u32, extra: Vec<(String, Value)>| Tiny {
+        layers: 3,
+        sliding_window: 4,
+        sliding_window_type: pattern,
+        extra,
+        ..Tiny::new("gemma3")
+    };
+    let old = spec(3, vec![(key("rope.local_freq_base"), Value::F32(2e4))]);
+    let new = spec(
+        0,
+        vec![
+            (key("attention.sliding_window_pattern"), Value::U32(3)),
+            (key("rope.freq_base_swa"), Value::F32(2e4)),
+        ],
+    );
+    let flags = spec(
+        0,
+        vec![
+            (
+                key("attention.sliding_window_pattern"),
+                Value::Array(vec![
+                    Value::Bool(true),
+                    Value::Bool(true),
+                    Value::Bool(false),
+                ]),
+            ),
+            (key("rope.freq_base_swa"), Value::F32(2e4)),
+        ],
+    );
+    let both = spec(
+        1,
+        vec![
+            (key("attention.sliding_window_pattern"), Value::U32(3)),
+            (key("rope.freq_base_swa"), Value::F32(2e4)),
+            (key("rope.local_freq_base"), Value::F32(5e3)),
+        ],
+    );
+    let neither = spec(0, Vec::new());
+    let p = prompt(15, 9, VOCAB);
+    let run = |s: &Tiny| {
+        let dec = load(&s.write(dir.path()), fast_numerics("gemma3"), None);
+        let c = dec.config();
+        let blocks = (c.local_layers.clone(), c.rope_base_local);
+        (
+            blocks,
+            dec.forward_last(&mut dec.new_cache(), &p).expect("forward"),
+        )
+    };
+    let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+    let (want, logits) = run(&old);
+    assert_eq!(want, (vec![0, 1], 2e4));
+    for s in [&new, &flags, &both] {
+        let (got, l) = run(s);
+        assert_eq!(got, want, "{:?}", s.extra);
+        assert_eq!(bits(&l), bits(&logits), "{:?}", s.extra);
+    }
+    let (defaults, l) = run(&neither);
+    assert_eq!(defaults, (vec![0, 1, 2], 1e4));
+    assert!(max_abs_diff(&l, &logits) > 1e-4);
+}
+
+/// `model info` facts come from the family table: a supported family says what sets
+/// its blocks apart, an unknown one is reported as unsupported, without a layout.
+#[test]
+fn model_info_reports_the_family_from_the_table() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    for (arch, layout) in [
+        ("phi3", Some("fused qkv and gate-up tensors")),
+        ("qwen3", Some("per-head q/k RMS norm, RoPE on head halves")),
+        ("mamba", None),
+    ] {
+        let gguf = GgufFile::open(&Tiny::new(arch).write(dir.path())).expect("open");
+        let info = ModelInfo::from_file(&gguf).expect("info");
+        assert_eq!(info.supported, layout.is_some(), "{arch}");
+        assert_eq!(info.layout.as_deref(), layout, "{arch}");
     }
 }
 
@@ -374,7 +495,7 @@ fn fork_vs_recompute(dec: &Decoder, prefix: &[u32], suffixes: &[Vec<u32>]) -> (f
 #[test]
 fn tiny_forked_prefix_equals_full_recompute() {
     let dir = tempfile::tempdir().expect("tempdir");
-    for arch in ["llama", "qwen2", "gemma3"] {
+    for arch in ["llama", "qwen2", "gemma3", "qwen3", "phi3"] {
         let path = Tiny::new(arch).write(dir.path());
         let suffixes = [prompt(7, 5, VOCAB), vec![3]];
         let dec = load(&path, reference_numerics(arch), None);

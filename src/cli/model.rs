@@ -173,6 +173,9 @@ fn info_text(i: &ModelInfo) -> String {
             }
         ),
     );
+    if let Some(l) = &i.layout {
+        line("block layout", l.clone());
+    }
     line(
         "parameters",
         format!("{} ({:.2} B)", i.parameters, i.parameters as f64 / 1e9),

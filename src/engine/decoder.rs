@@ -1,7 +1,9 @@
-//! Transformer decoder of the judge model (Qwen2, Llama, Gemma 3). Input: an opened
-//! GGUF file and token ids. Output: next-token logits, with a key/value cache that can
-//! be forked to share a prompt prefix between continuations. Never truncates a prompt
-//! silently (overflow is an error) and never reads anything but the GGUF file.
+//! Transformer decoder shared by every model family. Input: an opened GGUF file, the
+//! block description its family file makes of it (`arch`), and token ids. Output:
+//! next-token logits, with a key/value cache that can be forked to share a prompt
+//! prefix between continuations. Never asks which family a model belongs to (that is
+//! data in the description), never truncates a prompt silently (overflow is an error)
+//! and never reads anything but the GGUF file.
 //!
 //! Threads: candle's CPU kernels size their worker pools from `RAYON_NUM_THREADS` /
 //! `CANDLE_NUM_THREADS` the first time a kernel runs. `Decoder::load` sets both to
@@ -11,17 +13,20 @@
 
 use std::sync::OnceLock;
 
+use super::arch::{self, Block, Part, Plan};
+use super::attention::{attend_block, AttnShape};
 use super::gguf::GgufFile;
-use super::linear::{
-    activate, add_bias, add_into, attention, rms_norm, rope, rope_freqs, AttnShape, Embedding,
-    Linear, Loader, MatmulPolicy,
-};
+use super::linear::{Embedding, Linear, Loader, MatmulPolicy};
+use super::ops::{activate, add_bias, add_into, rms_norm, rope, rope_freqs, scale_rope_freqs};
 use super::EngineError;
+
+pub use super::attention::KvCache;
+pub use super::ops::{Activation, RopePairs};
 
 /// Shape and numerics of a loaded decoder, read from the GGUF metadata.
 #[derive(Debug, Clone)]
 pub struct DecoderConfig {
-    /// `general.architecture`: `qwen2`, `llama` or `gemma3`.
+    /// `general.architecture` (a name in `arch::FAMILIES`).
     pub arch: String,
     /// Transformer blocks.
     pub layers: usize,
@@ -47,8 +52,8 @@ pub struct DecoderConfig {
     pub rope_base: f32,
     /// RoPE base of sliding-window layers (Gemma 3; equals `rope_base` elsewhere).
     pub rope_base_local: f32,
-    /// RoPE pairs adjacent dimensions (Llama) instead of the two halves (Qwen2, Gemma 3).
-    pub rope_interleaved: bool,
+    /// Which dimensions of a head RoPE rotates together.
+    pub rope_pairs: RopePairs,
     /// Linear RoPE scaling (position interpolation, Chen et al. 2023): positions are
     /// multiplied by `1 / factor` (`rope.scaling.type = linear`); 1 when unscaled. Gemma 3
     /// applies it to its global layers only, as llama.cpp does.
@@ -58,31 +63,20 @@ pub struct DecoderConfig {
     pub rope_freq_factors: Option<Vec<f32>>,
     /// Sliding-window width of local layers (Gemma 3), in tokens including the current.
     pub sliding_window: Option<usize>,
-    /// Every `sliding_pattern`-th layer is global; the others use the window.
-    pub sliding_pattern: usize,
+    /// Blocks (from 0) that attend through the sliding window.
+    pub local_layers: Vec<usize>,
     /// Multiplier of query-key dot products.
     pub attn_scale: f32,
     /// Multiplier of token embeddings (Gemma 3: sqrt(hidden)).
     pub embed_scale: Option<f32>,
     /// Gated feed-forward activation.
     pub activation: Activation,
-    /// Gemma 3 layout: q/k norms and post-attention / post-feed-forward norms.
-    pub gemma_norms: bool,
     /// Output projection shares the embedding table.
     pub tied_output: bool,
     /// Worker threads in effect for candle's kernels.
     pub threads: usize,
     /// Matrix-multiply policy in use.
     pub matmul: MatmulPolicy,
-}
-
-/// Activation of the gated feed-forward block.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Activation {
-    /// x·sigmoid(x) (Qwen2, Llama).
-    Silu,
-    /// GELU, tanh approximation (Gemma 3; Hendrycks & Gimpel 2016).
-    GeluTanh,
 }
 
 /// How to load a model.
@@ -121,8 +115,7 @@ struct Layer {
     bq: Option<Vec<f32>>,
     bk: Option<Vec<f32>>,
     bv: Option<Vec<f32>>,
-    q_norm: Option<Vec<f32>>,
-    k_norm: Option<Vec<f32>>,
+    qk_norm: Option<[Vec<f32>; 2]>,
     post_attn_norm: Option<Vec<f32>>,
     ffn_norm: Vec<f32>,
     gate: Linear,
@@ -144,40 +137,6 @@ pub struct Decoder {
     output: Linear,
 }
 
-/// Keys and values of the tokens seen so far; cloning forks it. One buffer per layer and
-/// key/value head (index `layer * kv_heads + head`), so the rows one head attends to
-/// lie back to back in memory.
-#[derive(Clone, Debug)]
-pub struct KvCache {
-    k: Vec<Vec<f32>>,
-    v: Vec<Vec<f32>>,
-    len: usize,
-    kv_heads: usize,
-    head_dim: usize,
-}
-
-impl KvCache {
-    /// Tokens held.
-    pub fn len(&self) -> usize {
-        self.len
-    }
-
-    /// Whether no token is held.
-    pub fn is_empty(&self) -> bool {
-        self.len == 0
-    }
-
-    /// Forget every token from position `len` on (no-op when `len >= self.len()`).
-    pub fn truncate(&mut self, len: usize) {
-        if len < self.len {
-            for buf in self.k.iter_mut().chain(self.v.iter_mut()) {
-                buf.truncate(len * self.head_dim);
-            }
-            self.len = len;
-        }
-    }
-}
-
 static THREADS: OnceLock<usize> = OnceLock::new();
 
 /// Fix candle's pool sizes before its first kernel runs; later calls keep the first.
@@ -192,15 +151,6 @@ fn configure_threads(threads: usize) -> usize {
     })
 }
 
-fn metadata_u(g: &GgufFile, arch: &str, key: &str) -> Result<usize, EngineError> {
-    Ok(g.uint(&format!("{arch}.{key}"))? as usize)
-}
-
-fn metadata_f(g: &GgufFile, arch: &str, key: &str, default: f32) -> f32 {
-    g.float(&format!("{arch}.{key}"))
-        .map_or(default, |v| v as f32)
-}
-
 impl Decoder {
     /// Load `gguf` with the fast kernels.
     pub fn load(gguf: &GgufFile, opts: &LoadOptions) -> Result<Self, EngineError> {
@@ -213,101 +163,63 @@ impl Decoder {
         opts: &LoadOptions,
         numerics: Numerics,
     ) -> Result<Self, EngineError> {
-        let arch = gguf.require_supported()?;
+        let plan = arch::plan(gguf)?;
         let threads = configure_threads(opts.threads);
-        let a = arch.as_str();
-        let gemma = a == "gemma3";
-        let hidden = metadata_u(gguf, a, "embedding_length")?;
-        let heads = metadata_u(gguf, a, "attention.head_count")?;
-        let kv_heads = metadata_u(gguf, a, "attention.head_count_kv")?;
-        let head_dim = match metadata_u(gguf, a, "attention.key_length") {
-            Ok(d) => d,
-            Err(_) if !gemma => hidden / heads.max(1),
-            Err(e) => return Err(e),
-        };
-        if heads == 0 || kv_heads == 0 || heads % kv_heads != 0 || head_dim % 2 != 0 {
-            return Err(EngineError::Metadata {
-                path: gguf.path.clone(),
-                key: format!("{a}.attention.head_count_kv"),
-                expected: "head counts where query heads are a multiple of key/value heads".into(),
-            });
-        }
-        let context_length = metadata_u(gguf, a, "context_length")?;
+        let (d, rope) = (plan.dims, &plan.rope);
         let context_limit = opts
             .context_cap
-            .map_or(context_length, |c| c.min(context_length));
-        let rope_base = metadata_f(gguf, a, "rope.freq_base", if gemma { 1e6 } else { 1e4 });
-        // Gemma 3 local layers: 10000 unless the file says otherwise, as llama.cpp and
-        // candle-transformers' quantized_gemma3 do.
-        let rope_base_local = if gemma {
-            metadata_f(gguf, a, "rope.local_freq_base", 1e4)
-        } else {
-            rope_base
-        };
-        let rope_position_scale = rope_scaling(gguf, a)?;
-        let sliding_window = if gemma {
-            Some(metadata_u(gguf, a, "attention.sliding_window")?)
-        } else {
-            None
-        };
-        let sliding_pattern = metadata_u(gguf, a, "attention.sliding_window_type").unwrap_or(6);
-        let activation = numerics.activation.unwrap_or(if gemma {
-            Activation::GeluTanh
-        } else {
-            Activation::Silu
-        });
+            .map_or(d.context_length, |c| c.min(d.context_length));
+        let activation = numerics.activation.unwrap_or(plan.activation);
 
         let mut loader = Loader::open(gguf)?;
-        let rope_freq_factors = loader.optional("rope_freqs.weight", head_dim / 2)?;
-        let token_embd = loader.qtensor("token_embd.weight")?;
-        let tied_output = !gguf.content.tensor_infos.contains_key("output.weight");
+        let rope_freq_factors = loader.optional(&rope.factors, d.head_dim / 2)?;
+        let token_embd = loader.qtensor(&plan.embed)?;
+        let tied_output = !loader.has(&plan.output);
         let out_q = if tied_output {
             token_embd.clone()
         } else {
-            loader.qtensor("output.weight")?
+            loader.qtensor(&plan.output)?
         };
         // The output projection runs on one row per prompt and may share the embedding
         // table, so it is never held twice: when its tiles replace the table, the
         // embedding reads its rows from them.
-        let output = Linear::output(out_q, numerics.matmul).map_err(loader.err("output.weight"))?;
+        let output = Linear::output(out_q, numerics.matmul).map_err(loader.err(&plan.output))?;
         let embed = match output.packed() {
             Some(tiles) if tied_output => Embedding::packed(tiles.clone()),
-            _ => Embedding::new(token_embd).map_err(loader.err("token_embd.weight"))?,
+            _ => Embedding::new(token_embd).map_err(loader.err(&plan.embed))?,
         };
-        let vocab = output.n;
-        let ffn = metadata_u(gguf, a, "feed_forward_length")?;
         let cfg = DecoderConfig {
-            arch: arch.clone(),
-            layers: metadata_u(gguf, a, "block_count")?,
-            hidden,
-            heads,
-            kv_heads,
-            head_dim,
-            vocab,
-            context_length,
+            arch: gguf.arch()?,
+            layers: d.layers,
+            hidden: d.hidden,
+            heads: d.heads,
+            kv_heads: d.kv_heads,
+            head_dim: d.head_dim,
+            vocab: output.n,
+            context_length: d.context_length,
             context_limit,
-            ffn,
-            rms_eps: gguf.float(&format!("{a}.attention.layer_norm_rms_epsilon"))? as f32,
-            rope_base,
-            rope_base_local,
-            rope_interleaved: a == "llama",
-            rope_position_scale,
+            ffn: d.ffn,
+            rms_eps: d.rms_eps,
+            rope_base: rope.base,
+            rope_base_local: rope.base_local,
+            rope_pairs: rope.pairs,
+            rope_position_scale: rope.position_scale,
             rope_freq_factors,
-            sliding_window,
-            sliding_pattern: sliding_pattern.max(1),
-            attn_scale: 1.0 / (head_dim as f32).sqrt(),
-            embed_scale: gemma.then(|| (hidden as f32).sqrt()),
+            sliding_window: plan.sliding_window,
+            local_layers: (0..d.layers).filter(|&i| plan.blocks[i].local).collect(),
+            attn_scale: 1.0 / (d.head_dim as f32).sqrt(),
+            embed_scale: plan.embed_scale,
             activation,
-            gemma_norms: gemma,
             tied_output,
             threads,
             matmul: numerics.matmul,
         };
-        let mut layers = Vec::with_capacity(cfg.layers);
-        for i in 0..cfg.layers {
-            layers.push(read_layer(&mut loader, &cfg, i, numerics.matmul)?);
-        }
-        let out_norm = loader.vector("output_norm.weight", hidden)?;
+        let layers = plan
+            .blocks
+            .iter()
+            .map(|b| read_layer(&mut loader, &cfg, b, numerics.matmul))
+            .collect::<Result<Vec<_>, _>>()?;
+        let out_norm = loader.vector(&plan.output_norm, d.hidden)?;
         let decoder = Decoder {
             cfg,
             embed,
@@ -315,18 +227,18 @@ impl Decoder {
             out_norm,
             output,
         };
-        decoder.check_shapes(gguf)?;
+        decoder.check_shapes(gguf, &plan)?;
         // Candle packs weights for its int8 kernels on first use; do it now so load
         // time includes it and the first prompt is not slowed.
         // Four rows also pack the Q6_K weights, which candle packs only for several rows.
-        let warm_len = 4.min(context_limit);
+        let warm_len = 4.min(decoder.cfg.context_limit);
         if warm_len > 0 {
             decoder.forward_last(&mut decoder.new_cache(), &[0; 4][..warm_len])?;
         }
         Ok(decoder)
     }
 
-    fn check_shapes(&self, gguf: &GgufFile) -> Result<(), EngineError> {
+    fn check_shapes(&self, gguf: &GgufFile, plan: &Plan) -> Result<(), EngineError> {
         let c = &self.cfg;
         let bad = |tensor: &str, reason: String| EngineError::Tensor {
             path: gguf.path.clone(),
@@ -334,25 +246,26 @@ impl Decoder {
             reason,
         };
         if self.embed.hidden != c.hidden || self.output.k != c.hidden {
-            return Err(bad(
-                "token_embd.weight",
-                format!("width is not {}", c.hidden),
-            ));
+            return Err(bad(&plan.embed, format!("width is not {}", c.hidden)));
         }
-        for (i, l) in self.layers.iter().enumerate() {
+        for (l, b) in self.layers.iter().zip(&plan.blocks) {
             let want = [
-                ("attn_q", &l.wq, c.heads * c.head_dim, c.hidden),
-                ("attn_k", &l.wk, c.kv_heads * c.head_dim, c.hidden),
-                ("attn_v", &l.wv, c.kv_heads * c.head_dim, c.hidden),
-                ("attn_output", &l.wo, c.hidden, c.heads * c.head_dim),
-                ("ffn_gate", &l.gate, c.ffn, c.hidden),
-                ("ffn_up", &l.up, c.ffn, c.hidden),
-                ("ffn_down", &l.down, c.hidden, c.ffn),
+                (&b.q, &l.wq, c.heads * c.head_dim, c.hidden),
+                (&b.k, &l.wk, c.kv_heads * c.head_dim, c.hidden),
+                (&b.v, &l.wv, c.kv_heads * c.head_dim, c.hidden),
+                (&b.o, &l.wo, c.hidden, c.heads * c.head_dim),
+                (&b.gate, &l.gate, c.ffn, c.hidden),
+                (&b.up, &l.up, c.ffn, c.hidden),
+                (&b.down, &l.down, c.hidden, c.ffn),
             ];
-            for (name, w, n, k) in want {
+            for (part, w, n, k) in want {
                 if w.n != n || w.k != k {
-                    let reason = format!("shape {}x{}, expected {n}x{k}", w.n, w.k);
-                    return Err(bad(&format!("blk.{i}.{name}.weight"), reason));
+                    let rows = part
+                        .rows
+                        .as_ref()
+                        .map_or(String::new(), |r| format!(" (rows {r:?})"));
+                    let reason = format!("shape {}x{}{rows}, expected {n}x{k}", w.n, w.k);
+                    return Err(bad(&part.tensor, reason));
                 }
             }
         }
@@ -366,14 +279,7 @@ impl Decoder {
 
     /// An empty cache for this model.
     pub fn new_cache(&self) -> KvCache {
-        let bufs = self.cfg.layers * self.cfg.kv_heads;
-        KvCache {
-            k: vec![Vec::new(); bufs],
-            v: vec![Vec::new(); bufs],
-            len: 0,
-            kv_heads: self.cfg.kv_heads,
-            head_dim: self.cfg.head_dim,
-        }
+        KvCache::new(self.cfg.layers, self.cfg.kv_heads, self.cfg.head_dim)
     }
 
     /// Approximate bytes of weights held in memory (all kernel copies).
@@ -427,15 +333,13 @@ impl Decoder {
         if tokens.is_empty() {
             return Err(EngineError::Invalid("no tokens to run".into()));
         }
-        if cache.k.len() != self.cfg.layers * self.cfg.kv_heads
-            || cache.kv_heads != self.cfg.kv_heads
-            || cache.head_dim != self.cfg.head_dim
-        {
+        let c = &self.cfg;
+        if !cache.fits(c.layers, c.kv_heads, c.head_dim) {
             return Err(EngineError::Invalid(
                 "key/value cache belongs to another model".into(),
             ));
         }
-        let total = cache.len + tokens.len();
+        let total = cache.len() + tokens.len();
         if total > self.cfg.context_limit {
             return Err(EngineError::ContextOverflow {
                 item: "prompt".into(),
@@ -443,7 +347,7 @@ impl Decoder {
                 limit: self.cfg.context_limit,
             });
         }
-        let start = cache.len;
+        let start = cache.len();
         // Long prompts run in chunks: activation buffers stay bounded by the chunk
         // while the key/value cache grows. On the tile kernels every row's result is
         // independent of the other rows of its call (products and attention alike), so
@@ -474,112 +378,58 @@ impl Decoder {
 /// Tokens per forward pass of a long prompt (see `forward_rows`).
 const PROMPT_CHUNK: usize = 512;
 
-/// Position multiplier of `{arch}.rope.scaling.*`: 1 without scaling, `1 / factor` for
-/// linear scaling. YaRN and other kinds change attention in ways this decoder does not
-/// implement, so such files are refused rather than run with wrong positions.
-fn rope_scaling(g: &GgufFile, arch: &str) -> Result<f32, EngineError> {
-    let kind = g.string(&format!("{arch}.rope.scaling.type")).ok();
-    let factor = g
-        .float(&format!("{arch}.rope.scaling.factor"))
-        .ok()
-        .map(|f| f as f32);
-    // llama.cpp's older key for the same linear factor.
-    let legacy = g
-        .float(&format!("{arch}.rope.scale_linear"))
-        .ok()
-        .map(|f| f as f32);
-    let bad = |key: &str, expected: &str| EngineError::Metadata {
-        path: g.path.clone(),
-        key: format!("{arch}.{key}"),
-        expected: expected.into(),
-    };
-    match (kind.as_deref(), factor, legacy) {
-        (Some("none"), _, _) | (None, _, None) => Ok(1.0),
-        (Some("linear"), Some(f), _) | (None, _, Some(f)) if f > 0.0 => Ok(1.0 / f),
-        (Some("linear"), _, _) => Err(bad(
-            "rope.scaling.factor",
-            "a positive factor for linear scaling",
-        )),
-        (Some(other), _, _) => Err(EngineError::UnsupportedFeature {
-            path: g.path.clone(),
-            key: format!("{arch}.rope.scaling.type"),
-            found: other.into(),
-            supported: "none, linear".into(),
-        }),
-        (None, _, Some(_)) => Err(bad("rope.scale_linear", "a positive factor")),
-    }
-}
-
-/// Apply linear position scaling and per-frequency divisors to `freqs` in place, the way
-/// llama.cpp's `ggml_rope_ext` forms its angles: `pos · scale · freq_i / factor_i`.
-pub(crate) fn scale_rope_freqs(freqs: &mut [f32], scale: f32, factors: Option<&[f32]>) {
-    for (i, f) in freqs.iter_mut().enumerate() {
-        if scale != 1.0 {
-            *f *= scale;
-        }
-        if let Some(div) = factors.and_then(|d| d.get(i)) {
-            *f /= div;
-        }
-    }
-}
-
-/// Read block `i`: its weights with the kernels `policy` picks, norms and biases.
+/// Read one block: its weights with the kernels `policy` picks, norms and biases.
 fn read_layer(
     ld: &mut Loader,
     c: &DecoderConfig,
-    i: usize,
+    b: &Block,
     policy: MatmulPolicy,
 ) -> Result<Layer, EngineError> {
-    let p = |s: &str| format!("blk.{i}.{s}");
     let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
-    let gemma = c.gemma_norms;
-    // Gemma 3: every `sliding_pattern`-th layer (1-based) attends globally.
-    let local = c.sliding_window.is_some() && !(i + 1).is_multiple_of(c.sliding_pattern);
+    let mut weight = |p: &Part| match &p.rows {
+        None => ld.linear(&p.tensor, policy),
+        Some(rows) => ld.linear_rows(&p.tensor, rows, policy),
+    };
+    let [wq, wk, wv, wo, gate, up, down] =
+        [&b.q, &b.k, &b.v, &b.o, &b.gate, &b.up, &b.down].map(&mut weight);
+    let mut norm =
+        |name: &Option<String>, len| name.as_ref().map(|n| ld.vector(n, len)).transpose();
+    let post_attn_norm = norm(&b.post_attn_norm, c.hidden)?;
+    let post_ffn_norm = norm(&b.post_ffn_norm, c.hidden)?;
+    let qk_norm = match &b.qk_norm {
+        Some([q, k]) => Some([ld.vector(q, c.head_dim)?, ld.vector(k, c.head_dim)?]),
+        None => None,
+    };
+    let [bq, bk, bv] = &b.qkv_bias;
+    let rope_freqs = if b.local {
+        rope_freqs(c.head_dim, c.rope_base_local)
+    } else {
+        let mut f = rope_freqs(c.head_dim, c.rope_base);
+        scale_rope_freqs(
+            &mut f,
+            c.rope_position_scale,
+            c.rope_freq_factors.as_deref(),
+        );
+        f
+    };
     Ok(Layer {
-        attn_norm: ld.vector(&p("attn_norm.weight"), c.hidden)?,
-        wq: ld.linear(&p("attn_q.weight"), policy)?,
-        wk: ld.linear(&p("attn_k.weight"), policy)?,
-        wv: ld.linear(&p("attn_v.weight"), policy)?,
-        wo: ld.linear(&p("attn_output.weight"), policy)?,
-        bq: ld.optional(&p("attn_q.bias"), q_dim)?,
-        bk: ld.optional(&p("attn_k.bias"), kv_dim)?,
-        bv: ld.optional(&p("attn_v.bias"), kv_dim)?,
-        q_norm: if gemma {
-            Some(ld.vector(&p("attn_q_norm.weight"), c.head_dim)?)
-        } else {
-            None
-        },
-        k_norm: if gemma {
-            Some(ld.vector(&p("attn_k_norm.weight"), c.head_dim)?)
-        } else {
-            None
-        },
-        post_attn_norm: if gemma {
-            Some(ld.vector(&p("post_attention_norm.weight"), c.hidden)?)
-        } else {
-            None
-        },
-        ffn_norm: ld.vector(&p("ffn_norm.weight"), c.hidden)?,
-        gate: ld.linear(&p("ffn_gate.weight"), policy)?,
-        up: ld.linear(&p("ffn_up.weight"), policy)?,
-        down: ld.linear(&p("ffn_down.weight"), policy)?,
-        post_ffn_norm: if gemma {
-            Some(ld.vector(&p("post_ffw_norm.weight"), c.hidden)?)
-        } else {
-            None
-        },
-        window: if local { c.sliding_window } else { None },
-        rope_freqs: if local {
-            rope_freqs(c.head_dim, c.rope_base_local)
-        } else {
-            let mut f = rope_freqs(c.head_dim, c.rope_base);
-            scale_rope_freqs(
-                &mut f,
-                c.rope_position_scale,
-                c.rope_freq_factors.as_deref(),
-            );
-            f
-        },
+        attn_norm: ld.vector(&b.attn_norm, c.hidden)?,
+        wq: wq?,
+        wk: wk?,
+        wv: wv?,
+        wo: wo?,
+        bq: ld.optional(bq, q_dim)?,
+        bk: ld.optional(bk, kv_dim)?,
+        bv: ld.optional(bv, kv_dim)?,
+        qk_norm,
+        post_attn_norm,
+        ffn_norm: ld.vector(&b.ffn_norm, c.hidden)?,
+        gate: gate?,
+        up: up?,
+        down: down?,
+        post_ffn_norm,
+        window: if b.local { c.sliding_window } else { None },
+        rope_freqs,
     })
 }
 
@@ -613,7 +463,7 @@ impl Decoder {
         from: usize,
     ) -> Result<Vec<Vec<f32>>, EngineError> {
         let c = &self.cfg;
-        let (m, pos0, eps) = (tokens.len(), cache.len, c.rms_eps);
+        let (m, pos0, eps) = (tokens.len(), cache.len(), c.rms_eps);
         let shape = AttnShape {
             heads: c.heads,
             kv_heads: c.kv_heads,
@@ -630,34 +480,15 @@ impl Decoder {
             add_bias(&mut q, l.bq.as_deref());
             add_bias(&mut k, l.bk.as_deref());
             add_bias(&mut v, l.bv.as_deref());
-            if let (Some(qn), Some(kn)) = (&l.q_norm, &l.k_norm) {
+            if let Some([qn, kn]) = &l.qk_norm {
                 q = rms_norm(&q, qn, eps);
                 k = rms_norm(&k, kn, eps);
             }
             let freqs = &l.rope_freqs;
             let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
-            rope(&mut q, q_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
-            rope(&mut k, kv_dim, c.head_dim, pos0, freqs, c.rope_interleaved);
-            let heads = li * c.kv_heads..(li + 1) * c.kv_heads;
-            for (rk, rv) in k.chunks_exact(kv_dim).zip(v.chunks_exact(kv_dim)) {
-                for (g, (hk, hv)) in rk
-                    .chunks_exact(c.head_dim)
-                    .zip(rv.chunks_exact(c.head_dim))
-                    .enumerate()
-                {
-                    cache.k[heads.start + g].extend_from_slice(hk);
-                    cache.v[heads.start + g].extend_from_slice(hv);
-                }
-            }
-            let att = attention(
-                &q,
-                &cache.k[heads.clone()],
-                &cache.v[heads],
-                &shape,
-                pos0,
-                m,
-                l.window,
-            );
+            rope(&mut q, q_dim, c.head_dim, pos0, freqs, c.rope_pairs);
+            rope(&mut k, kv_dim, c.head_dim, pos0, freqs, c.rope_pairs);
+            let att = attend_block(cache, li, [&q, &k, &v], &shape, m, l.window);
             let mut o = l.wo.forward(&att, m)?;
             if let Some(w) = &l.post_attn_norm {
                 o = rms_norm(&o, w, eps);
@@ -675,51 +506,12 @@ impl Decoder {
             }
             add_into(&mut x, &d);
         }
-        cache.len += m;
+        cache.advance(m);
         if from >= m {
             return Ok(Vec::new());
         }
         let last = rms_norm(&x[from * c.hidden..], &self.out_norm, eps);
         let logits = self.output.forward(&last, m - from)?;
         Ok(logits.chunks(c.vocab).map(<[f32]>::to_vec).collect())
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    /// Position interpolation (Chen et al. 2023): with linear scaling factor `f`, the
-    /// token at position `p` is rotated as an unscaled one at position `p / f`. Folding
-    /// the factor into the frequencies must give that rotation, for factors above and
-    /// below 1 and both pair layouts.
-    #[test]
-    fn scaled_frequencies_rotate_like_interpolated_positions() {
-        let d = 64;
-        let x: Vec<f32> = (0..2 * d)
-            .map(|i| ((i * 37 % 11) as f32 - 5.0) / 7.0)
-            .collect();
-        for (factor, p) in [(2.0f32, 6usize), (4.0, 12), (0.5, 3)] {
-            for interleaved in [false, true] {
-                let base = rope_freqs(d, 10_000.0);
-                let mut scaled = base.clone();
-                scale_rope_freqs(&mut scaled, 1.0 / factor, None);
-                let (mut a, mut b) = (x.clone(), x.clone());
-                rope(&mut a, 2 * d, d, p, &scaled, interleaved);
-                let q = (p as f32 / factor) as usize;
-                rope(&mut b, 2 * d, d, q, &base, interleaved);
-                for (u, v) in a.iter().zip(&b) {
-                    assert!((u - v).abs() < 1e-5, "factor {factor}: {u} vs {v}");
-                }
-            }
-        }
-    }
-
-    /// llama.cpp's per-frequency divisors (`rope_freqs.weight`) divide each speed.
-    #[test]
-    fn frequency_divisors_divide_each_speed() {
-        let mut f = vec![1.0, 0.5, 0.25];
-        scale_rope_freqs(&mut f, 1.0, Some(&[1.0, 2.0, 8.0]));
-        assert_eq!(f, vec![1.0, 0.25, 0.031_25]);
     }
 }

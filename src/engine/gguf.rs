@@ -14,9 +14,6 @@ use sha2::{Digest, Sha256};
 
 use super::EngineError;
 
-/// Architectures the decoder implements, as named in `general.architecture`.
-pub const SUPPORTED_ARCHS: &[&str] = &["qwen2", "llama", "gemma3"];
-
 /// A GGUF file whose header has been read and whose tensor table fits the file.
 #[derive(Debug)]
 pub struct GgufFile {
@@ -153,18 +150,9 @@ impl GgufFile {
         }
     }
 
-    /// Fail unless the architecture is one the decoder implements.
+    /// Fail unless the architecture is a family the decoder runs (`arch::FAMILIES`).
     pub fn require_supported(&self) -> Result<String, EngineError> {
-        let arch = self.arch()?;
-        if SUPPORTED_ARCHS.contains(&arch.as_str()) {
-            Ok(arch)
-        } else {
-            Err(EngineError::UnsupportedArch {
-                path: self.path.clone(),
-                arch,
-                supported: SUPPORTED_ARCHS.join(", "),
-            })
-        }
+        super::arch::family_of(self).map(|f| f.name.to_string())
     }
 }
 
@@ -179,6 +167,8 @@ pub struct ModelInfo {
     pub architecture: String,
     /// Whether assize's decoder runs this architecture.
     pub supported: bool,
+    /// What sets the family's blocks apart (`arch::Family::layout`), when supported.
+    pub layout: Option<String>,
     /// Total number of weights over all tensors.
     pub parameters: u64,
     /// Transformer blocks (`{arch}.block_count`).
@@ -215,6 +205,7 @@ impl ModelInfo {
     /// Summarise an opened file; `sha256` is computed by streaming the whole file.
     pub fn from_file(gguf: &GgufFile) -> Result<Self, EngineError> {
         let arch = gguf.arch()?;
+        let family = super::arch::find(&arch);
         let opt = |suffix: &str| gguf.arch_uint(suffix).ok();
         let mut tensor_types = BTreeMap::new();
         let mut parameters = 0u64;
@@ -227,7 +218,8 @@ impl ModelInfo {
         Ok(ModelInfo {
             path: gguf.path.display().to_string(),
             name: gguf.string("general.name").ok(),
-            supported: SUPPORTED_ARCHS.contains(&arch.as_str()),
+            supported: family.is_some(),
+            layout: family.map(|f| f.layout.to_string()),
             architecture: arch,
             parameters,
             layers: opt("block_count"),

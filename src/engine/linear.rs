@@ -1,9 +1,8 @@
-//! Weights and kernels of the decoder: reading tensors from the GGUF file, the
-//! matrix-multiply path chosen per tensor at load, embedding rows dequantised on
-//! demand, and the row-wise kernels (RMS norm, RoPE, attention, activations). Input:
-//! weight tensors and f32 activation rows. Output: f32 rows. Never changes numerics
-//! between two calls with the same input and thread count, and never holds more than
-//! two copies of one weight.
+//! Weights of the decoder: reading tensors from the GGUF file (whole, or a row range of
+//! a fused tensor), the matrix-multiply kernel chosen per weight at load, embedding rows
+//! dequantised on demand. Input: weight tensors and f32 activation rows. Output: f32
+//! rows. Never changes numerics between two calls with the same input and thread count,
+//! and never holds more than two copies of one weight.
 //!
 //! Why several paths: on processors with AVX-512 VNNI, Q4_K, Q6_K, Q8_0, Q5_0 and Q4_0
 //! weights are repacked once into this crate's int8 tiles (`kernels`), which serve
@@ -21,7 +20,6 @@ use std::sync::Arc;
 use candle_core::quantized::{GgmlDType, QMatMul, QStorage, QTensor};
 use candle_core::{DType, Device, Module, Tensor};
 
-use super::decoder::Activation;
 use super::gguf::GgufFile;
 use super::kernels::{self, Packed};
 use super::EngineError;
@@ -42,23 +40,30 @@ const DENSE_MIN_ROWS: usize = 4;
 
 /// One weight matrix `n × k` (GGUF stores it as out-features by in-features).
 pub struct Linear {
-    /// This crate's int8 tiles; when set they serve every row count. Shared with the
-    /// token embedding when the output projection is tied to it.
-    packed: Option<Arc<Packed>>,
-    /// Quantised kernel; serves every row count unless `dense` or `packed` is set.
-    quant: Option<QMatMul>,
-    /// Dequantised f16 copy for prompts of `DENSE_MIN_ROWS` rows or more; only for
-    /// weight types that can be neither packed nor requantised exactly.
-    dense: Option<Tensor>,
-    /// Inner width the quantised kernel expects (`k` zero-padded to a multiple of 256
-    /// for requantised weights).
-    k_pad: usize,
-    /// Rows go through the AVX-512 VNNI Q8_0 kernel of this module.
-    vnni: bool,
+    kernel: Kernel,
     /// Output features.
     pub n: usize,
     /// Input features.
     pub k: usize,
+}
+
+/// The kernel that multiplies one weight, chosen once at load.
+enum Kernel {
+    /// This crate's int8 tiles, for every row count. Shared with the token embedding
+    /// when the output projection is tied to it.
+    Tiles(Arc<Packed>),
+    /// candle's product for every row count: its repacked int8 kernel on a quantised
+    /// weight, or f32 on a dequantised one. Rows are zero-padded to `k_pad` (a Q4_0 /
+    /// Q5_0 weight requantised as Q8_0 with rows padded to a multiple of 256).
+    Candle { q: QMatMul, k_pad: usize },
+    /// candle's quantised row-by-row product for fewer than `DENSE_MIN_ROWS` rows, a
+    /// dequantised f16 copy for prompts: weight types that can be neither packed nor
+    /// requantised exactly.
+    CandleDense { q: QMatMul, dense: Tensor },
+    /// The AVX-512 VNNI Q8_0 row kernel of this module (an output projection whose
+    /// width candle cannot pack).
+    #[cfg(target_arch = "x86_64")]
+    Q8Vnni(Arc<QTensor>),
 }
 
 /// Whether candle's repacked int8 kernel takes this weight for several rows.
@@ -120,49 +125,36 @@ impl Linear {
         if kernels::enabled() {
             if let Some(p) = Packed::new(&qt)? {
                 // The file's copy of the weight is dropped with `qt`.
-                return Ok(Linear {
-                    packed: Some(Arc::new(p)),
-                    quant: None,
-                    dense: None,
-                    k_pad: k,
-                    vnni: false,
-                    n,
-                    k,
-                });
+                return Ok(Self::from_packed(Arc::new(p)));
             }
         }
         if packed_kernel(dtype, n, k) {
-            return Ok(Self::quantised(QMatMul::QTensor(qt), n, k));
+            return Ok(Self::candle(QMatMul::QTensor(qt), n, k));
         }
         if matches!(dtype, GgmlDType::Q4_0 | GgmlDType::Q5_0 | GgmlDType::Q8_0) && n % 16 == 0 {
             let (q8, k_pad) = requantise_q8_0(&qt, n, k)?;
-            let quant = Some(QMatMul::QTensor(Arc::new(q8)));
+            let q = QMatMul::QTensor(Arc::new(q8));
             return Ok(Linear {
-                packed: None,
-                quant,
-                dense: None,
-                k_pad,
-                vnni: false,
+                kernel: Kernel::Candle { q, k_pad },
                 n,
                 k,
             });
         }
-        let dense = Some(qt.dequantize_f16(&Device::Cpu)?);
+        let dense = qt.dequantize_f16(&Device::Cpu)?;
+        let q = QMatMul::QTensor(qt);
         Ok(Linear {
-            dense,
-            ..Self::quantised(QMatMul::QTensor(qt), n, k)
+            kernel: Kernel::CandleDense { q, dense },
+            n,
+            k,
         })
     }
 
-    /// The enum variants are built directly, not through `QMatMul::from_arc`, so that
-    /// candle's `CANDLE_DEQUANTIZE_ALL` variables cannot change the kernels chosen here.
-    fn quantised(q: QMatMul, n: usize, k: usize) -> Self {
+    /// candle's product on `q` at width `k`. The enum variants of `QMatMul` are built
+    /// directly, not through `QMatMul::from_arc`, so that candle's
+    /// `CANDLE_DEQUANTIZE_ALL` variables cannot change the kernels chosen here.
+    fn candle(q: QMatMul, n: usize, k: usize) -> Self {
         Linear {
-            packed: None,
-            quant: Some(q),
-            dense: None,
-            k_pad: k,
-            vnni: false,
+            kernel: Kernel::Candle { q, k_pad: k },
             n,
             k,
         }
@@ -172,11 +164,8 @@ impl Linear {
     /// `MatmulPolicy::Reference`.
     fn dense_f32(qt: &QTensor) -> candle_core::Result<Self> {
         let (n, k) = qt.shape().dims2()?;
-        Ok(Self::quantised(
-            QMatMul::Tensor(qt.dequantize(&Device::Cpu)?),
-            n,
-            k,
-        ))
+        let w = qt.dequantize(&Device::Cpu)?;
+        Ok(Self::candle(QMatMul::Tensor(w), n, k))
     }
 
     /// Kernel for the output projection, which may share its table with the token
@@ -195,15 +184,17 @@ impl Linear {
             }
         }
         #[cfg(target_arch = "x86_64")]
-        let vnni = qt.dtype() == GgmlDType::Q8_0
+        if qt.dtype() == GgmlDType::Q8_0
             && !packed_kernel(qt.dtype(), n, k)
-            && q8_0_vnni::available();
-        #[cfg(not(target_arch = "x86_64"))]
-        let vnni = false;
-        Ok(Linear {
-            vnni,
-            ..Self::quantised(QMatMul::QTensor(qt), n, k)
-        })
+            && q8_0_vnni::available()
+        {
+            return Ok(Linear {
+                kernel: Kernel::Q8Vnni(qt),
+                n,
+                k,
+            });
+        }
+        Ok(Self::candle(QMatMul::QTensor(qt), n, k))
     }
 
     /// A weight already in this crate's tiles.
@@ -211,17 +202,16 @@ impl Linear {
         Linear {
             n: p.n,
             k: p.k,
-            k_pad: p.k,
-            packed: Some(p),
-            quant: None,
-            dense: None,
-            vnni: false,
+            kernel: Kernel::Tiles(p),
         }
     }
 
     /// The tiles of this weight, when it has them.
     pub fn packed(&self) -> Option<&Arc<Packed>> {
-        self.packed.as_ref()
+        match &self.kernel {
+            Kernel::Tiles(p) => Some(p),
+            _ => None,
+        }
     }
 
     /// Multiply the same rows `x` by several weights of input width `k`: one pool call
@@ -231,7 +221,8 @@ impl Linear {
         x: &[f32],
         m: usize,
     ) -> Result<Vec<Vec<f32>>, EngineError> {
-        let tiles: Option<Vec<&Packed>> = weights.iter().map(|w| w.packed.as_deref()).collect();
+        let tiles: Option<Vec<&Packed>> =
+            weights.iter().map(|w| w.packed().map(|p| &**p)).collect();
         match tiles {
             Some(t) if t.iter().all(|p| p.k == weights[0].k) && x.len() == m * weights[0].k => {
                 Ok(Packed::forward_many(&t, x, m))
@@ -242,18 +233,18 @@ impl Linear {
 
     /// Bytes held by this weight's own copies (candle's packed tiles not counted).
     pub fn bytes(&self) -> usize {
-        let q = match &self.quant {
-            Some(QMatMul::QTensor(t)) => t.storage_size_in_bytes(),
-            Some(QMatMul::Tensor(t)) | Some(QMatMul::TensorF16(t)) => {
-                t.elem_count() * t.dtype().size_in_bytes()
-            }
-            None => 0,
+        let tensor = |t: &Tensor| t.elem_count() * t.dtype().size_in_bytes();
+        let qmatmul = |q: &QMatMul| match q {
+            QMatMul::QTensor(t) => t.storage_size_in_bytes(),
+            QMatMul::Tensor(t) | QMatMul::TensorF16(t) => tensor(t),
         };
-        let d = self
-            .dense
-            .as_ref()
-            .map_or(0, |t| t.elem_count() * t.dtype().size_in_bytes());
-        q + d + self.packed.as_ref().map_or(0, |p| p.bytes())
+        match &self.kernel {
+            Kernel::Tiles(p) => p.bytes(),
+            Kernel::Candle { q, .. } => qmatmul(q),
+            Kernel::CandleDense { q, dense } => qmatmul(q) + tensor(dense),
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Q8Vnni(t) => t.storage_size_in_bytes(),
+        }
     }
 
     /// Multiply `m` rows of `x` (`m × k`, row-major) by the weight: `m × n`.
@@ -266,46 +257,65 @@ impl Linear {
                 self.k
             )));
         }
-        if let Some(p) = &self.packed {
-            return Ok(p.forward(x, m));
-        }
-        #[cfg(target_arch = "x86_64")]
-        if let (true, Some(QMatMul::QTensor(t))) = (self.vnni, &self.quant) {
-            let data = t.data().map_err(EngineError::candle(ctx))?;
-            let mut out = Vec::with_capacity(m * self.n);
-            for row in x.chunks_exact(self.k) {
-                out.extend(q8_0_vnni::gemv(&data, self.n, self.k, row));
+        let (q, k_pad) = match &self.kernel {
+            Kernel::Tiles(p) => return Ok(p.forward(x, m)),
+            #[cfg(target_arch = "x86_64")]
+            Kernel::Q8Vnni(t) => {
+                let data = t.data().map_err(EngineError::candle(ctx))?;
+                let mut out = Vec::with_capacity(m * self.n);
+                for row in x.chunks_exact(self.k) {
+                    out.extend(q8_0_vnni::gemv(&data, self.n, self.k, row));
+                }
+                return Ok(out);
             }
-            return Ok(out);
-        }
-        let xt = if self.k_pad == self.k {
+            Kernel::CandleDense { dense, .. } if m >= DENSE_MIN_ROWS => {
+                let xt = Tensor::from_slice(x, (m, self.k), &Device::Cpu)
+                    .and_then(|t| t.to_dtype(dense.dtype()))
+                    .map_err(EngineError::candle(ctx))?;
+                let out = dense
+                    .t()
+                    .and_then(|wt| xt.matmul(&wt))
+                    .and_then(|y| y.to_dtype(DType::F32))
+                    .map_err(EngineError::candle(ctx))?;
+                return to_rows(out);
+            }
+            Kernel::CandleDense { q, .. } => (q, self.k),
+            Kernel::Candle { q, k_pad } => (q, *k_pad),
+        };
+        let xt = if k_pad == self.k {
             Tensor::from_slice(x, (m, self.k), &Device::Cpu)
         } else {
-            let mut padded = vec![0f32; m * self.k_pad];
-            for (dst, src) in padded
-                .chunks_exact_mut(self.k_pad)
-                .zip(x.chunks_exact(self.k))
-            {
+            let mut padded = vec![0f32; m * k_pad];
+            for (dst, src) in padded.chunks_exact_mut(k_pad).zip(x.chunks_exact(self.k)) {
                 dst[..self.k].copy_from_slice(src);
             }
-            Tensor::from_vec(padded, (m, self.k_pad), &Device::Cpu)
+            Tensor::from_vec(padded, (m, k_pad), &Device::Cpu)
         }
         .map_err(EngineError::candle(ctx))?;
-        let out = match (&self.dense, &self.quant) {
-            (Some(w), q) if m >= DENSE_MIN_ROWS || q.is_none() => {
-                let xs = xt.to_dtype(w.dtype()).map_err(EngineError::candle(ctx))?;
-                let wt = w.t().map_err(EngineError::candle(ctx))?;
-                xs.matmul(&wt)
-                    .and_then(|y| y.to_dtype(DType::F32))
-                    .map_err(EngineError::candle(ctx))?
-            }
-            (_, Some(q)) => q.forward(&xt).map_err(EngineError::candle(ctx))?,
-            _ => return Err(EngineError::Invalid("weight without a kernel".into())),
-        };
-        out.flatten_all()
-            .and_then(|t| t.to_vec1::<f32>())
-            .map_err(EngineError::candle(ctx))
+        to_rows(q.forward(&xt).map_err(EngineError::candle(ctx))?)
     }
+}
+
+/// The values of a product, row after row.
+fn to_rows(t: Tensor) -> Result<Vec<f32>, EngineError> {
+    t.flatten_all()
+        .and_then(|t| t.to_vec1::<f32>())
+        .map_err(EngineError::candle("matrix multiply"))
+}
+
+/// Rows `rows` of the `n × k` quantised matrix `qt`, as a tensor of their own (a part of
+/// a fused tensor: GGUF stores a matrix row after row, each row whole blocks).
+fn row_slice(qt: &QTensor, rows: &std::ops::Range<usize>) -> candle_core::Result<QTensor> {
+    let (n, k) = qt.shape().dims2()?;
+    let dtype = qt.dtype();
+    if rows.end > n || k % dtype.block_size() != 0 {
+        candle_core::bail!("rows {rows:?} of a {n}x{k} tensor");
+    }
+    let row_bytes = k / dtype.block_size() * dtype.type_size();
+    let data = qt.data()?;
+    let part = data[rows.start * row_bytes..rows.end * row_bytes].to_vec();
+    let storage = QStorage::from_data(Cow::Owned(part), &Device::Cpu, dtype)?;
+    QTensor::new(storage, (rows.len(), k))
 }
 
 /// Token embedding table kept quantised; rows are dequantised when looked up.
@@ -393,6 +403,8 @@ impl Embedding {
 pub(crate) struct Loader<'a> {
     gguf: &'a GgufFile,
     reader: BufReader<File>,
+    /// The last fused tensor read, whose other parts are usually read next.
+    fused: Option<(String, Arc<QTensor>)>,
 }
 
 impl<'a> Loader<'a> {
@@ -404,6 +416,7 @@ impl<'a> Loader<'a> {
         Ok(Loader {
             gguf,
             reader: BufReader::new(file),
+            fused: None,
         })
     }
 
@@ -473,220 +486,34 @@ impl<'a> Loader<'a> {
         let t = self.qtensor(name)?;
         Linear::new(t, policy).map_err(self.err(name))
     }
-}
 
-/// Head layout of one attention call.
-pub(crate) struct AttnShape {
-    pub heads: usize,
-    pub kv_heads: usize,
-    pub head_dim: usize,
-    pub scale: f32,
-}
-
-/// RMS norm of each `w.len()`-wide row of `x` (Zhang & Sennrich 2019), as
-/// candle's `rms_norm`: x / sqrt(mean(x²) + eps) · w.
-pub(crate) fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
-    let dim = w.len();
-    let mut out = Vec::with_capacity(x.len());
-    for row in x.chunks_exact(dim) {
-        let sum2: f32 = row.iter().map(|v| v * v).sum();
-        let scale = (sum2 / dim as f32 + eps).sqrt();
-        out.extend(row.iter().zip(w).map(|(v, w)| v / scale * w));
-    }
-    out
-}
-
-pub(crate) fn add_bias(x: &mut [f32], bias: Option<&[f32]>) {
-    if let Some(b) = bias {
-        for row in x.chunks_exact_mut(b.len()) {
-            row.iter_mut().zip(b).for_each(|(v, b)| *v += b);
-        }
-    }
-}
-
-pub(crate) fn add_into(x: &mut [f32], y: &[f32]) {
-    x.iter_mut().zip(y).for_each(|(a, b)| *a += b);
-}
-
-/// Gated feed-forward activation. Branch-free and without library calls, so the
-/// element loops that call it vectorise (a scalar `tanhf` per element cost about as
-/// much as Gemma 3's matrix products on prompts).
-#[inline]
-pub(crate) fn activate(act: Activation, x: f32) -> f32 {
-    match act {
-        Activation::Silu => x / (1.0 + exp(-x)),
-        // Hendrycks & Gimpel (2016), tanh approximation, written with
-        // 0.5 (1 + tanh z) = 1 / (1 + e^(-2z)).
-        Activation::GeluTanh => {
-            let c = (2.0f32 / std::f32::consts::PI).sqrt();
-            x / (1.0 + exp(-2.0 * c * (x + 0.044_715 * x * x * x)))
-        }
-    }
-}
-
-/// e^x in f32 within about 2 ulp (Moshier's Cephes `expf`, 1992: range reduction by
-/// ln 2 in two parts, degree-6 polynomial), inputs clamped to [-87.3, 88.3] so that
-/// 2^n stays a normal number (e^-87.3 ≈ 1.2e-38); 0.693_359_4 is Cephes' exact
-/// 0.693359375 as f32 writes it. Inlined so loops vectorise.
-#[inline]
-pub(crate) fn exp(x: f32) -> f32 {
-    let x = x.clamp(-87.3, 88.3);
-    let n = (x * std::f32::consts::LOG2_E).round_ties_even();
-    let r = x - n * 0.693_359_4 - n * -2.121_944_4e-4;
-    let z = r * r;
-    let p = ((((1.987_569_1e-4 * r + 1.398_199_9e-3) * r + 8.333_452e-3) * r + 4.166_579_6e-2) * r
-        + 1.666_666_5e-1)
-        * r
-        + 0.5; // Cephes 5.0000001201e-1, which rounds to 0.5 in f32
-    let y = p * z + r + 1.0;
-    y * f32::from_bits(((n as i32 + 127) as u32) << 23)
-}
-
-/// Inverse frequencies of rotary embeddings (Su et al. 2021): base^(-2i/d).
-pub(crate) fn rope_freqs(head_dim: usize, base: f32) -> Vec<f32> {
-    (0..head_dim)
-        .step_by(2)
-        .map(|i| 1.0 / base.powf(i as f32 / head_dim as f32))
-        .collect()
-}
-
-/// Rotate every head of each `width`-wide row of `x` in place; row `r` sits at
-/// position `pos0 + r`. Interleaved pairs (2i, 2i+1) as in the original Llama layout,
-/// otherwise pairs (i, i + d/2) as in GPT-NeoX; angles in f32 as candle computes them.
-pub(crate) fn rope(
-    x: &mut [f32],
-    width: usize,
-    d: usize,
-    pos0: usize,
-    freqs: &[f32],
-    interleaved: bool,
-) {
-    let half = d / 2;
-    let (mut cos, mut sin) = (vec![0f32; half], vec![0f32; half]);
-    for (r, row) in x.chunks_exact_mut(width).enumerate() {
-        let pos = (pos0 + r) as f32;
-        for i in 0..half {
-            let angle = pos * freqs[i];
-            cos[i] = angle.cos();
-            sin[i] = angle.sin();
-        }
-        for head in row.chunks_exact_mut(d) {
-            for i in 0..half {
-                let (a, b) = if interleaved {
-                    (2 * i, 2 * i + 1)
-                } else {
-                    (i, i + half)
-                };
-                let (x0, x1) = (head[a], head[b]);
-                head[a] = x0 * cos[i] - x1 * sin[i];
-                head[b] = x0 * sin[i] + x1 * cos[i];
-            }
-        }
+    /// Rows `rows` of the fused weight `name` as a weight of their own. A row's
+    /// product does not depend on the other rows, so the parts multiply exactly as
+    /// the whole would.
+    pub(crate) fn linear_rows(
+        &mut self,
+        name: &str,
+        rows: &std::ops::Range<usize>,
+        policy: MatmulPolicy,
+    ) -> Result<Linear, EngineError> {
+        let whole = match self.fused.take() {
+            Some((n, t)) if n == name => t,
+            _ => self.qtensor(name)?,
+        };
+        let part = row_slice(&whole, rows).map_err(self.err(name))?;
+        self.fused = Some((name.to_string(), whole));
+        Linear::new(Arc::new(part), policy).map_err(self.err(name))
     }
 }
 
 /// Output buffer shared by attention workers; each work unit writes a disjoint slice.
-struct SharedOut(*mut f32);
+pub(crate) struct SharedOut(pub(crate) *mut f32);
 // SAFETY: workers write only to the disjoint `head_dim`-wide slice of their own unit.
 unsafe impl Sync for SharedOut {}
 impl SharedOut {
-    fn ptr(&self) -> *mut f32 {
+    pub(crate) fn ptr(&self) -> *mut f32 {
         self.0
     }
-}
-
-/// Causal scaled dot-product attention (Vaswani et al. 2017) of `m` query rows starting
-/// at position `pos0` over the cached keys/values, with grouped key/value heads and an
-/// optional sliding window of `w` tokens (the current one included, as llama.cpp and
-/// the reference Python Gemma 3 implementation counts it). Each (row, head) unit runs on one worker in a fixed
-/// order, so results do not depend on scheduling.
-pub(crate) fn attention(
-    q: &[f32],
-    kc: &[Vec<f32>],
-    vc: &[Vec<f32>],
-    c: &AttnShape,
-    pos0: usize,
-    m: usize,
-    window: Option<usize>,
-) -> Vec<f32> {
-    let (heads, d) = (c.heads, c.head_dim);
-    let group = heads / c.kv_heads;
-    let q_dim = heads * d;
-    let mut out = vec![0f32; m * q_dim];
-    let shared = SharedOut(out.as_mut_ptr());
-    let scale = c.scale;
-    #[cfg(target_arch = "x86_64")]
-    let simd = d.is_multiple_of(16) && d <= 256 && attn_simd::available();
-    #[cfg(target_arch = "x86_64")]
-    if simd {
-        // Work units are (row, key/value head, part of its query heads): the heads that
-        // share a key/value head read each key and value row once. A single row gets
-        // its query heads split so that every thread has a unit. Each head's arithmetic
-        // is the same whatever the split.
-        let pool = candle_core::utils::barrier_pool();
-        let threads = pool.n_workers() + 1;
-        let per_row = c.kv_heads;
-        let parts = if m * per_row >= threads {
-            1
-        } else {
-            threads.div_ceil(m * per_row).min(group)
-        };
-        pool.execute_chunked(m * per_row * parts, |units| {
-            let mut scores = Vec::new();
-            for u in units {
-                let (r, rest) = (u / (per_row * parts), u % (per_row * parts));
-                let (g, part) = (rest / parts, rest % parts);
-                let h0 = g * group + part * group / parts;
-                let h1 = g * group + (part + 1) * group / parts;
-                let p = pos0 + r;
-                let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-                let span = (r * heads + h0) * d..(r * heads + h1) * d;
-                // SAFETY: this unit owns heads h0..h1 of row r in `out`, which outlives
-                // the pool call; no other unit touches that range.
-                let o = unsafe {
-                    std::slice::from_raw_parts_mut(shared.ptr().add(span.start), span.len())
-                };
-                // SAFETY: features checked by `available()`; d is a multiple of 16.
-                unsafe {
-                    attn_simd::attend(&q[span], &kc[g], &vc[g], d, lo, p, scale, o, &mut scores, d)
-                };
-            }
-        });
-        return out;
-    }
-    candle_core::utils::barrier_pool().execute_chunked(m * heads, |units| {
-        let mut scores = Vec::new();
-        for u in units {
-            let (r, h) = (u / heads, u % heads);
-            let g = h / group;
-            let p = pos0 + r;
-            let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-            let qv = &q[u * d..(u + 1) * d];
-            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
-            // `out` outlives the pool call and no other unit touches this range.
-            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
-            let (keys, vals) = (&kc[g], &vc[g]);
-            scores.clear();
-            let mut max = f32::NEG_INFINITY;
-            for j in lo..=p {
-                let s = dot(qv, &keys[j * d..][..d]) * scale;
-                max = max.max(s);
-                scores.push(s);
-            }
-            let mut sum = 0f32;
-            for s in scores.iter_mut() {
-                *s = (*s - max).exp();
-                sum += *s;
-            }
-            for (s, j) in scores.iter().zip(lo..=p) {
-                let wgt = s / sum;
-                let vr = &vals[j * d..][..d];
-                o.iter_mut().zip(vr).for_each(|(o, v)| *o += wgt * v);
-            }
-        }
-    });
-    debug_assert_eq!(out.len(), m * q_dim);
-    out
 }
 
 /// Attention of the query heads that share one key/value head, with AVX-512. Keys and
@@ -697,7 +524,7 @@ pub(crate) fn attention(
 /// accumulated in position order. A head's result therefore does not depend on which
 /// other heads or rows share its unit.
 #[cfg(target_arch = "x86_64")]
-mod attn_simd {
+pub(crate) mod attn_simd {
     use std::arch::x86_64::*;
 
     /// Positions per tile: 32 rows of keys or values of width 256 are 32 KiB.
@@ -808,7 +635,7 @@ mod attn_simd {
             // The branch-free `exp` of this module vectorises; the library's is a call
             // per score.
             for s in row.iter_mut() {
-                *s = super::exp(*s - max);
+                *s = crate::engine::ops::exp(*s - max);
             }
             let sum = row.iter().fold(0f32, |a, &s| a + s);
             for s in row.iter_mut() {
@@ -958,129 +785,5 @@ pub(crate) mod q8_0_vnni {
     unsafe fn f16_at(p: *const u8) -> f32 {
         let bits = u16::from_le_bytes([*p, *p.add(1)]);
         _mm_cvtss_f32(_mm_cvtph_ps(_mm_cvtsi32_si128(bits as i32)))
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    fn pseudo(n: usize, seed: u32) -> Vec<f32> {
-        let mut s = seed.wrapping_mul(2_654_435_761) | 1;
-        (0..n)
-            .map(|_| {
-                s ^= s << 13;
-                s ^= s >> 17;
-                s ^= s << 5;
-                (s >> 8) as f32 / (1u32 << 24) as f32 * 2.0 - 1.0
-            })
-            .collect()
-    }
-
-    /// Scaled dot-product attention (Vaswani et al. 2017) straight from its definition,
-    /// in f64: softmax(q·k / sqrt(d)) · v over the visible positions.
-    fn textbook(q: &[f32], k: &[f32], v: &[f32], d: usize, lo: usize, p: usize) -> Vec<f64> {
-        let s: Vec<f64> = (lo..=p)
-            .map(|j| {
-                (0..d)
-                    .map(|i| q[i] as f64 * k[j * d + i] as f64)
-                    .sum::<f64>()
-                    / (d as f64).sqrt()
-            })
-            .collect();
-        let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
-        let w: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
-        let z: f64 = w.iter().sum();
-        (0..d)
-            .map(|i| {
-                (lo..=p)
-                    .zip(&w)
-                    .map(|(j, w)| w / z * v[j * d + i] as f64)
-                    .sum()
-            })
-            .collect()
-    }
-
-    /// Grouped-query attention with causal masking and a sliding window: every
-    /// (row, head) equals the textbook formula within f32 rounding, and equals the
-    /// same row computed alone bit for bit (so a prompt and a forked continuation see
-    /// the same numbers however the heads are split over threads).
-    #[test]
-    fn attention_matches_the_definition_and_is_batch_invariant() {
-        for (d, window) in [(64, None), (128, Some(5)), (80, None), (40, None)] {
-            let (heads, kv_heads, pos0, m) = (6, 2, 9, 4);
-            let n = pos0 + m;
-            let shape = AttnShape {
-                heads,
-                kv_heads,
-                head_dim: d,
-                scale: 1.0 / (d as f32).sqrt(),
-            };
-            let q = pseudo(m * heads * d, 1);
-            let kc: Vec<Vec<f32>> = (0..kv_heads)
-                .map(|g| pseudo(n * d, 10 + g as u32))
-                .collect();
-            let vc: Vec<Vec<f32>> = (0..kv_heads)
-                .map(|g| pseudo(n * d, 20 + g as u32))
-                .collect();
-            let all = attention(&q, &kc, &vc, &shape, pos0, m, window);
-            for r in 0..m {
-                let row = &q[r * heads * d..(r + 1) * heads * d];
-                let alone = attention(row, &kc, &vc, &shape, pos0 + r, 1, window);
-                let batch = &all[r * heads * d..(r + 1) * heads * d];
-                let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
-                assert_eq!(bits(&alone), bits(batch), "d {d}, row {r}");
-                let p = pos0 + r;
-                let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-                for h in 0..heads {
-                    let g = h / (heads / kv_heads);
-                    let want = textbook(&row[h * d..(h + 1) * d], &kc[g], &vc[g], d, lo, p);
-                    for (got, want) in batch[h * d..(h + 1) * d].iter().zip(&want) {
-                        assert!((*got as f64 - want).abs() < 1e-5, "d {d} row {r} head {h}");
-                    }
-                }
-            }
-        }
-    }
-
-    /// Cephes `expf` (Moshier 1992) claims about 2 ulp; checked against the standard
-    /// library's `exp` in f64 on a grid over the whole clamped range.
-    #[test]
-    fn exp_is_within_a_few_ulp_of_the_library_exp() {
-        let mut worst = 0f64;
-        for i in 0..=200_000 {
-            let x = -87.0 + 175.0 * i as f32 / 200_000.0;
-            let want = (x as f64).exp();
-            worst = worst.max(((exp(x) as f64 - want) / want).abs());
-        }
-        assert!(
-            worst < 4.0 * f32::EPSILON as f64,
-            "max relative error {worst}"
-        );
-        assert_eq!(exp(0.0), 1.0);
-        assert!(exp(-1000.0) < 1e-37 && exp(1000.0) > 1e38);
-    }
-
-    /// SiLU (Elfwing et al. 2018) and tanh-GELU (Hendrycks & Gimpel 2016) against their
-    /// textbook formulas in f64 with the library `exp` / `tanh`. The bound grows with
-    /// the exponent's size `a` (rounding the f32 argument moves e^a by ~ε·|a|), and an
-    /// absolute floor covers x below about -9, where 1 + tanh z cancels to 0 in f64.
-    #[test]
-    fn activations_match_their_textbook_formulas() {
-        let c = (2.0f64 / std::f64::consts::PI).sqrt();
-        for i in 0..=4000 {
-            let x = -20.0 + 40.0 * i as f32 / 4000.0;
-            let xd = x as f64;
-            let silu = xd / (1.0 + (-xd).exp());
-            let gelu = 0.5 * xd * (1.0 + (c * (xd + 0.044_715 * xd.powi(3))).tanh());
-            let z2 = 2.0 * c * (xd + 0.044_715 * xd.powi(3));
-            for (got, want, a) in [
-                (activate(Activation::Silu, x), silu, xd),
-                (activate(Activation::GeluTanh, x), gelu, z2),
-            ] {
-                let tol = 4.0 * f32::EPSILON as f64 * (1.0 + a.abs()) * want.abs() + 1e-15;
-                assert!((got as f64 - want).abs() <= tol, "x {x}: {got} vs {want}");
-            }
-        }
     }
 }

@@ -2,6 +2,8 @@
 //! and token sequences. Output: token ids, log-probabilities, generated text.
 //! Never reads answers files or rubrics, never prints.
 
+pub mod arch;
+pub mod attention;
 pub mod bench;
 pub mod chat;
 pub mod decoder;
@@ -9,6 +11,7 @@ pub mod error;
 pub mod gguf;
 pub mod kernels;
 pub mod linear;
+pub mod ops;
 pub mod session;
 pub mod tokenizer;
 

@@ -1,5 +1,6 @@
 //! Synthetic tiny GGUF models with random weights, written with candle's own GGUF
-//! writer, in the tensor layouts of Llama, Qwen2 and Gemma 3. Input: a layout and a
+//! writer, in the tensor layouts of Llama, Qwen2, Gemma 3, Qwen3 (per-head q/k norms,
+//! head width from `attention.key_length`) and Phi-3 (fused qkv and gate-up tensors). Input: a layout and a
 //! directory. Output: a model file small enough to load in milliseconds. Never
 //! reads a real model; weights come from a fixed seed so every run writes the same file.
 
@@ -20,7 +21,8 @@ pub struct Tiny {
     pub context_length: u32,
     /// Gemma 3: `attention.sliding_window`.
     pub sliding_window: u32,
-    /// Gemma 3: every n-th layer is global.
+    /// Gemma 3: every n-th layer is global (`attention.sliding_window_type`, candle's
+    /// spelling); 0 writes no such key (to give the pattern in `extra` instead).
     pub sliding_window_type: u32,
     /// Transformer blocks.
     pub layers: usize,
@@ -64,12 +66,15 @@ impl Tiny {
         let mut rng = ChaCha8Rng::seed_from_u64(self.seed);
         let gemma = self.arch == "gemma3";
         let qwen = self.arch == "qwen2";
+        let qwen3 = self.arch == "qwen3";
+        let phi3 = self.arch == "phi3";
         // Gemma's width 320 is not a multiple of 256, like the 640 of Gemma 3 270M, so
         // its weights take candle's slow paths; the others use k-quants on width 256.
-        let (hidden, heads, kv_heads, head_dim, ffn) = if gemma {
-            (320, 2, 1, 128, 512)
-        } else {
-            (256, 4, 2, 64, 512)
+        // Qwen3's heads are wider than hidden / heads, as in the published models.
+        let (hidden, heads, kv_heads, head_dim, ffn) = match self.arch.as_str() {
+            "gemma3" => (320, 2, 1, 128, 512),
+            "qwen3" => (256, 4, 2, 128, 512),
+            _ => (256, 4, 2, 64, 512),
         };
         let (q_dim, kv_dim) = (heads * head_dim, kv_heads * head_dim);
         let a = &self.arch;
@@ -104,7 +109,7 @@ impl Tiny {
             ),
         ];
         meta.extend(self.extra.iter().cloned());
-        if gemma {
+        if gemma || qwen3 {
             meta.extend([
                 (
                     format!("{a}.attention.key_length"),
@@ -114,15 +119,24 @@ impl Tiny {
                     format!("{a}.attention.value_length"),
                     Value::U32(head_dim as u32),
                 ),
-                (
-                    format!("{a}.attention.sliding_window"),
-                    Value::U32(self.sliding_window),
-                ),
-                (
+            ]);
+        }
+        if gemma {
+            meta.push((
+                format!("{a}.attention.sliding_window"),
+                Value::U32(self.sliding_window),
+            ));
+            if self.sliding_window_type > 0 {
+                meta.push((
                     format!("{a}.attention.sliding_window_type"),
                     Value::U32(self.sliding_window_type),
-                ),
-            ]);
+                ));
+            }
+        }
+        if qwen3 {
+            // candle-transformers' quantized_qwen3 computes RoPE in f16 unless the file
+            // says f32 (0); the reference must run in f32.
+            meta.push(("general.dtype".into(), Value::U32(0)));
         }
         use GgmlDType as D;
         let mut tensors: Vec<(String, QTensor)> = Vec::new();
@@ -144,24 +158,39 @@ impl Tiny {
         };
         let emb = if qwen { D::Q4K } else { D::Q8_0 };
         add("token_embd.weight".into(), VOCAB, hidden, emb, &mut rng);
-        if qwen {
+        if qwen || phi3 {
             add("output.weight".into(), VOCAB, hidden, D::Q6K, &mut rng);
         }
         let mut norms: Vec<(String, QTensor)> =
             vec![("output_norm.weight".into(), norm(hidden, &mut rng))];
         for i in 0..self.layers {
             let p = |s: &str| format!("blk.{i}.{s}");
-            let (tq, tk, tv, to, tg, tu, td) = match (gemma, qwen) {
-                (true, _) => (D::Q5_0, D::Q5_0, D::Q8_0, D::Q4K, D::Q5_0, D::Q4_0, D::Q6K),
-                (_, true) => (D::Q5_0, D::Q4K, D::Q8_0, D::Q5_0, D::Q4K, D::Q5_0, D::Q6K),
+            let (tq, tk, tv, to, tg, tu, td) = match self.arch.as_str() {
+                "gemma3" => (D::Q5_0, D::Q5_0, D::Q8_0, D::Q4K, D::Q5_0, D::Q4_0, D::Q6K),
+                "qwen2" => (D::Q5_0, D::Q4K, D::Q8_0, D::Q5_0, D::Q4K, D::Q5_0, D::Q6K),
+                "qwen3" => (D::Q4K, D::Q5_0, D::Q8_0, D::Q4K, D::Q6K, D::Q4K, D::Q5_0),
+                "phi3" => (D::Q4K, D::Q4K, D::Q4K, D::Q8_0, D::Q5_0, D::Q5_0, D::Q4K),
                 _ => (D::Q4K, D::Q8_0, D::Q5_0, D::Q4K, D::Q4K, D::Q4_0, D::Q6K),
             };
-            add(p("attn_q.weight"), q_dim, hidden, tq, &mut rng);
-            add(p("attn_k.weight"), kv_dim, hidden, tk, &mut rng);
-            add(p("attn_v.weight"), kv_dim, hidden, tv, &mut rng);
-            add(p("attn_output.weight"), hidden, q_dim, to, &mut rng);
-            add(p("ffn_gate.weight"), ffn, hidden, tg, &mut rng);
-            add(p("ffn_up.weight"), ffn, hidden, tu, &mut rng);
+            if phi3 {
+                // Fused: rows q, k, v in one tensor, rows gate, up in another.
+                add(
+                    p("attn_qkv.weight"),
+                    q_dim + 2 * kv_dim,
+                    hidden,
+                    tq,
+                    &mut rng,
+                );
+                add(p("attn_output.weight"), hidden, q_dim, to, &mut rng);
+                add(p("ffn_up.weight"), 2 * ffn, hidden, tu, &mut rng);
+            } else {
+                add(p("attn_q.weight"), q_dim, hidden, tq, &mut rng);
+                add(p("attn_k.weight"), kv_dim, hidden, tk, &mut rng);
+                add(p("attn_v.weight"), kv_dim, hidden, tv, &mut rng);
+                add(p("attn_output.weight"), hidden, q_dim, to, &mut rng);
+                add(p("ffn_gate.weight"), ffn, hidden, tg, &mut rng);
+                add(p("ffn_up.weight"), ffn, hidden, tu, &mut rng);
+            }
             add(p("ffn_down.weight"), hidden, ffn, td, &mut rng);
             norms.push((p("attn_norm.weight"), norm(hidden, &mut rng)));
             norms.push((p("ffn_norm.weight"), norm(hidden, &mut rng)));
@@ -176,9 +205,11 @@ impl Tiny {
                     norms.push((p(name), QTensor::quantize(&t, D::F32).expect("f32")));
                 }
             }
-            if gemma {
+            if gemma || qwen3 {
                 norms.push((p("attn_q_norm.weight"), norm(head_dim, &mut rng)));
                 norms.push((p("attn_k_norm.weight"), norm(head_dim, &mut rng)));
+            }
+            if gemma {
                 norms.push((p("post_attention_norm.weight"), norm(hidden, &mut rng)));
                 norms.push((p("post_ffw_norm.weight"), norm(hidden, &mut rng)));
             }
