@@ -51,7 +51,13 @@ fn installed_binary_grades_from_a_folder_outside_the_repository() {
     std::fs::create_dir_all(root.path().join("work")).expect("work folder");
     std::fs::write(root.path().join("work/answers.jsonl"), ANSWER).expect("answers");
     let o = installed(root.path())
-        .args(["grade", "--answers", "answers.jsonl", "--criteria", "helpfulness"])
+        .args([
+            "grade",
+            "--answers",
+            "answers.jsonl",
+            "--criteria",
+            "helpfulness",
+        ])
         .args(["--json", "--quiet"])
         .output()
         .expect("runs");
@@ -79,8 +85,14 @@ fn missing_judge_names_the_folders_looked_in() {
     let e = stderr(&o);
     assert!(e.contains("judge `default` is not fetched yet"), "{e}");
     assert!(e.contains("data/assize/models"), "{e}");
-    assert!(e.contains("fix: run `scripts/fetch-models --model default`"), "{e}");
-    assert!(!root.path().join("work/runs").exists(), "no run folder before a judge");
+    assert!(
+        e.contains("fix: run `scripts/fetch-models --model default`"),
+        "{e}"
+    );
+    assert!(
+        !root.path().join("work/runs").exists(),
+        "no run folder before a judge"
+    );
 }
 
 /// Bundled rubrics are addressable by name from any folder, and listed.

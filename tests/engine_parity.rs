@@ -399,6 +399,32 @@ fn model_info_reports_the_family_from_the_table() {
     }
 }
 
+/// Phi-3 features the decoder does not implement are refused by name, never run with
+/// wrong positions: long-context RoPE factors (LongRoPE tensors of the 128k files) and
+/// rotary embeddings over part of a head (`rope.dimension_count` below the head width).
+#[test]
+fn phi3_long_context_and_partial_rotary_are_refused() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let long = Tiny {
+        extra_tensors: vec![("rope_factors_long.weight".into(), vec![1.0; 32])],
+        ..Tiny::new("phi3")
+    };
+    let partial = Tiny {
+        extra: vec![("phi3.rope.dimension_count".into(), Value::U32(32))],
+        ..Tiny::new("phi3")
+    };
+    for (spec, needle) in [
+        (long, "rope_factors_long.weight"),
+        (partial, "phi3.rope.dimension_count"),
+    ] {
+        let gguf = GgufFile::open(&spec.write(dir.path())).expect("open");
+        let err = Decoder::load(&gguf, &LoadOptions::default())
+            .err()
+            .expect("must be refused");
+        assert!(err.to_string().contains(needle), "{err}");
+    }
+}
+
 /// A file whose `general.architecture` is not implemented is refused by name.
 #[test]
 fn unsupported_architecture_is_rejected() {

@@ -75,13 +75,26 @@ fn merge_refuses_gaps_overlaps_and_different_runs_by_name() {
         .collect();
     let err = merge(&tmp.path().join("m1"), &dirs[..2]).expect_err("gap");
     assert!(err.to_string().contains("shard 2/3 is missing"), "{err}");
-    let twice = [dirs[0].clone(), dirs[1].clone(), dirs[2].clone(), dirs[1].clone()];
+    let twice = [
+        dirs[0].clone(),
+        dirs[1].clone(),
+        dirs[2].clone(),
+        dirs[1].clone(),
+    ];
     let err = merge(&tmp.path().join("m2"), &twice).expect_err("overlap");
-    assert!(err.to_string().contains("shard 1/3 is given 2 times"), "{err}");
+    assert!(
+        err.to_string().contains("shard 1/3 is given 2 times"),
+        "{err}"
+    );
     let mut other = grade_args(&answers, &tmp.path().join("odd"));
     other.seed = 8;
     other.shard = Some(Shard { index: 2, count: 3 });
-    grade_run(&other, &prepare(&other).expect("inputs"), &varied_judge(&answers)).expect("grading");
+    grade_run(
+        &other,
+        &prepare(&other).expect("inputs"),
+        &varied_judge(&answers),
+    )
+    .expect("grading");
     let mixed = [dirs[0].clone(), dirs[1].clone(), tmp.path().join("odd")];
     let err = merge(&tmp.path().join("m3"), &mixed).expect_err("different seed");
     assert!(err.to_string().contains("seed `7` vs `8`"), "{err}");
@@ -123,8 +136,8 @@ fn second_writer_is_refused_while_the_first_holds_the_folder() {
     let answers = demo_answers(tmp.path(), 4);
     let _held = RunLock::acquire(&dir).expect("first writer");
     let a = grade_args(&answers, &dir);
-    let err = grade_run(&a, &prepare(&a).expect("inputs"), &varied_judge(&answers))
-        .expect_err("locked");
+    let err =
+        grade_run(&a, &prepare(&a).expect("inputs"), &varied_judge(&answers)).expect_err("locked");
     let msg = format!("{err:#}");
     assert!(msg.contains("is being written by process"), "{msg}");
     assert!(!dir.join("grades.jsonl").exists());
@@ -144,5 +157,8 @@ fn finished_run_is_summarised_without_writing() {
     assert_eq!(again.computed, 0);
     assert_eq!(again.records, first.records);
     assert!(!dir.join("lock").exists(), "a reader took the lock");
-    assert_eq!(std::fs::read(dir.join("grades.jsonl")).expect("read"), before);
+    assert_eq!(
+        std::fs::read(dir.join("grades.jsonl")).expect("read"),
+        before
+    );
 }

@@ -16,6 +16,7 @@ use super::errors::usage;
 use super::grade::{shard_identity, shown_path, ModelId};
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels, read_preferences, AnswerRecord};
+use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::pairwise::{judge_both_orders, OVERALL_QUESTION};
 use crate::judge::{Backend, GradeRecord, PairRecord};
 use crate::probes::length::{length_probe, LengthProbe};
@@ -25,7 +26,6 @@ use crate::probes::{pair_outcomes, PairOutcome};
 use crate::rubric::forms::Forms;
 use crate::rubric::{load_rubric, Need};
 use crate::stats::pairwise::{position_bias, PositionBias};
-use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::store::{read_records, Manifest};
 
 /// Results file of a comparison run.
@@ -44,12 +44,7 @@ pub struct CompareArgs {
     #[arg(long, value_name = "KEY")]
     pub criterion: Option<String>,
     /// Rubric holding `--criterion`
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     #[command(flatten)]
     pub model: ModelArgs,
@@ -332,7 +327,14 @@ pub fn finish_compare(
         |(a, b)| {
             let backend = backend.expect("a judge is loaded when work remains");
             Ok(judge_both_orders(
-                backend, &s.forms, a, b, &s.criterion, &s.question, s.show_ref, s.show_ctx,
+                backend,
+                &s.forms,
+                a,
+                b,
+                &s.criterion,
+                &s.question,
+                s.show_ref,
+                s.show_ctx,
             )?
             .to_vec())
         },
@@ -427,7 +429,12 @@ pub fn run(args: CompareArgs) -> anyhow::Result<ExitCode> {
     } else {
         None
     };
-    let report = finish_compare(&args, &setup, job, judge.as_ref().map(|j| j as &dyn Backend))?;
+    let report = finish_compare(
+        &args,
+        &setup,
+        job,
+        judge.as_ref().map(|j| j as &dyn Backend),
+    )?;
     if args.output.json {
         print_json(&report)?;
     } else {

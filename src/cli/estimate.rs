@@ -33,12 +33,7 @@ pub struct EstimateArgs {
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
     /// Rubric the grades were made with
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     /// Use only this share of the labelled items (seeded), holding the rest out to show
     /// how close the estimate gets to the full human mean

@@ -14,12 +14,12 @@ use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, Mod
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::{check_labels, read_answers, read_labels, AnswerRecord};
+use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::anchors::AnchorPool;
 use crate::judge::grade::{grade_item, summarize, GradeOptions, SummaryRow};
 use crate::judge::{Backend, GradeRecord};
 use crate::rubric::forms::Forms;
 use crate::rubric::{load_rubric, Rubric, RubricError};
-use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::store::Manifest;
 
 /// Results file of a grading run.
@@ -32,12 +32,7 @@ pub struct GradeArgs {
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     /// Grade only these criteria (comma-separated keys)
     #[arg(long, value_name = "KEYS", value_delimiter = ',')]
@@ -299,7 +294,11 @@ pub fn open_job(
                 .rubric
                 .criteria
                 .iter()
-                .map(|c| p.anchors.as_ref().map(|pool| pool.for_item(&c.key, &a.question_id)))
+                .map(|c| {
+                    p.anchors
+                        .as_ref()
+                        .map(|pool| pool.for_item(&c.key, &a.question_id))
+                })
                 .collect();
             Unit {
                 key: a.item_id(),
@@ -323,8 +322,7 @@ pub fn open_job(
         shard: args.shard,
         slow_append: None,
     };
-    Job::open(spec, units)
-        .with_context(|| format!("cannot use run folder `{}`", dir.display()))
+    Job::open(spec, units).with_context(|| format!("cannot use run folder `{}`", dir.display()))
 }
 
 /// The manifest identity with the shard, for a default folder name per shard.
@@ -377,7 +375,14 @@ pub fn finish_run(
     let outcome = job.run(
         |a| {
             let b = backend.expect("a judge is loaded when work remains");
-            Ok(grade_item(b, &p.forms, &p.rubric, a, p.anchors.as_ref(), &opts)?)
+            Ok(grade_item(
+                b,
+                &p.forms,
+                &p.rubric,
+                a,
+                p.anchors.as_ref(),
+                &opts,
+            )?)
         },
         GradeRecord::key,
     )?;
@@ -437,7 +442,10 @@ fn with_generated_steps(
             }
             let steps = crate::judge::steps::generate_steps(backend, c)?;
             cached.insert(c.key.clone(), steps);
-            job.save("steps.json", serde_json::to_string_pretty(&cached)?.as_bytes())?;
+            job.save(
+                "steps.json",
+                serde_json::to_string_pretty(&cached)?.as_bytes(),
+            )?;
         }
         let steps = &cached[&c.key];
         if !steps.is_empty() {
@@ -472,8 +480,13 @@ pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
         None
     };
     let started = std::time::Instant::now();
-    let mut report = finish_run(&args, &prepared, job, judge.as_ref().map(|j| j as &dyn Backend))
-        .context("grading stopped")?;
+    let mut report = finish_run(
+        &args,
+        &prepared,
+        job,
+        judge.as_ref().map(|j| j as &dyn Backend),
+    )
+    .context("grading stopped")?;
     report.model = model_id.path.clone();
     if let (Some(judge), false, true) = (&judge, args.output.quiet, report.computed > 0) {
         let secs = started.elapsed().as_secs_f64();

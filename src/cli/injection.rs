@@ -72,12 +72,21 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
     args.grade.limit = None;
     args.grade.run_dir = Some(run_dir.join("grades"));
     let prepared = prepare(&args.grade)?;
-    let job = open_job(&args.grade, &prepared, &ModelId::resolve(&args.grade.model)?)?;
+    let job = open_job(
+        &args.grade,
+        &prepared,
+        &ModelId::resolve(&args.grade.model)?,
+    )?;
     let judge = match job.remaining() {
         0 => None,
         _ => Some(load_judge(&args.grade.model, quiet)?),
     };
-    let graded = finish_run(&args.grade, &prepared, job, judge.as_ref().map(|j| j as &dyn Backend))?;
+    let graded = finish_run(
+        &args.grade,
+        &prepared,
+        job,
+        judge.as_ref().map(|j| j as &dyn Backend),
+    )?;
     let recs: Vec<GradeRecord> =
         read_records(&run_dir.join("grades").join(super::grade::GRADES_FILE))?;
     let mut effects = Vec::new();

@@ -39,12 +39,7 @@ pub struct ReportArgs {
     #[arg(long, value_name = "FILE", requires = "compare")]
     pub preferences: Option<PathBuf>,
     /// Rubric the runs were graded with
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     /// Answers file: texts of flagged items, answer lengths for the length probe and `written_by` for the self-preference probe
     #[arg(long, short = 'a', value_name = "FILE")]

@@ -59,12 +59,7 @@ pub struct CheckArgs {
 #[derive(Debug, Args)]
 pub struct ShowArgs {
     /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     /// Answers file
     #[arg(long, short = 'a', value_name = "FILE")]

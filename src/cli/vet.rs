@@ -32,12 +32,7 @@ pub struct VetArgs {
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
     /// Rubric the grades were made with
-    #[arg(
-        long,
-        short = 'r',
-        value_name = "RUBRIC",
-        default_value = "support"
-    )]
+    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
     pub rubric: PathBuf,
     /// More grading runs to show side by side, as `NAME=DIR` (e.g. `reasoning=runs/grade-…`)
     #[arg(long, value_name = "NAME=DIR")]

@@ -171,7 +171,11 @@ fn files_by_kind(parts: &[PathBuf]) -> Result<(BTreeSet<String>, BTreeSet<String
         for e in entries {
             let e = e.map_err(store::rio(dir))?;
             let name = e.file_name().to_string_lossy().into_owned();
-            if !e.path().is_file() || name == store::MANIFEST || name == "lock" || name.ends_with(".tmp") {
+            if !e.path().is_file()
+                || name == store::MANIFEST
+                || name == "lock"
+                || name.ends_with(".tmp")
+            {
                 continue;
             }
             if name.ends_with(".jsonl") {
@@ -259,7 +263,8 @@ pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
         }
         MergeError::NoKey { .. } => "grade that shard again with this version of assize".into(),
         MergeError::FileDiffers { .. } => {
-            "the shards disagree on a shared file; delete it in all shards and run them again".into()
+            "the shards disagree on a shared file; delete it in all shards and run them again"
+                .into()
         }
         MergeError::TargetUsed { .. } => "merge into a new, empty folder".into(),
     })

@@ -119,7 +119,8 @@ impl<U> Job<U> {
         }
         let lock = RunLock::acquire(&job.spec.dir)?;
         if !has_manifest && !store::check_manifest(&job.spec.dir, &job.spec.manifest)? {
-            let text = serde_json::to_string_pretty(&job.spec.manifest).expect("manifest serialises");
+            let text =
+                serde_json::to_string_pretty(&job.spec.manifest).expect("manifest serialises");
             store::write_atomic(&job.spec.dir.join(store::MANIFEST), text.as_bytes())?;
         }
         check_free_space(&job.spec.dir)?;
@@ -147,7 +148,10 @@ impl<U> Job<U> {
     /// Save a file beside the results (a cache the units need, such as judge-written
     /// steps). Only a job with work left holds the lock and may write.
     pub fn save(&self, name: &str, bytes: &[u8]) -> Result<(), StoreError> {
-        let lock = self.lock.as_ref().expect("only a job with work left saves files");
+        let lock = self
+            .lock
+            .as_ref()
+            .expect("only a job with work left saves files");
         store::write_atomic(&lock.dir().join(name), bytes)
     }
 
@@ -165,8 +169,11 @@ impl<U> Job<U> {
         let mut changed = Vec::new();
         let mut todo = Vec::new();
         for (i, u) in self.units.iter().enumerate() {
-            let found: Vec<Option<&str>> =
-                u.records.iter().filter_map(|k| stored.get(k.as_str()).copied()).collect();
+            let found: Vec<Option<&str>> = u
+                .records
+                .iter()
+                .filter_map(|k| stored.get(k.as_str()).copied())
+                .collect();
             if found.iter().any(|h| h.is_some_and(|h| h != u.input)) {
                 changed.push(u.key.clone());
             } else if found.len() < u.records.len() {
@@ -231,7 +238,10 @@ impl<U> Job<U> {
     }
 
     /// The job's records in file order, the first of any duplicated key.
-    fn collect<R: DeserializeOwned>(&self, key: &impl Fn(&R) -> String) -> Result<Vec<R>, StoreError> {
+    fn collect<R: DeserializeOwned>(
+        &self,
+        key: &impl Fn(&R) -> String,
+    ) -> Result<Vec<R>, StoreError> {
         let path = self.spec.dir.join(self.spec.results);
         let wanted: HashSet<&str> = self
             .units

@@ -88,11 +88,18 @@ impl Progress {
     /// `grading: 40/120 done, 3.1 per minute, about 26 min left`.
     fn line(&self) -> String {
         let mins = self.start.elapsed().as_secs_f64() / 60.0;
-        let rate = if mins > 0.0 { self.done as f64 / mins } else { 0.0 };
+        let rate = if mins > 0.0 {
+            self.done as f64 / mins
+        } else {
+            0.0
+        };
         let left = if self.done == self.total {
             format!("finished in {mins:.1} min")
         } else if rate > 0.0 {
-            format!("about {:.0} min left", (self.total - self.done) as f64 / rate)
+            format!(
+                "about {:.0} min left",
+                (self.total - self.done) as f64 / rate
+            )
         } else {
             "time left unknown".into()
         };

@@ -58,7 +58,9 @@ impl Shard {
             number(k, "shard index")?
         };
         if count == 0 || index >= count {
-            return Err(format!("shard {index}/{count} does not exist: the index runs from 0 to N-1"));
+            return Err(format!(
+                "shard {index}/{count} does not exist: the index runs from 0 to N-1"
+            ));
         }
         Ok(Shard { index, count })
     }
@@ -97,7 +99,12 @@ mod tests {
     use super::*;
 
     fn env<'a>(pairs: &'a [(&'a str, &'a str)]) -> impl Fn(&str) -> Option<String> + 'a {
-        move |k| pairs.iter().find(|(n, _)| *n == k).map(|(_, v)| v.to_string())
+        move |k| {
+            pairs
+                .iter()
+                .find(|(n, _)| *n == k)
+                .map(|(_, v)| v.to_string())
+        }
     }
 
     #[test]
@@ -117,7 +124,9 @@ mod tests {
         let mut n = [0usize; 4];
         for i in 0..10_000 {
             let key = format!("q{i}/system-{}", i % 3);
-            let s = (0..4).find(|&s| Shard { index: s, count: 4 }.takes(&key)).expect("one owner");
+            let s = (0..4)
+                .find(|&s| Shard { index: s, count: 4 }.takes(&key))
+                .expect("one owner");
             n[s] += 1;
         }
         for c in n {
@@ -128,14 +137,23 @@ mod tests {
     #[test]
     fn scheduler_environment_gives_the_index() {
         let k8s = [("JOB_COMPLETION_INDEX", "3")];
-        assert_eq!(Shard::parse_with("env/8", env(&k8s)), Ok(Shard { index: 3, count: 8 }));
+        assert_eq!(
+            Shard::parse_with("env/8", env(&k8s)),
+            Ok(Shard { index: 3, count: 8 })
+        );
         let slurm = [
             ("SLURM_ARRAY_TASK_ID", "5"),
             ("SLURM_ARRAY_TASK_MIN", "1"),
             ("SLURM_ARRAY_TASK_COUNT", "6"),
         ];
-        assert_eq!(Shard::parse_with("env", env(&slurm)), Ok(Shard { index: 4, count: 6 }));
-        assert!(Shard::parse_with("env", env(&k8s)).is_err(), "Kubernetes needs the count");
+        assert_eq!(
+            Shard::parse_with("env", env(&slurm)),
+            Ok(Shard { index: 4, count: 6 })
+        );
+        assert!(
+            Shard::parse_with("env", env(&k8s)).is_err(),
+            "Kubernetes needs the count"
+        );
         assert!(Shard::parse_with("env/2", env(&[])).is_err());
     }
 

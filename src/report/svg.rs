@@ -475,7 +475,11 @@ pub fn ranking_chart(k: &Ranking) -> IntervalChart {
                 (r.beats_average, r.beats_average_low, r.beats_average_high),
                 (0.0, 1.0),
                 format!("{:.0}%", r.beats_average * 100.0),
-                format!("won {} of {}", r.wins as f64 + 0.5 * r.ties as f64, r.comparisons()),
+                format!(
+                    "won {} of {}",
+                    r.wins as f64 + 0.5 * r.ties as f64,
+                    r.comparisons()
+                ),
                 true,
             )
         })
@@ -486,7 +490,8 @@ pub fn ranking_chart(k: &Ranking) -> IntervalChart {
     });
     interval_chart(
         "ranking",
-        "Chance of beating a system of average strength (Bradley-Terry), 95% bootstrap interval".into(),
+        "Chance of beating a system of average strength (Bradley-Terry), 95% bootstrap interval"
+            .into(),
         rows,
         ticks(0.0, 1.0, 0.25, 2),
         reference,

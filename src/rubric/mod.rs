@@ -41,13 +41,16 @@ impl Scale {
             return Some(Scale::YesNo);
         }
         let (a, b) = s.split_once('-')?;
-        let digits = |t: &str| !t.is_empty() && t.len() <= 3 && t.bytes().all(|c| c.is_ascii_digit());
+        let digits =
+            |t: &str| !t.is_empty() && t.len() <= 3 && t.bytes().all(|c| c.is_ascii_digit());
         if !digits(a) || !digits(b) {
             return None;
         }
         let (low, high): (u32, u32) = (a.parse().ok()?, b.parse().ok()?);
         let points = high.checked_sub(low)? + 1;
-        SCALE_POINTS.contains(&points).then_some(Scale::Points { low, high })
+        SCALE_POINTS
+            .contains(&points)
+            .then_some(Scale::Points { low, high })
     }
 
     /// The rubric spelling.
@@ -265,8 +268,14 @@ fn line_of(text: &str, offset: usize) -> usize {
 /// Rubrics built into the binary: (name, TOML text). Their sources are
 /// `judge-templates/rubrics/NAME.toml`.
 pub const BUNDLED: &[(&str, &str)] = &[
-    ("support", include_str!("../../judge-templates/rubrics/support.toml")),
-    ("quick", include_str!("../../judge-templates/rubrics/quick.toml")),
+    (
+        "support",
+        include_str!("../../judge-templates/rubrics/support.toml"),
+    ),
+    (
+        "quick",
+        include_str!("../../judge-templates/rubrics/quick.toml"),
+    ),
 ];
 
 /// The bundled rubric names, as `support`, `quick` for messages.
@@ -479,12 +488,17 @@ needs = ["sources"]
     #[test]
     fn integer_scales_of_two_to_eleven_points_parse() {
         assert_eq!(Scale::parse("1-7"), Some(Scale::points(1, 7)));
-        assert_eq!(Scale::parse("1-4").map(|s| s.labels()), Some(vec!["1".into(), "2".into(), "3".into(), "4".into()]));
+        assert_eq!(
+            Scale::parse("1-4").map(|s| s.labels()),
+            Some(vec!["1".into(), "2".into(), "3".into(), "4".into()])
+        );
         assert_eq!(Scale::parse("0-10").map(|s| s.values().len()), Some(11));
         assert_eq!(Scale::parse("0-1"), Some(Scale::points(0, 1)));
         assert_eq!(Scale::parse("yes-no"), Some(Scale::YesNo));
         assert_eq!(Scale::points(1, 7).name(), "1-7");
-        for bad in ["1-1", "5-1", "1-12", "0-11", "-1-5", "1-5.5", "a-b", "1-", "15"] {
+        for bad in [
+            "1-1", "5-1", "1-12", "0-11", "-1-5", "1-5.5", "a-b", "1-", "15",
+        ] {
             assert_eq!(Scale::parse(bad), None, "{bad}");
         }
     }
@@ -522,6 +536,9 @@ needs = ["sources"]
     fn unknown_rubric_name_names_the_bundled_ones_in_its_fix() {
         let err = load_rubric(Path::new("suport")).expect_err("no such file or name");
         let fix = fix_for(&err).expect("rubric errors have a fix");
-        assert!(fix.contains("`support`") && fix.contains("`quick`"), "{fix}");
+        assert!(
+            fix.contains("`support`") && fix.contains("`quick`"),
+            "{fix}"
+        );
     }
 }

@@ -277,11 +277,7 @@ mod tests {
             assert!((p - w).abs() < 5e-9, "{p} vs {w}");
         }
         assert!((bt.win_probability(0, 1).unwrap() - 0.58492063).abs() < 5e-9);
-        for (r, w) in bt
-            .beats_average()
-            .iter()
-            .zip([0.58492063, 0.5, 0.41507937])
-        {
+        for (r, w) in bt.beats_average().iter().zip([0.58492063, 0.5, 0.41507937]) {
             assert!((r - w).abs() < 5e-8, "{r} vs {w}");
         }
         assert!((bt.theta[0] - bt.theta[1] - 0.343006406).abs() < 5e-9);

@@ -15,8 +15,8 @@ use serde::{Deserialize, Serialize};
 
 pub use lock::RunLock;
 pub use results::{
-    parse_lines, read_lines, read_records, warn_torn, Appender, Line, Loaded, TornTail, INPUT_FIELD,
-    KEY_FIELD,
+    parse_lines, read_lines, read_records, warn_torn, Appender, Line, Loaded, TornTail,
+    INPUT_FIELD, KEY_FIELD,
 };
 
 /// Name of the manifest file inside a run folder.
@@ -63,7 +63,11 @@ impl Manifest {
         let show = |s: &Option<String>| s.clone().unwrap_or_else(|| "whole run".into());
         let checks = [
             ("kind", self.kind.clone(), other.kind.clone()),
-            ("assize", self.tool_version.clone(), other.tool_version.clone()),
+            (
+                "assize",
+                self.tool_version.clone(),
+                other.tool_version.clone(),
+            ),
             ("seed", self.seed.to_string(), other.seed.to_string()),
             ("shard", show(&self.shard), show(&other.shard)),
         ];
@@ -122,7 +126,9 @@ pub enum StoreError {
     #[error("run folder `{dir}` cannot be written (read-only)")]
     ReadOnly { dir: PathBuf },
     /// Finished records were computed from inputs that have changed since.
-    #[error("inputs of finished records in `{dir}` have changed since they were computed:\n{units}")]
+    #[error(
+        "inputs of finished records in `{dir}` have changed since they were computed:\n{units}"
+    )]
     Changed { dir: PathBuf, units: String },
     /// The disk is full.
     #[error("no space left on the disk holding `{path}`")]
@@ -157,19 +163,17 @@ pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
 
 /// Wrap an I/O error on `path`, naming a full disk or a read-only folder as such.
 pub(crate) fn io(path: &Path) -> impl FnOnce(std::io::Error) -> StoreError + '_ {
-    move |source| {
-        match source.raw_os_error() {
-            Some(libc::ENOSPC) => StoreError::DiskFull {
-                path: path.to_path_buf(),
-            },
-            Some(libc::EROFS | libc::EACCES) => StoreError::ReadOnly {
-                dir: path.parent().unwrap_or(path).to_path_buf(),
-            },
-            _ => StoreError::Io {
-                path: path.to_path_buf(),
-                source,
-            },
-        }
+    move |source| match source.raw_os_error() {
+        Some(libc::ENOSPC) => StoreError::DiskFull {
+            path: path.to_path_buf(),
+        },
+        Some(libc::EROFS | libc::EACCES) => StoreError::ReadOnly {
+            dir: path.parent().unwrap_or(path).to_path_buf(),
+        },
+        _ => StoreError::Io {
+            path: path.to_path_buf(),
+            source,
+        },
     }
 }
 

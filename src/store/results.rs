@@ -91,7 +91,10 @@ pub fn parse_lines(path: &Path, bytes: &[u8]) -> Result<Loaded, StoreError> {
         let text = match std::str::from_utf8(raw) {
             Ok(t) => t,
             Err(e) => {
-                damaged.push(format!("line {number}: invalid UTF-8 at byte {}", e.valid_up_to()));
+                damaged.push(format!(
+                    "line {number}: invalid UTF-8 at byte {}",
+                    e.valid_up_to()
+                ));
                 continue;
             }
         };
@@ -207,7 +210,12 @@ impl Appender {
     }
 
     /// Append one record as a single line with its key and input hash, and flush it.
-    pub fn append<T: Serialize>(&mut self, record: &T, key: &str, input: &str) -> Result<(), StoreError> {
+    pub fn append<T: Serialize>(
+        &mut self,
+        record: &T,
+        key: &str,
+        input: &str,
+    ) -> Result<(), StoreError> {
         let line = with_fields(record, key, input);
         let bytes = line.as_bytes();
         let half = match self.slow_append {

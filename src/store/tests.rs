@@ -54,7 +54,9 @@ fn torn_tail_is_left_out_and_the_file_is_untouched() {
 /// non-ASCII rationale) is a torn tail like any other, not an unreadable file.
 #[test]
 fn tail_cut_inside_a_utf8_sequence_is_dropped() {
-    let mut bytes = "{\"r\":\"gut\"}\n{\"r\":\"gr\u{00fc}n\"}\n".as_bytes().to_vec();
+    let mut bytes = "{\"r\":\"gut\"}\n{\"r\":\"gr\u{00fc}n\"}\n"
+        .as_bytes()
+        .to_vec();
     let cut = "{\"r\":\"gr\u{00fc}".as_bytes();
     bytes.extend_from_slice(&cut[..cut.len() - 1]);
     let (_d, p) = file_with(&bytes);
@@ -78,11 +80,15 @@ fn damaged_lines_inside_the_file_are_all_named() {
 /// record gets its newline, and appending then continues cleanly.
 #[test]
 fn writer_repairs_the_tail_before_appending() {
-    for (start, kept) in [(&b"{\"a\":1}\n{\"a\":"[..], 1), (&b"{\"a\":1}\n{\"a\":2}"[..], 2)] {
+    for (start, kept) in [
+        (&b"{\"a\":1}\n{\"a\":"[..], 1),
+        (&b"{\"a\":1}\n{\"a\":2}"[..], 2),
+    ] {
         let (d, p) = file_with(start);
         let lock = RunLock::acquire(d.path()).expect("lock");
         let mut app = Appender::open(&lock, "r.jsonl").expect("open");
-        app.append(&serde_json::json!({"a": 9}), "k9", "h").expect("append");
+        app.append(&serde_json::json!({"a": 9}), "k9", "h")
+            .expect("append");
         let recs = values(&p);
         assert_eq!(recs.len(), kept + 1);
         assert_eq!(recs[kept]["a"], 9);
@@ -97,7 +103,10 @@ fn second_writer_is_refused_naming_the_holder() {
     let held = RunLock::acquire(d.path()).expect("first lock");
     let err = RunLock::acquire(d.path()).expect_err("second lock");
     let msg = err.to_string();
-    assert!(msg.contains(&format!("process {}", std::process::id())), "{msg}");
+    assert!(
+        msg.contains(&format!("process {}", std::process::id())),
+        "{msg}"
+    );
     assert!(msg.contains("on host"), "{msg}");
     drop(held);
     RunLock::acquire(d.path()).expect("free again");
@@ -109,12 +118,16 @@ fn different_manifest_is_refused_naming_the_difference() {
     assert!(!check_manifest(dir.path(), &manifest(1)).expect("empty folder"));
     write_atomic(
         &dir.path().join(MANIFEST),
-        serde_json::to_string(&manifest(1)).expect("json").as_bytes(),
+        serde_json::to_string(&manifest(1))
+            .expect("json")
+            .as_bytes(),
     )
     .expect("write");
     assert!(check_manifest(dir.path(), &manifest(1)).expect("same run"));
     let mut moved = manifest(1);
-    moved.inputs.insert("answers".into(), "elsewhere.jsonl".into());
+    moved
+        .inputs
+        .insert("answers".into(), "elsewhere.jsonl".into());
     assert!(check_manifest(dir.path(), &moved).expect("paths are informative"));
     let err = check_manifest(dir.path(), &manifest(2)).expect_err("mismatch");
     assert!(err.to_string().contains("seed `1` vs `2`"), "{err}");

@@ -46,7 +46,8 @@ pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
 
 /// The first `n` lines of the demo answers, written to `dir/answers.jsonl`.
 pub fn demo_answers(dir: &Path, n: usize) -> PathBuf {
-    let text = std::fs::read_to_string(root().join("demo-data/answers.jsonl")).expect("demo answers");
+    let text =
+        std::fs::read_to_string(root().join("demo-data/answers.jsonl")).expect("demo answers");
     let lines: Vec<&str> = text.lines().take(n).collect();
     let p = dir.join("answers.jsonl");
     std::fs::write(&p, lines.join("\n") + "\n").expect("write answers");
@@ -64,7 +65,9 @@ pub fn varied_judge(answers: &Path) -> ScriptedJudge {
             let v: serde_json::Value = serde_json::from_str(line).expect("json line");
             let answer = v["answer"].as_str().expect("answer").to_string();
             let peak = (i % 5) as f64;
-            let lp = (0..5).map(|k| -0.3 - (k as f64 - peak).abs() * 0.7 - i as f64 * 1e-3).collect();
+            let lp = (0..5)
+                .map(|k| -0.3 - (k as f64 - peak).abs() * 0.7 - i as f64 * 1e-3)
+                .collect();
             (answer, lp)
         })
         .collect();

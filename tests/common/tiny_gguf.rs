@@ -28,10 +28,13 @@ pub struct Tiny {
     pub layers: usize,
     /// Seed of the random weights.
     pub seed: u64,
-    /// More metadata entries (RoPE scaling keys, say).
+    /// More metadata entries (RoPE scaling keys, say); an entry replaces a default one
+    /// of the same key.
     pub extra: Vec<(String, Value)>,
     /// A `rope_freqs.weight` tensor of per-frequency divisors (`head_dim / 2` values).
     pub rope_freqs: Option<Vec<f32>>,
+    /// More f32 vector tensors, by name.
+    pub extra_tensors: Vec<(String, Vec<f32>)>,
 }
 
 /// Vocabulary of every tiny model.
@@ -49,18 +52,17 @@ impl Tiny {
             seed: 7,
             extra: Vec::new(),
             rope_freqs: None,
+            extra_tensors: Vec::new(),
         }
     }
 
     /// Write the model to `dir/{arch}-tiny.gguf` and return the path.
     pub fn write(&self, dir: &Path) -> PathBuf {
-        let tag = if self.extra.is_empty() && self.rope_freqs.is_none() {
+        let added = self.extra.len() + self.extra_tensors.len();
+        let tag = if added == 0 && self.rope_freqs.is_none() {
             String::new()
         } else {
-            format!(
-                "-x{}",
-                self.extra.len() + 2 * self.rope_freqs.is_some() as usize
-            )
+            format!("-x{}", added + 2 * self.rope_freqs.is_some() as usize)
         };
         let path = dir.join(format!("{}-{}{tag}-tiny.gguf", self.arch, self.seed));
         let mut rng = ChaCha8Rng::seed_from_u64(self.seed);
@@ -108,6 +110,7 @@ impl Tiny {
                 Value::U32(head_dim as u32),
             ),
         ];
+        meta.retain(|(k, _)| !self.extra.iter().any(|(e, _)| e == k));
         meta.extend(self.extra.iter().cloned());
         if gemma || qwen3 {
             meta.extend([
@@ -213,6 +216,10 @@ impl Tiny {
                 norms.push((p("post_attention_norm.weight"), norm(hidden, &mut rng)));
                 norms.push((p("post_ffw_norm.weight"), norm(hidden, &mut rng)));
             }
+        }
+        for (name, v) in &self.extra_tensors {
+            let t = Tensor::from_vec(v.clone(), v.len(), &Device::Cpu).expect("tensor");
+            norms.push((name.clone(), QTensor::quantize(&t, D::F32).expect("f32")));
         }
         if let Some(f) = &self.rope_freqs {
             let t = Tensor::from_vec(f.clone(), f.len(), &Device::Cpu).expect("tensor");
