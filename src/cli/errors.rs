@@ -88,6 +88,9 @@ fn engine_fix(e: &EngineError) -> Option<String> {
             "check the path; fetch the known judges with `scripts/fetch-models --all`".into()
         }
         EngineError::NotGguf { .. } => "pass a GGUF model file (`*.gguf`)".into(),
+        EngineError::Damaged { .. } => {
+            "the file is damaged: delete it and fetch it again (`scripts/fetch-models`)".into()
+        }
         EngineError::Truncated { .. } => {
             "the download was interrupted: delete the file and fetch it again".into()
         }

@@ -17,6 +17,13 @@ pub enum EngineError {
     /// The file is not a GGUF file, or its header is damaged.
     #[error("`{path}` is not a readable GGUF model file: {reason}")]
     NotGguf { path: PathBuf, reason: String },
+    /// A header field is impossible: the file is damaged.
+    #[error("`{path}` is damaged: {field} {reason}")]
+    Damaged {
+        path: PathBuf,
+        field: String,
+        reason: String,
+    },
     /// The file ends before the tensor data it declares (an interrupted download).
     #[error("`{path}` is truncated: tensor `{tensor}` needs bytes up to {needed}, the file has {actual}")]
     Truncated {

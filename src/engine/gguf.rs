@@ -42,6 +42,7 @@ impl GgufFile {
                 reason: "the file does not start with the GGUF magic bytes".into(),
             });
         }
+        super::gguf_check::check_file(path, file_size)?;
         let mut reader = BufReader::new(File::open(path).map_err(io)?);
         let content = Content::read(&mut reader).map_err(|e| EngineError::NotGguf {
             path: path.to_path_buf(),

@@ -9,6 +9,7 @@ pub mod chat;
 pub mod decoder;
 pub mod error;
 pub mod gguf;
+pub mod gguf_check;
 pub mod kernels;
 pub mod linear;
 pub mod ops;
