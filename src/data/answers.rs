@@ -8,7 +8,7 @@ use std::path::Path;
 
 use serde::{Deserialize, Serialize};
 
-use super::table::{finish, read_rows};
+use super::table::{finish, parse_rows, read_rows, Row};
 use super::{DataError, LineProblem};
 
 /// One answer to grade.
@@ -40,10 +40,22 @@ impl AnswerRecord {
     }
 }
 
+const KIND: &str = "answers";
+
 /// Read and validate an answers file; every bad line is reported at once.
 pub fn read_answers(path: &Path) -> Result<Vec<AnswerRecord>, DataError> {
-    const KIND: &str = "answers";
-    let (rows, mut problems) = read_rows(KIND, path)?;
+    answers_from(path, read_rows(KIND, path)?)
+}
+
+/// Validate an answers file's bytes (the path gives the format and names the file).
+pub fn parse_answers(path: &Path, bytes: &[u8]) -> Result<Vec<AnswerRecord>, DataError> {
+    answers_from(path, parse_rows(KIND, path, bytes)?)
+}
+
+fn answers_from(
+    path: &Path,
+    (rows, mut problems): (Vec<Row>, Vec<LineProblem>),
+) -> Result<Vec<AnswerRecord>, DataError> {
     let mut records = Vec::with_capacity(rows.len());
     let mut seen: HashMap<(String, String), usize> = HashMap::new();
     for row in rows {

@@ -9,7 +9,7 @@ use std::path::Path;
 
 use serde::Serialize;
 
-use super::table::{finish, read_rows, Row};
+use super::table::{finish, parse_rows, read_rows, Row};
 use super::{AnswerRecord, DataError, LineProblem};
 
 /// One human score.
@@ -82,11 +82,23 @@ fn fields<const N: usize>(row: &Row, names: [&str; N]) -> Result<[String; N], St
     }
 }
 
+const LABELS: &str = "human labels";
+
 /// Read human scores in long form.
 pub fn read_labels(path: &Path) -> Result<Vec<LabelRow>, DataError> {
-    const KIND: &str = "human labels";
-    let rows = read_rows(KIND, path)?;
-    collect(KIND, path, rows, |row| {
+    labels_from(path, read_rows(LABELS, path)?)
+}
+
+/// Human scores from a labels file's bytes (the path gives the format).
+pub fn parse_labels(path: &Path, bytes: &[u8]) -> Result<Vec<LabelRow>, DataError> {
+    labels_from(path, parse_rows(LABELS, path, bytes)?)
+}
+
+fn labels_from(
+    path: &Path,
+    rows: (Vec<Row>, Vec<LineProblem>),
+) -> Result<Vec<LabelRow>, DataError> {
+    collect(LABELS, path, rows, |row| {
         let [question_id, system, criterion, rater, score] = fields(
             row,
             ["question_id", "system", "criterion", "rater", "score"],

@@ -7,8 +7,8 @@ pub mod answers;
 pub mod labels;
 pub mod table;
 
-pub use answers::{read_answers, AnswerRecord};
-pub use labels::{check_labels, read_labels, read_preferences, LabelRow, PreferenceRow};
+pub use answers::{parse_answers, read_answers, AnswerRecord};
+pub use labels::{check_labels, parse_labels, read_labels, read_preferences, LabelRow, PreferenceRow};
 
 use std::fmt;
 use std::path::PathBuf;

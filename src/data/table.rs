@@ -42,17 +42,29 @@ pub fn read_rows(
     kind: &'static str,
     path: &Path,
 ) -> Result<(Vec<Row>, Vec<LineProblem>), DataError> {
+    let bytes = std::fs::read(path).map_err(|source| DataError::Io {
+        kind,
+        path: path.to_path_buf(),
+        source,
+    })?;
+    parse_rows(kind, path, &bytes)
+}
+
+/// Rows of a file's bytes; the path gives the format (its extension) and names the
+/// file in messages. A UTF-8 byte-order mark is skipped; lines that are not UTF-8
+/// are problems with their line numbers.
+pub fn parse_rows(
+    kind: &'static str,
+    path: &Path,
+    bytes: &[u8],
+) -> Result<(Vec<Row>, Vec<LineProblem>), DataError> {
     let ext = path
         .extension()
         .and_then(|e| e.to_str())
         .unwrap_or("")
         .to_ascii_lowercase();
-    let text = std::fs::read_to_string(path).map_err(|source| DataError::Io {
-        kind,
-        path: path.to_path_buf(),
-        source,
-    })?;
-    let (rows, problems) = match ext.as_str() {
+    let (text, encoding) = decode_text(bytes);
+    let (rows, mut problems) = match ext.as_str() {
         "jsonl" | "ndjson" | "json" => jsonl_rows(&text),
         "csv" => csv_rows(&text),
         _ => {
@@ -62,6 +74,7 @@ pub fn read_rows(
             })
         }
     };
+    problems.extend(encoding);
     if rows.is_empty() && problems.is_empty() {
         return Err(DataError::Empty {
             kind,
@@ -69,6 +82,36 @@ pub fn read_rows(
         });
     }
     Ok((rows, problems))
+}
+
+/// A file's text without a UTF-8 byte-order mark, and a problem for every line that
+/// is not UTF-8 (kept, with replacement characters, so the line count holds) or
+/// for a UTF-16 file as a whole.
+pub fn decode_text(bytes: &[u8]) -> (std::borrow::Cow<'_, str>, Vec<LineProblem>) {
+    let bytes = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
+    if bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF") {
+        let problem = LineProblem {
+            line: 1,
+            message: "the file is UTF-16 (it starts with a UTF-16 byte-order mark); save it as UTF-8".into(),
+        };
+        return (std::borrow::Cow::Borrowed(""), vec![problem]);
+    }
+    if let Ok(text) = std::str::from_utf8(bytes) {
+        return (std::borrow::Cow::Borrowed(text), Vec::new());
+    }
+    let mut problems = Vec::new();
+    for (i, line) in bytes.split(|&b| b == b'\n').enumerate() {
+        if let Err(e) = std::str::from_utf8(line) {
+            problems.push(LineProblem {
+                line: i + 1,
+                message: format!(
+                    "not UTF-8 (byte {} of the line); save the file as UTF-8",
+                    e.valid_up_to() + 1
+                ),
+            });
+        }
+    }
+    (String::from_utf8_lossy(bytes), problems)
 }
 
 /// `Ok(value)` when there are no problems, else every problem sorted by line.

@@ -201,6 +201,13 @@ pub enum RubricError {
         key: String,
         known: Vec<String>,
     },
+    /// A form template file cannot be read.
+    #[error("cannot read form template `{path}`")]
+    TemplateFile {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
     /// A form template failed to parse or render.
     #[error("form template `{name}` failed")]
     Template {
@@ -229,6 +236,10 @@ pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
             "fix the listed lines; the rubric format is described in the README (Formats)".into()
         }
         RubricError::UnknownCriterion { .. } => "use one of the listed criterion keys".into(),
+        RubricError::TemplateFile { .. } => "a templates folder needs `system.j2`, `grade.j2` and `pair.j2`; copy the missing one from judge-templates/forms/".into(),
+        RubricError::Template { source, .. } if source.kind() == minijinja::ErrorKind::OutOfFuel => {
+            "the template runs too long (a loop over too many items?); simplify it".into()
+        }
         RubricError::Template { .. } => "check the template syntax (minijinja, Jinja2-like)".into(),
         RubricError::MissingField { field, .. } => format!(
             "add `{field}` to the answers file, or leave that criterion out with `--criteria`"
@@ -301,10 +312,29 @@ pub fn load_rubric(path: &Path) -> Result<Rubric, RubricError> {
     if let Some(text) = bundled_text(path) {
         return parse_rubric(path, text);
     }
-    let text = std::fs::read_to_string(path).map_err(|source| RubricError::Io {
+    let bytes = std::fs::read(path).map_err(|source| RubricError::Io {
         path: path.to_path_buf(),
         source,
     })?;
+    parse_rubric_bytes(path, &bytes)
+}
+
+/// Check a rubric file's bytes: a UTF-8 byte-order mark is skipped, lines that are
+/// not UTF-8 are problems with their line numbers.
+pub fn parse_rubric_bytes(path: &Path, bytes: &[u8]) -> Result<Rubric, RubricError> {
+    let (text, encoding) = crate::data::table::decode_text(bytes);
+    if !encoding.is_empty() {
+        return Err(RubricError::Invalid {
+            path: path.to_path_buf(),
+            problems: encoding
+                .into_iter()
+                .map(|p| RubricProblem {
+                    line: p.line,
+                    message: p.message,
+                })
+                .collect(),
+        });
+    }
     parse_rubric(path, &text)
 }
 
