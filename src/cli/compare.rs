@@ -231,6 +231,12 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
             "give answers of at least two systems to the same `question_id`",
         ));
     }
+    // Every form renders before any judge loads: a template problem shows now.
+    for (a, b) in &pairs {
+        forms
+            .pair(a, b, &question, show_ref, show_ctx)
+            .with_context(|| format!("cannot render the pairwise form for `{}`", a.question_id))?;
+    }
     Ok(CompareSetup {
         answers,
         forms,

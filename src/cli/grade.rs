@@ -138,28 +138,6 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
         Some(d) => Forms::from_dir(d)?,
         None => Forms::builtin()?,
     };
-    let mut missing = Vec::new();
-    for a in &answers {
-        for c in &rubric.criteria {
-            if let Err(e @ RubricError::MissingField { .. }) =
-                forms.grade(&rubric, a, c, false, &[])
-            {
-                missing.push(format!("line {}: {e}", a.line));
-            }
-        }
-    }
-    if !missing.is_empty() {
-        let shown: Vec<String> = missing.iter().take(20).cloned().collect();
-        return Err(usage(
-            format!(
-                "answers `{}` lack fields the rubric needs ({} problem(s)):\n    {}",
-                args.answers.display(),
-                missing.len(),
-                shown.join("\n    ")
-            ),
-            "add the missing fields, or leave those criteria out with `--criteria`",
-        ));
-    }
     let anchors = match &args.anchors {
         Some(p) => {
             let labels = read_labels(p)?;
@@ -184,13 +162,56 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
         }
         None => None,
     };
-    Ok(Prepared {
+    let p = Prepared {
         answers,
         rubric,
         forms,
         anchors,
         templates_dir: args.templates.clone(),
-    })
+    };
+    check_forms(args, &p)?;
+    Ok(p)
+}
+
+/// Render every form of every item before any judge loads: missing fields are
+/// listed per item in one pass; a template that fails is reported once, as a
+/// template problem.
+fn check_forms(args: &GradeArgs, p: &Prepared) -> anyhow::Result<()> {
+    let mut missing = Vec::new();
+    for a in &p.answers {
+        for c in &p.rubric.criteria {
+            let anchors = p
+                .anchors
+                .as_ref()
+                .map(|pool| pool.for_item(&c.key, &a.question_id))
+                .unwrap_or_default();
+            match p.forms.grade(&p.rubric, a, c, args.reasoning, &anchors) {
+                Ok(_) => {}
+                Err(e @ RubricError::MissingField { .. }) => {
+                    missing.push(format!("line {}: {e}", a.line))
+                }
+                Err(e) => {
+                    return Err(anyhow::Error::new(e).context(format!(
+                        "cannot render the grading form for `{}` on `{}`",
+                        a.item_id(),
+                        c.key
+                    )))
+                }
+            }
+        }
+    }
+    if missing.is_empty() {
+        return Ok(());
+    }
+    Err(usage(
+        format!(
+            "answers `{}` lack fields the rubric needs ({} problem(s)):\n{}",
+            args.answers.display(),
+            missing.len(),
+            crate::data::list(&missing)
+        ),
+        "add the missing fields, or leave those criteria out with `--criteria`",
+    ))
 }
 
 /// Which judge a run uses, known before the model loads.

@@ -2,7 +2,10 @@
 //! the minijinja templates in `judge-templates/forms/` into a system message, a user
 //! message and the assistant prefill that ends at the score slot. Input: records and
 //! a `Criterion`. Output: `Form`. Never tokenises and never applies a chat template;
-//! the engine does that.
+//! the engine does that. Text from answers, questions, contexts, references and
+//! anchors is neutralised before rendering (`neutralise`): it cannot close the
+//! `<answer>` block or open a `##` section of the form. Rendering runs on a fuel
+//! budget, so a template with runaway loops fails instead of hanging.
 
 use std::path::Path;
 
@@ -16,6 +19,9 @@ use crate::data::AnswerRecord;
 const SYSTEM: &str = include_str!("../../judge-templates/forms/system.j2");
 const GRADE: &str = include_str!("../../judge-templates/forms/grade.j2");
 const PAIR: &str = include_str!("../../judge-templates/forms/pair.j2");
+
+/// Template instructions one render may execute; the bundled forms use a few hundred.
+pub const TEMPLATE_FUEL: u64 = 200_000;
 
 /// The assistant text that opens the score slot; the label follows it directly.
 pub const SCORE_PREFILL: &str = "Score: ";
@@ -64,7 +70,7 @@ impl Forms {
     /// Templates from a folder holding `system.j2`, `grade.j2` and `pair.j2`.
     pub fn from_dir(dir: &Path) -> Result<Self, RubricError> {
         let read = |n: &str| {
-            std::fs::read_to_string(dir.join(n)).map_err(|source| RubricError::Io {
+            std::fs::read_to_string(dir.join(n)).map_err(|source| RubricError::TemplateFile {
                 path: dir.join(n),
                 source,
             })
@@ -81,6 +87,7 @@ impl Forms {
         let mut env = Environment::new();
         env.set_keep_trailing_newline(false);
         env.set_undefined_behavior(minijinja::UndefinedBehavior::Strict);
+        env.set_fuel(Some(TEMPLATE_FUEL));
         for (name, text) in [
             ("system.j2", system),
             ("grade.j2", grade),
@@ -137,6 +144,15 @@ impl Forms {
             }
         }
         let needs = rubric.all_needs();
+        let item = neutral_item(item);
+        let anchors: Vec<Anchor> = anchors
+            .iter()
+            .map(|a| Anchor {
+                question: neutralise(&a.question),
+                answer: neutralise(&a.answer),
+                label: a.label.clone(),
+            })
+            .collect();
         let user = self.render(
             "grade.j2",
             context! {
@@ -176,14 +192,15 @@ impl Forms {
         show_reference: bool,
         show_context: bool,
     ) -> Result<Form, RubricError> {
+        let n = |t: &Option<String>, show: bool| t.as_deref().filter(|_| show).map(neutralise);
         let user = self.render(
             "pair.j2",
             context! {
-                question => first.question,
-                context => if show_context { first.context.clone() } else { None },
-                reference => if show_reference { first.reference.clone() } else { None },
-                first => first.answer,
-                second => second.answer,
+                question => neutralise(&first.question),
+                context => n(&first.context, show_context),
+                reference => n(&first.reference, show_reference),
+                first => neutralise(&first.answer),
+                second => neutralise(&second.answer),
                 criterion_question => criterion_question,
             },
         )?;
@@ -193,6 +210,67 @@ impl Forms {
             prefill: VERDICT_PREFILL.into(),
         })
     }
+}
+
+/// The record with every text field neutralised.
+fn neutral_item(item: &AnswerRecord) -> AnswerRecord {
+    AnswerRecord {
+        question: neutralise(&item.question),
+        answer: neutralise(&item.answer),
+        context: item.context.as_deref().map(neutralise),
+        reference: item.reference.as_deref().map(neutralise),
+        ..item.clone()
+    }
+}
+
+/// Text from an input with the form's delimiters made visibly different, so it
+/// cannot end the block it sits in or start a section: `<answer>` and `</answer>`
+/// (any case) become `‹answer›` and `‹/answer›`, and a `#` that opens a line
+/// becomes `＃` (fullwidth). Everything else is kept as written.
+pub fn neutralise(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    for (i, line) in text.split('\n').enumerate() {
+        if i > 0 {
+            out.push('\n');
+        }
+        let body = line.trim_start();
+        let indent = &line[..line.len() - body.len()];
+        out.push_str(indent);
+        let hashes = body.len() - body.trim_start_matches('#').len();
+        out.extend(std::iter::repeat_n('＃', hashes));
+        out.push_str(&neutral_tags(&body[hashes..]));
+    }
+    out
+}
+
+/// `<answer>` / `</answer>` in any case, with the angle brackets replaced.
+fn neutral_tags(s: &str) -> String {
+    let lower = s.to_ascii_lowercase();
+    let mut out = String::with_capacity(s.len());
+    let mut at = 0;
+    while let Some(k) = lower[at..].find('<') {
+        let start = at + k;
+        let rest = &lower[start..];
+        let len = ["<answer>", "</answer>"]
+            .iter()
+            .find(|t| rest.starts_with(*t))
+            .map(|t| t.len());
+        out.push_str(&s[at..start]);
+        match len {
+            Some(len) => {
+                out.push('‹');
+                out.push_str(&s[start + 1..start + len - 1]);
+                out.push('›');
+                at = start + len;
+            }
+            None => {
+                out.push('<');
+                at = start + 1;
+            }
+        }
+    }
+    out.push_str(&s[at..]);
+    out
 }
 
 #[cfg(test)]
