@@ -6,7 +6,9 @@
 //!
 //! Base models without a template get a plain format with no control tokens:
 //! `System:\n{content}\n\nUser:\n{content}\n\nAssistant:\n{content}\n\n`, ending in
-//! `Assistant:\n` when a generation prompt is asked for.
+//! `Assistant:\n` when a generation prompt is asked for. Plain text has no control
+//! tokens, so content lines that begin with a role label (`User:`, any case) are
+//! quoted with `| ` and answer text cannot forge a turn.
 //!
 //! BOS: templates often start with `{{ bos_token }}`, while the tokenizer adds BOS
 //! itself when `tokenizer.ggml.add_bos_token` is true. `render` keeps the string as
@@ -262,6 +264,22 @@ fn fill(skeleton: &str, msgs: &[ChatMessage], trimmed: bool) -> Result<Vec<Segme
     Ok(segments)
 }
 
+/// Content with every line that starts like a plain-format turn quoted with `| `.
+fn quote_role_lines(content: &str) -> String {
+    let forged = |line: &str| {
+        let l = line.trim_start().to_ascii_lowercase();
+        ["system:", "user:", "assistant:"].iter().any(|r| l.starts_with(r))
+    };
+    if !content.lines().any(forged) {
+        return content.to_string();
+    }
+    content
+        .split('\n')
+        .map(|line| if forged(line) { format!("| {line}") } else { line.to_string() })
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
 /// The documented plain format for base models.
 fn plain_segments(msgs: &[ChatMessage], add_generation_prompt: bool) -> Vec<Segment> {
     let mut segments = Vec::new();
@@ -276,7 +294,7 @@ fn plain_segments(msgs: &[ChatMessage], add_generation_prompt: bool) -> Vec<Segm
         control.push_str(":\n");
         if !m.content.is_empty() {
             segments.push(Segment::Control(std::mem::take(&mut control)));
-            segments.push(Segment::Content(m.content.clone()));
+            segments.push(Segment::Content(quote_role_lines(&m.content)));
         }
         control.push_str("\n\n");
     }
