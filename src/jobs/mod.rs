@@ -88,6 +88,8 @@ pub struct Job<U> {
     spec: JobSpec,
     units: Vec<Unit<U>>,
     todo: Vec<usize>,
+    /// Keys of records already in the folder (a unit may be partly done).
+    done: HashSet<String>,
     lock: Option<RunLock>,
 }
 
@@ -109,25 +111,33 @@ impl<U> Job<U> {
         let has_manifest = store::check_manifest(&spec.dir, &spec.manifest)?;
         let mut job = Job {
             todo: Vec::new(),
+            done: HashSet::new(),
             lock: None,
             spec,
             units,
         };
-        job.todo = job.pending()?;
+        (job.todo, job.done) = job.pending()?;
         if job.todo.is_empty() {
             return Ok(job);
         }
         let lock = RunLock::acquire(&job.spec.dir)?;
+        check_free_space(&job.spec.dir)?;
         if !has_manifest && !store::check_manifest(&job.spec.dir, &job.spec.manifest)? {
             let text =
                 serde_json::to_string_pretty(&job.spec.manifest).expect("manifest serialises");
             store::write_atomic(&job.spec.dir.join(store::MANIFEST), text.as_bytes())?;
         }
-        check_free_space(&job.spec.dir)?;
         job.lock = Some(lock);
         // Another writer may have finished units between the first read and the lock.
-        job.todo = job.pending()?;
+        (job.todo, job.done) = job.pending()?;
         Ok(job)
+    }
+
+    /// Pause inside every appended line: a fault-test hook that widens the window
+    /// in which a kill leaves a torn line.
+    pub fn slow_appends(mut self, pause: Duration) -> Self {
+        self.spec.slow_append = Some(pause);
+        self
     }
 
     /// Units left to compute.
@@ -155,9 +165,9 @@ impl<U> Job<U> {
         store::write_atomic(&lock.dir().join(name), bytes)
     }
 
-    /// Indices of units with a record missing; an error names units whose inputs
-    /// changed since their records were computed.
-    fn pending(&self) -> Result<Vec<usize>, StoreError> {
+    /// Indices of units with a record missing, and the keys already stored; an
+    /// error names units whose inputs changed since their records were computed.
+    fn pending(&self) -> Result<(Vec<usize>, HashSet<String>), StoreError> {
         let path = self.spec.dir.join(self.spec.results);
         let loaded = store::read_lines(&path)?;
         let mut stored: HashMap<&str, Option<&str>> = HashMap::new();
@@ -186,7 +196,8 @@ impl<U> Job<U> {
                 units: crate::data::list(&changed),
             });
         }
-        Ok(todo)
+        let done = stored.keys().map(|k| k.to_string()).collect();
+        Ok((todo, done))
     }
 
     /// Compute every remaining unit with `work`, appending each record as soon as it
@@ -210,7 +221,7 @@ impl<U> Job<U> {
                     Ok(records) => {
                         for r in records {
                             let k = key(&r);
-                            if unit.records.contains(&k) {
+                            if unit.records.contains(&k) && !self.done.contains(&k) {
                                 app.append(&r, &k, &unit.input)?;
                                 computed += 1;
                             }
