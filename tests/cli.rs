@@ -326,7 +326,7 @@ fn rubric_show_renders_the_prompt_without_running_the_model() {
         "demo-data/answers.jsonl",
         "--item",
         "q31/assistant-v1",
-        "--criterion",
+        "--criteria",
         "correctness",
         "--json",
     ]);

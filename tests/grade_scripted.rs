@@ -5,7 +5,7 @@
 
 use std::path::PathBuf;
 
-use assize::cli::common::ModelArgs;
+use assize::cli::common::{ModelArgs, RubricArg};
 use assize::cli::grade::{grade_run, prepare, GradeArgs};
 use assize::cli::OutputArgs;
 use assize::judge::scripted::ScriptedJudge;
@@ -19,7 +19,9 @@ fn root() -> PathBuf {
 fn args(run_dir: PathBuf) -> GradeArgs {
     GradeArgs {
         answers: root().join("demo-data/answers.jsonl"),
-        rubric: root().join("judge-templates/rubrics/quick.toml"),
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/quick.toml")),
+        },
         criteria: vec![],
         model: ModelArgs {
             model: "scripted".into(),
@@ -168,7 +170,7 @@ fn run_folder_refuses_a_different_rubric() {
     let p = prepare(&a).expect("inputs");
     grade_run(&a, &p, &ScriptedJudge::default()).expect("run");
     let mut b = args(dir.path().join("run"));
-    b.rubric = root().join("judge-templates/rubrics/support.toml");
+    b.rubric.path = Some(root().join("judge-templates/rubrics/support.toml"));
     let pb = prepare(&b).expect("inputs");
     let err = grade_run(&b, &pb, &ScriptedJudge::default()).expect_err("mismatch");
     assert!(format!("{err:#}").contains("rubric changed"), "{err:#}");

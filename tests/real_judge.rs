@@ -8,7 +8,7 @@ use std::io::Write;
 use std::path::PathBuf;
 use std::sync::OnceLock;
 
-use assize::cli::common::ModelArgs;
+use assize::cli::common::{ModelArgs, RubricArg};
 use assize::cli::compare::{compare_run, CompareArgs};
 use assize::cli::grade::{grade_run, prepare, GradeArgs};
 use assize::cli::OutputArgs;
@@ -65,7 +65,9 @@ fn subset(ids: &[&str]) -> (tempfile::TempDir, PathBuf) {
 fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArgs {
     GradeArgs {
         answers,
-        rubric: root().join("judge-templates/rubrics/support.toml"),
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/support.toml")),
+        },
         criteria: criteria.iter().map(|s| s.to_string()).collect(),
         model: ModelArgs {
             model: "default".into(),
@@ -95,8 +97,10 @@ fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> 
     CompareArgs {
         answers,
         systems: vec![],
-        criterion: criterion.map(str::to_string),
-        rubric: root().join("judge-templates/rubrics/support.toml"),
+        criterion: criterion.map(str::to_string).into_iter().collect(),
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/support.toml")),
+        },
         model: ModelArgs {
             model: "default".into(),
             threads: 2,

@@ -122,7 +122,7 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
             "tests/fixtures/report/before",
             "--grades",
             "tests/fixtures/report/after",
-            "--compare",
+            "--pairs",
             "tests/fixtures/report/compare",
             "--labels",
             "tests/fixtures/report/labels.csv",

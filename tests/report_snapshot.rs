@@ -14,7 +14,7 @@
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
-use assize::cli::common::ModelArgs;
+use assize::cli::common::{ModelArgs, RubricArg};
 use assize::cli::compare::{compare_run, CompareArgs};
 use assize::cli::grade::{grade_run, prepare, GradeArgs};
 use assize::cli::OutputArgs;
@@ -67,7 +67,9 @@ fn peaked(values: &[f64], centre: f64, sharpness: f64, mass: f64) -> Vec<f64> {
 fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
     GradeArgs {
         answers: root().join("tests/fixtures/report/answers.jsonl"),
-        rubric: root().join("judge-templates/rubrics/support.toml"),
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/support.toml")),
+        },
         criteria: CRITERIA.iter().map(|c| c.0.to_string()).collect(),
         model: ModelArgs {
             model: "scripted".into(),
@@ -190,8 +192,10 @@ fn generate(dir: &Path) {
     let args = CompareArgs {
         answers: root().join("tests/fixtures/report/answers.jsonl"),
         systems: vec![],
-        criterion: None,
-        rubric: root().join("judge-templates/rubrics/support.toml"),
+        criterion: vec![],
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/support.toml")),
+        },
         model: ModelArgs {
             model: "scripted".into(),
             threads: 1,
@@ -254,7 +258,7 @@ fn report(extra: &[&str]) -> String {
         "tests/fixtures/report/before",
         "--grades",
         "tests/fixtures/report/after",
-        "--compare",
+        "--pairs",
         "tests/fixtures/report/compare",
         "--labels",
         "tests/fixtures/report/labels.csv",
@@ -321,7 +325,7 @@ fn markdown_and_json_reports_match_their_snapshots() {
     let stdout = report(&[
         "--markdown",
         md.to_str().expect("utf-8 path"),
-        "--json",
+        "--json-file",
         js.to_str().expect("utf-8 path"),
     ]);
     assert!(
@@ -361,7 +365,7 @@ fn without_output_flags_the_markdown_goes_to_stdout() {
 fn json_report_carries_schema_and_the_expected_cautions() {
     let tmp = tempfile::tempdir().expect("tmp");
     let js = tmp.path().join("r.json");
-    report(&["--json", js.to_str().expect("utf-8 path")]);
+    report(&["--json-file", js.to_str().expect("utf-8 path")]);
     let v: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(js).expect("json")).expect("valid JSON");
     assert_eq!(v["schema"], "assize.report/2");

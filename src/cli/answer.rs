@@ -30,7 +30,7 @@ pub struct AnswerArgs {
     #[arg(long, value_name = "NAME")]
     pub system: String,
     /// System message given to the model
-    #[arg(long, value_name = "TEXT", default_value = DEFAULT_INSTRUCTION)]
+    #[arg(long = "system-message", value_name = "TEXT", default_value = DEFAULT_INSTRUCTION)]
     pub instruction: String,
     /// Token limit per answer
     #[arg(long, value_name = "N", default_value_t = 120)]
@@ -38,7 +38,7 @@ pub struct AnswerArgs {
     /// Sampling temperature (0 = greedy, the default)
     #[arg(long, value_name = "T", default_value_t = 0.0)]
     pub temperature: f64,
-    /// Seed of the sampler
+    /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
     #[command(flatten)]

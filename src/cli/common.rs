@@ -14,6 +14,8 @@ use super::errors::usage;
 use super::models_dirs;
 use crate::engine::decoder::LoadOptions;
 use crate::engine::JudgeModel;
+use crate::rubric::{load_rubric, parse_rubric, Rubric};
+use crate::store::read_manifest;
 
 /// File name of the default judge inside the models folder.
 pub const DEFAULT_JUDGE: &str = "qwen2.5-coder-1.5b-instruct-q4_k_m.gguf";
@@ -25,6 +27,96 @@ pub const ALIASES: &[(&str, &str)] = &[
     ("gemma", "gemma-3-270m-q4_k_m.gguf"),
 ];
 
+/// The `--rubric` option, shared by every command that needs a rubric.
+#[derive(Debug, Clone, Args)]
+pub struct RubricArg {
+    /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file (default: the run's own when reading a run, else `support`)
+    #[arg(long = "rubric", short = 'r', value_name = "RUBRIC")]
+    pub path: Option<PathBuf>,
+}
+
+/// The rubric used when none is named and no run records one.
+pub const DEFAULT_RUBRIC: &str = "support";
+
+impl RubricArg {
+    /// What `--rubric` names, or the default rubric.
+    pub fn named(&self) -> PathBuf {
+        self.path
+            .clone()
+            .unwrap_or_else(|| PathBuf::from(DEFAULT_RUBRIC))
+    }
+
+    /// For a command that starts a run: the named rubric, else `support`.
+    pub fn load(&self) -> anyhow::Result<Rubric> {
+        Ok(load_rubric(&self.named())?)
+    }
+
+    /// For a command that reads a run folder: the rubric text recorded in its
+    /// manifest, unless `--rubric` names one; a named rubric whose criteria differ
+    /// from the run's is refused, since the grades would be read on the wrong scales.
+    pub fn load_for_run(&self, run: &Path) -> anyhow::Result<Rubric> {
+        let recorded = read_manifest(run)
+            .ok()
+            .flatten()
+            .and_then(|m| m.rubric_toml.map(|t| (m.inputs.get("rubric").cloned(), t)));
+        let Some(path) = &self.path else {
+            return match recorded {
+                Some((name, text)) => {
+                    let shown = PathBuf::from(name.unwrap_or_else(|| "(recorded rubric)".into()));
+                    parse_rubric(&shown, &text).map_err(|e| {
+                            anyhow::Error::new(e).context(usage(
+                                format!("the rubric recorded in `{}` cannot be read", run.display()),
+                                "name the rubric the run was graded with (`--rubric`)",
+                            ))
+                        })
+                }
+                None => {
+                    eprintln!(
+                        "warning: run `{}` does not record its rubric; reading it with the bundled `{DEFAULT_RUBRIC}` rubric\n  fix: name the rubric it was graded with (`--rubric NAME_OR_FILE`)",
+                        run.display()
+                    );
+                    Ok(load_rubric(Path::new(DEFAULT_RUBRIC))?)
+                }
+            };
+        };
+        let named = load_rubric(path)?;
+        if let Some((_, text)) = recorded {
+            let theirs = parse_rubric(path, &text).ok();
+            let same_scales = theirs.is_some_and(|t| {
+                t.criteria.iter().all(|c| {
+                    named
+                        .criterion(&c.key)
+                        .is_none_or(|n| n.scale == c.scale)
+                })
+            });
+            if !same_scales {
+                return Err(usage(
+                    format!(
+                        "rubric `{}` gives a criterion of run `{}` another scale than the rubric it was graded with",
+                        path.display(),
+                        run.display()
+                    ),
+                    "leave out `--rubric` to use the run's own rubric",
+                ));
+            }
+        }
+        Ok(named)
+    }
+}
+
+/// The single criterion a command takes from `--criteria`, if any; several are a
+/// usage error naming the command.
+pub fn one_criterion<'a>(keys: &'a [String], command: &str) -> anyhow::Result<Option<&'a String>> {
+    match keys {
+        [] => Ok(None),
+        [k] => Ok(Some(k)),
+        _ => Err(usage(
+            format!("`{command}` takes one criterion, got {}", keys.join(", ")),
+            format!("run `{command}` once per criterion"),
+        )),
+    }
+}
+
 /// Options that choose and load the judge model.
 #[derive(Debug, Clone, Args)]
 pub struct ModelArgs {
@@ -32,10 +124,10 @@ pub struct ModelArgs {
     #[arg(long, short = 'm', value_name = "MODEL", default_value = "default")]
     pub model: String,
     /// Kernel threads (0 = all cores); results are identical for the same count
-    #[arg(long, value_name = "N", default_value_t = 0)]
+    #[arg(long, value_name = "N", default_value_t = 0, value_parser = super::values::threads)]
     pub threads: usize,
     /// Cap on prompt length in tokens, below the model's trained context
-    #[arg(long, value_name = "TOKENS")]
+    #[arg(long = "max-context", value_name = "TOKENS")]
     pub context: Option<usize>,
 }
 

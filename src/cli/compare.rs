@@ -11,11 +11,14 @@ use anyhow::Context as _;
 use clap::Args;
 use serde::Serialize;
 
-use super::common::{default_run_dir, load_judge, ModelArgs};
+use super::common::{default_run_dir, load_judge, one_criterion, ModelArgs, RubricArg};
 use super::errors::usage;
 use super::grade::{shard_identity, shown_path, ModelId};
 use super::{print_json, OutputArgs};
-use crate::data::{read_answers, read_labels, read_preferences, AnswerRecord};
+use crate::data::{
+    read_answers, read_labels_checked, read_preferences, AnswerRecord, LabelRow, OtherCriteria,
+    PreferenceRow,
+};
 use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::pairwise::{judge_both_orders, OVERALL_QUESTION};
 use crate::judge::{Backend, GradeRecord, PairRecord};
@@ -24,7 +27,7 @@ use crate::probes::ranking::{rank, Ranking};
 use crate::probes::selfpref::{self_preference, SelfPreference};
 use crate::probes::{pair_outcomes, PairOutcome};
 use crate::rubric::forms::Forms;
-use crate::rubric::{load_rubric, Need};
+use crate::rubric::{Need, Rubric};
 use crate::stats::pairwise::{position_bias, PositionBias};
 use crate::store::{read_records, Manifest};
 
@@ -34,48 +37,49 @@ pub const PAIRS_FILE: &str = "pairs.jsonl";
 /// Arguments of `assize compare`.
 #[derive(Debug, Clone, Args)]
 pub struct CompareArgs {
-    /// Answers of two or more systems to the same questions (JSONL or CSV)
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     /// Compare only these systems (comma-separated; default: all)
     #[arg(long, value_name = "NAMES", value_delimiter = ',')]
     pub systems: Vec<String>,
-    /// Compare on this rubric criterion instead of overall quality
-    #[arg(long, value_name = "KEY")]
-    pub criterion: Option<String>,
-    /// Rubric holding `--criterion`
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
+    /// Rubric criteria to use, as comma-separated keys (default: all; `compare` and `rubric show` take one)
+    #[arg(long = "criteria", value_name = "KEYS", value_delimiter = ',')]
+    pub criterion: Vec<String>,
+    #[command(flatten)]
+    pub rubric: RubricArg,
     #[command(flatten)]
     pub model: ModelArgs,
-    /// The `written_by` value marking answers the judge's own model wrote (default: the model file name without `.gguf`)
+    /// The `written_by` value marking answers the judge's own model wrote (default: the judge's model file name without `.gguf`)
     #[arg(long, value_name = "NAME")]
     pub judge_name: Option<String>,
-    /// Human pairwise preferences, for the self-preference probe
+    /// Human pairwise preferences (question_id, system_a, system_b, rater, preferred)
     #[arg(long, value_name = "FILE")]
     pub preferences: Option<PathBuf>,
-    /// A grading run folder and human labels (`--labels`), for the pointwise self-preference probe
-    #[arg(long, value_name = "DIR", requires = "labels")]
+    /// Grading run folder (holds `grades.jsonl`)
+    ///
+    /// With `--labels`, adds the pointwise self-preference probe.
+    #[arg(long, short = 'g', value_name = "DIR", requires = "labels")]
     pub grades: Option<PathBuf>,
-    /// Human labels (long form), used with `--grades`
-    #[arg(long, value_name = "FILE")]
+    /// Human labels in long form (question_id, system, criterion, rater, score)
+    #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: Option<PathBuf>,
-    /// Bootstrap resamples for the ranking intervals
-    #[arg(long, value_name = "N", default_value_t = 1000)]
+    /// Bootstrap resamples per interval
+    #[arg(long, value_name = "N", default_value_t = 2000, value_parser = super::values::at_least_one)]
     pub resamples: usize,
     /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
-    /// Run folder (default: `runs/compare-HASH`)
+    /// Run folder (default: `runs/KIND-HASH`, named after what the results depend on)
     #[arg(long, value_name = "DIR")]
     pub run_dir: Option<PathBuf>,
-    /// Take only shard K of N (K from 0); `env/N` or `env` reads K (and N) from a Kubernetes Indexed Job or Slurm job array
+    /// Take only shard K of N (K from 0), for running one job on many machines; `env/N` or `env` reads K (and N) from a Kubernetes Indexed Job or Slurm job array
     #[arg(long, value_name = "K/N", value_parser = Shard::parse)]
     pub shard: Option<Shard>,
-    /// Judge at most this many questions (in file order)
-    #[arg(long, value_name = "N")]
+    /// Use at most this many questions (in file order), e.g. for a quick look
+    #[arg(long = "max-questions", value_name = "N", value_parser = super::values::at_least_one)]
     pub limit: Option<usize>,
-    /// Folder with form templates replacing the built-in ones
+    /// Folder with form templates (`system.j2`, `grade.j2`, `pair.j2`) replacing the built-in ones
     #[arg(long, value_name = "DIR")]
     pub templates: Option<PathBuf>,
     #[command(flatten)]
@@ -166,6 +170,10 @@ pub struct CompareSetup {
     pub pairs: Vec<(AnswerRecord, AnswerRecord)>,
     /// The rubric's text and hash, when a criterion is compared.
     pub rubric: Option<(String, String)>,
+    /// Human preferences (`--preferences`), read before any judging.
+    pub preferences: Option<Vec<PreferenceRow>>,
+    /// Grades, labels and the run's rubric (`--grades`, `--labels`), read before any judging.
+    pub grades_labels: Option<(Vec<GradeRecord>, Vec<LabelRow>, Rubric)>,
 }
 
 /// Read and check the answers, systems, criterion and templates.
@@ -191,12 +199,12 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
         Some(d) => Forms::from_dir(d)?,
         None => Forms::builtin()?,
     };
-    let (criterion, question, show_ref, show_ctx, rubric) = match &args.criterion {
+    let (criterion, question, show_ref, show_ctx, rubric) = match one_criterion(&args.criterion, "compare")? {
         Some(k) => {
-            let rubric = load_rubric(&args.rubric)?;
+            let rubric = args.rubric.load()?;
             let c = rubric.criterion(k).ok_or_else(|| {
                 usage(
-                    format!("rubric `{}` has no criterion `{k}`", args.rubric.display()),
+                    format!("rubric `{}` has no criterion `{k}`", args.rubric.named().display()),
                     format!(
                         "use one of: {}",
                         rubric
@@ -237,6 +245,25 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
             .pair(a, b, &question, show_ref, show_ctx)
             .with_context(|| format!("cannot render the pairwise form for `{}`", a.question_id))?;
     }
+    let preferences = args
+        .preferences
+        .as_ref()
+        .map(|p| read_preferences(p))
+        .transpose()?;
+    let grades_labels = match (&args.grades, &args.labels) {
+        (Some(g), Some(l)) => {
+            let recs: Vec<GradeRecord> = read_records(&g.join(super::grade::GRADES_FILE))?;
+            let rubric = args.rubric.load_for_run(g)?;
+            let labels = read_labels_checked(
+                l,
+                &rubric.scales(),
+                Some(&answers),
+                OtherCriteria::Refuse,
+            )?;
+            Some((recs, labels, rubric))
+        }
+        _ => None,
+    };
     Ok(CompareSetup {
         answers,
         forms,
@@ -246,6 +273,8 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
         show_ctx,
         pairs,
         rubric,
+        preferences,
+        grades_labels,
     })
 }
 
@@ -258,7 +287,7 @@ pub fn open_compare_job(
     let mut inputs = std::collections::BTreeMap::new();
     inputs.insert("answers".to_string(), shown_path(&args.answers));
     if s.rubric.is_some() {
-        inputs.insert("rubric".to_string(), shown_path(&args.rubric));
+        inputs.insert("rubric".to_string(), shown_path(&args.rubric.named()));
     }
     let manifest = Manifest {
         kind: "compare".into(),
@@ -360,7 +389,7 @@ pub fn finish_compare(
                         .collect::<Vec<_>>()
                 )
             ),
-            "shorten those answers or raise `--context`, then run the same command again to finish",
+            "shorten those answers or raise `--max-context`, then run the same command again to finish",
         ));
     }
     let criterion = s.criterion.clone();
@@ -375,25 +404,12 @@ pub fn finish_compare(
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
-    let prefs = args
-        .preferences
-        .as_ref()
-        .map(|p| read_preferences(p))
-        .transpose()?;
-    let grades_labels = match (&args.grades, &args.labels) {
-        (Some(g), Some(l)) => {
-            let recs: Vec<GradeRecord> = read_records(&g.join(super::grade::GRADES_FILE))?;
-            let labels = read_labels(l)?;
-            Some((recs, labels, load_rubric(&args.rubric)?))
-        }
-        _ => None,
-    };
     let self_pref = self_preference(
         &judge_name,
         &outcomes,
         answers,
-        prefs.as_deref(),
-        grades_labels
+        s.preferences.as_deref(),
+        s.grades_labels
             .as_ref()
             .map(|(g, l, r)| (g.as_slice(), l.as_slice(), r)),
         args.seed,

@@ -14,12 +14,12 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
+use super::common::RubricArg;
 use super::errors::usage;
 use super::{print_json, OutputArgs};
-use crate::data::read_labels;
+use crate::data::{read_labels_checked, OtherCriteria};
 use crate::judge::anchors::consensus_index;
 use crate::judge::GradeRecord;
-use crate::rubric::load_rubric;
 use crate::stats::ppi::{classical_mean, ppi_mean_with_lambda, MeanEstimate};
 use crate::store::read_records;
 
@@ -29,20 +29,21 @@ pub struct EstimateArgs {
     /// Grading run folder (holds `grades.jsonl`)
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
-    /// Human labels in long form (consensus = lower median of the raters)
+    /// Human labels in long form (question_id, system, criterion, rater, score)
+    ///
+    /// The consensus of an item is the lower median of its raters' scores.
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
-    /// Rubric the grades were made with
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
+    #[command(flatten)]
+    pub rubric: RubricArg,
     /// Use only this share of the labelled items (seeded), holding the rest out to show
     /// how close the estimate gets to the full human mean
-    #[arg(long, value_name = "SHARE")]
+    #[arg(long, value_name = "SHARE", value_parser = super::values::share)]
     pub label_share: Option<f64>,
     /// Interval coverage
-    #[arg(long, value_name = "LEVEL", default_value_t = 0.95)]
+    #[arg(long, value_name = "LEVEL", default_value_t = 0.95, value_parser = super::values::level)]
     pub level: f64,
-    /// Seed of the labelled-subset draw
+    /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
     #[command(flatten)]
@@ -91,8 +92,8 @@ pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
             "use e.g. 0.95",
         ));
     }
-    let rubric = load_rubric(&args.rubric)?;
-    let labels = read_labels(&args.labels)?;
+    let rubric = args.rubric.load_for_run(&args.grades)?;
+    let labels = read_labels_checked(&args.labels, &rubric.scales(), None, OtherCriteria::Refuse)?;
     let grades: Vec<GradeRecord> = read_records(&args.grades.join(super::grade::GRADES_FILE))?;
     if grades.is_empty() {
         return Err(usage(

@@ -2,7 +2,6 @@
 //! in a resumable run folder, and print per-system summaries. Never computes a
 //! statistic itself; `judge` and `stats` do.
 
-use std::collections::HashMap;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
@@ -10,16 +9,16 @@ use anyhow::Context as _;
 use clap::Args;
 use serde::Serialize;
 
-use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, ModelArgs};
+use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, ModelArgs, RubricArg};
 use super::errors::usage;
 use super::{print_json, OutputArgs};
-use crate::data::{check_labels, read_answers, read_labels, AnswerRecord};
+use crate::data::{read_answers, read_labels_checked, AnswerRecord, OtherCriteria};
 use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::anchors::AnchorPool;
 use crate::judge::grade::{grade_item, summarize, GradeOptions, SummaryRow};
 use crate::judge::{Backend, GradeRecord};
 use crate::rubric::forms::Forms;
-use crate::rubric::{load_rubric, Rubric, RubricError};
+use crate::rubric::{Rubric, RubricError};
 use crate::store::Manifest;
 
 /// Results file of a grading run.
@@ -28,18 +27,17 @@ pub const GRADES_FILE: &str = "grades.jsonl";
 /// Arguments of `assize grade`.
 #[derive(Debug, Clone, Args)]
 pub struct GradeArgs {
-    /// Answers to grade (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by)
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
-    /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
-    /// Grade only these criteria (comma-separated keys)
+    #[command(flatten)]
+    pub rubric: RubricArg,
+    /// Rubric criteria to use, as comma-separated keys (default: all; `compare` and `rubric show` take one)
     #[arg(long, value_name = "KEYS", value_delimiter = ',')]
     pub criteria: Vec<String>,
     #[command(flatten)]
     pub model: ModelArgs,
-    /// Let the judge write an assessment following the evaluation steps before the score
+    /// Reasoning first: the judge writes an assessment following the evaluation steps, then the score
     #[arg(long)]
     pub reasoning: bool,
     /// Let the judge write each criterion's evaluation steps once (cached in the run folder) instead of the rubric's
@@ -55,19 +53,19 @@ pub struct GradeArgs {
     #[arg(long, value_name = "N", default_value_t = 3)]
     pub anchor_count: usize,
     /// Flag records whose captured probability mass is below this
-    #[arg(long, value_name = "P", default_value_t = 0.5)]
+    #[arg(long, value_name = "P", default_value_t = 0.5, value_parser = super::values::probability)]
     pub low_mass: f64,
-    /// Seed of every random draw (anchor choice, bootstrap, sampling)
+    /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
-    /// Run folder (default: `runs/grade-HASH`, derived from model, data, rubric and options)
+    /// Run folder (default: `runs/KIND-HASH`, named after what the results depend on)
     #[arg(long, value_name = "DIR")]
     pub run_dir: Option<PathBuf>,
     /// Take only shard K of N (K from 0), for running one job on many machines; `env/N` or `env` reads K (and N) from a Kubernetes Indexed Job or Slurm job array
     #[arg(long, value_name = "K/N", value_parser = Shard::parse)]
     pub shard: Option<Shard>,
-    /// Grade at most this many answers (in file order), e.g. for a quick look
-    #[arg(long, value_name = "N")]
+    /// Use at most this many answers (in file order), e.g. for a quick look
+    #[arg(long = "max-answers", value_name = "N", value_parser = super::values::at_least_one)]
     pub limit: Option<usize>,
     /// Compute every form from scratch instead of forking shared prefixes (for benchmarks)
     #[arg(long)]
@@ -111,7 +109,7 @@ pub struct FailedItem {
 
 /// Everything a grading run needs, loaded and checked.
 pub struct Prepared {
-    /// Answers in file order (after `--limit`).
+    /// Answers in file order (after `--max-answers`).
     pub answers: Vec<AnswerRecord>,
     /// Rubric after `--criteria`.
     pub rubric: Rubric,
@@ -130,7 +128,7 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
     if let Some(n) = args.limit {
         answers.truncate(n);
     }
-    let mut rubric = load_rubric(&args.rubric)?;
+    let mut rubric = args.rubric.load()?;
     if !args.criteria.is_empty() {
         rubric.select(&args.criteria)?;
     }
@@ -140,18 +138,8 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
     };
     let anchors = match &args.anchors {
         Some(p) => {
-            let labels = read_labels(p)?;
-            let scales: HashMap<String, Vec<String>> = rubric
-                .criteria
-                .iter()
-                .map(|c| (c.key.clone(), c.scale.labels()))
-                .collect();
-            let relevant: Vec<_> = labels
-                .iter()
-                .filter(|l| scales.contains_key(&l.criterion))
-                .cloned()
-                .collect();
-            check_labels(p, &relevant, &all_answers, &scales)?;
+            let labels =
+                read_labels_checked(p, &rubric.scales(), Some(&all_answers), OtherCriteria::Skip)?;
             Some(AnchorPool::build(
                 &all_answers,
                 &labels,
@@ -264,7 +252,7 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, model: &ModelId) -> anyhow::Resu
     ];
     let mut inputs = std::collections::BTreeMap::new();
     inputs.insert("answers".to_string(), shown_path(&args.answers));
-    inputs.insert("rubric".to_string(), shown_path(&args.rubric));
+    inputs.insert("rubric".to_string(), shown_path(&args.rubric.named()));
     if let Some(a) = &args.anchors {
         options.push(format!("anchors_sha256={}", file_sha256(a)?));
         options.push(format!("anchor_count={}", args.anchor_count));
@@ -533,7 +521,7 @@ pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
             report.failed.len(),
             report.run_dir
         );
-        eprintln!("  fix: shorten those answers or raise `--context`, then run the same command again to finish");
+        eprintln!("  fix: shorten those answers or raise `--max-context`, then run the same command again to finish");
         return Ok(ExitCode::from(2));
     }
     Ok(ExitCode::SUCCESS)

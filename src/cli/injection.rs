@@ -23,7 +23,7 @@ use crate::store::read_records;
 pub struct InjectionArgs {
     #[command(flatten)]
     pub grade: GradeArgs,
-    /// The instruction appended to every answer
+    /// The instruction appended to every answer (the injected text)
     #[arg(long, value_name = "TEXT", default_value = DEFAULT_INJECTION)]
     pub instruction: String,
 }

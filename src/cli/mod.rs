@@ -20,6 +20,7 @@ pub mod model;
 pub mod overlap;
 pub mod report;
 pub mod rubric;
+pub mod values;
 pub mod vet;
 
 pub use errors::{exit_code_for, render_error, GateFailed};

@@ -71,8 +71,8 @@ pub struct NextArgs {
     /// How many tokens to show
     #[arg(long, short = 'k', value_name = "K", default_value_t = 10)]
     pub top: usize,
-    /// Kernel threads (0 = all cores)
-    #[arg(long, value_name = "N", default_value_t = 0)]
+    /// Kernel threads (0 = all cores); results are identical for the same count
+    #[arg(long, value_name = "N", default_value_t = 0, value_parser = super::values::threads)]
     pub threads: usize,
     #[command(flatten)]
     pub output: OutputArgs,
@@ -90,8 +90,8 @@ pub struct BenchArgs {
     /// Tokens to generate after the prompt
     #[arg(long, value_name = "N", default_value_t = 64)]
     pub gen_tokens: usize,
-    /// Kernel threads (0 = all cores)
-    #[arg(long, value_name = "N", default_value_t = 0)]
+    /// Kernel threads (0 = all cores); results are identical for the same count
+    #[arg(long, value_name = "N", default_value_t = 0, value_parser = super::values::threads)]
     pub threads: usize,
     #[command(flatten)]
     pub output: OutputArgs,

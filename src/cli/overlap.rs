@@ -17,7 +17,9 @@ use crate::overlap::{score_corpus, score_pair, OverlapOptions, OverlapScores, To
 /// Arguments of `assize overlap`.
 #[derive(Debug, Clone, Args)]
 pub struct OverlapArgs {
-    /// Answers with a `reference` field (JSONL or CSV)
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
+    ///
+    /// Only answers with a `reference` field are scored.
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     /// Porter-stem words for ROUGE

@@ -12,11 +12,12 @@ use std::time::{SystemTime, UNIX_EPOCH};
 use anyhow::Context as _;
 use clap::Args;
 
+use super::common::RubricArg;
+use super::OutputArgs;
 use super::errors::usage;
-use crate::data::{read_answers, read_labels, read_preferences};
+use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences};
 use crate::judge::{GradeRecord, PairRecord};
 use crate::report::{self, CompareInput, Inputs, Report, RunInput};
-use crate::rubric::load_rubric;
 use crate::store::{read_records, Manifest, MANIFEST};
 
 /// Arguments of `assize report`.
@@ -26,25 +27,35 @@ use crate::store::{read_records, Manifest, MANIFEST};
 /// byte-identical reports.
 #[derive(Debug, Clone, Args)]
 pub struct ReportArgs {
-    /// Grading run folder; repeat to show runs side by side, the first being the baseline ("before")
+    /// Grading run folder (holds `grades.jsonl`)
+    ///
+    /// Repeat to show runs side by side, the first being the baseline ("before").
     #[arg(long, short = 'g', value_name = "DIR", required = true)]
     pub grades: Vec<PathBuf>,
-    /// Comparison run folder (holds `pairs.jsonl`): position bias and ranking
-    #[arg(long, value_name = "DIR")]
+    /// Comparison run folder (holds `pairs.jsonl`)
+    ///
+    /// Adds position bias, the ranking, length and self-preference.
+    #[arg(long = "pairs", value_name = "DIR")]
     pub compare: Option<PathBuf>,
-    /// Human labels in long form, to vet the judge (trust verdicts, confusion, calibration)
+    /// Human labels in long form (question_id, system, criterion, rater, score)
+    ///
+    /// Vets the judge: trust verdicts, confusion, calibration.
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: Option<PathBuf>,
-    /// Human pairwise preferences, to check the comparison run's verdicts
+    /// Human pairwise preferences (question_id, system_a, system_b, rater, preferred)
+    ///
+    /// Checks the comparison run's verdicts.
     #[arg(long, value_name = "FILE", requires = "compare")]
     pub preferences: Option<PathBuf>,
-    /// Rubric the runs were graded with
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
-    /// Answers file: texts of flagged items, answer lengths for the length probe and `written_by` for the self-preference probe
+    #[command(flatten)]
+    pub rubric: RubricArg,
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
+    ///
+    /// Gives the texts of listed items, answer lengths for the length probe and
+    /// `written_by` for the self-preference probe.
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: Option<PathBuf>,
-    /// The `written_by` value marking answers the comparison judge's own model wrote (default: its model file name without `.gguf`)
+    /// The `written_by` value marking answers the judge's own model wrote (default: the judge's model file name without `.gguf`)
     #[arg(long, value_name = "NAME")]
     pub judge_name: Option<String>,
     /// Write the HTML report (one self-contained file) here
@@ -54,14 +65,16 @@ pub struct ReportArgs {
     #[arg(long, value_name = "FILE")]
     pub markdown: Option<PathBuf>,
     /// Write the JSON report (schema `assize.report/2`) here
-    #[arg(long, value_name = "FILE")]
-    pub json: Option<PathBuf>,
-    /// Seed of every random draw (bootstrap intervals)
+    #[arg(long = "json-file", value_name = "FILE")]
+    pub json_file: Option<PathBuf>,
+    /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
     /// Bootstrap resamples per interval
-    #[arg(long, value_name = "N", default_value_t = 1000)]
+    #[arg(long, value_name = "N", default_value_t = 2000, value_parser = super::values::at_least_one)]
     pub resamples: usize,
+    #[command(flatten)]
+    pub output: OutputArgs,
 }
 
 fn manifest_model(dir: &Path) -> String {
@@ -145,7 +158,7 @@ fn now() -> String {
 
 /// Load every input and assemble the report.
 pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
-    let rubric = load_rubric(&args.rubric)?;
+    let rubric = args.rubric.load_for_run(&args.grades[0])?;
     let names = run_names(&args.grades);
     let mut runs = Vec::new();
     for (dir, name) in args.grades.iter().zip(names) {
@@ -170,19 +183,17 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
         }
         None => None,
     };
-    let labels = args.labels.as_deref().map(read_labels).transpose()?;
+    let answers = args.answers.as_deref().map(read_answers).transpose()?;
+    let labels = args
+        .labels
+        .as_deref()
+        .map(|p| read_labels_checked(p, &rubric.scales(), answers.as_deref(), OtherCriteria::Refuse))
+        .transpose()?;
     let preferences = args
         .preferences
         .as_deref()
         .map(read_preferences)
         .transpose()?;
-    let answers = args.answers.as_deref().map(read_answers).transpose()?;
-    if args.resamples == 0 {
-        return Err(usage(
-            "`--resamples 0` leaves no bootstrap resample",
-            "use `--resamples 1000` or more",
-        ));
-    }
     let inputs = Inputs {
         runs: &runs,
         compare: compare.as_ref(),
@@ -218,13 +229,15 @@ pub fn run(args: ReportArgs) -> anyhow::Result<ExitCode> {
     if let Some(p) = &args.html {
         write(p, &report::html::render(&r)?, "HTML")?;
     }
-    if let Some(p) = &args.json {
+    if let Some(p) = &args.json_file {
         write(p, &report::json::render(&r), "JSON")?;
     }
     if let Some(p) = &args.markdown {
         write(p, &report::markdown::render(&r), "Markdown")?;
     }
-    if args.html.is_none() && args.json.is_none() && args.markdown.is_none() {
+    if args.output.json {
+        print!("{}", report::json::render(&r));
+    } else if args.html.is_none() && args.json_file.is_none() && args.markdown.is_none() {
         print!("{}", report::markdown::render(&r));
     }
     Ok(ExitCode::SUCCESS)

@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use clap::{Args, Subcommand};
 use serde::Serialize;
 
-use super::common::resolve_model;
+use super::common::{one_criterion, resolve_model, RubricArg};
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::read_answers;
@@ -58,22 +58,24 @@ pub struct CheckArgs {
 /// Arguments of `assize rubric show`.
 #[derive(Debug, Args)]
 pub struct ShowArgs {
-    /// Rubric: a bundled one by name (`support`, `quick`) or a TOML file
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
-    /// Answers file
+    #[command(flatten)]
+    pub rubric: RubricArg,
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     /// The answer to show, as `QUESTION_ID/SYSTEM`
     #[arg(long, value_name = "ID")]
     pub item: String,
-    /// Criterion key (default: the rubric's first)
-    #[arg(long, value_name = "KEY")]
-    pub criterion: Option<String>,
-    /// Show the reasoning-first form
+    /// Rubric criteria to use, as comma-separated keys (default: all; `compare` and `rubric show` take one)
+    #[arg(long = "criteria", value_name = "KEYS", value_delimiter = ',')]
+    pub criterion: Vec<String>,
+    /// Reasoning first: the judge writes an assessment following the evaluation steps, then the score
     #[arg(long)]
     pub reasoning: bool,
-    /// Render through this judge's chat template and count its tokens (only the file header is read)
+    /// Judge model: a GGUF path, or `default`, `small`, `gemma` for the fetched judges
+    ///
+    /// The form is rendered through its chat template and its tokens counted (only the
+    /// file header is read).
     #[arg(long, short = 'm', value_name = "MODEL", default_value = "default")]
     pub model: String,
     /// Show the form messages without any chat template
@@ -178,7 +180,7 @@ pub struct ShownPrompt {
 }
 
 fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
-    let rubric = load_rubric(&args.rubric)?;
+    let rubric = args.rubric.load()?;
     let answers = read_answers(&args.answers)?;
     let item = answers
         .iter()
@@ -189,10 +191,10 @@ fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
                 "name the answer as `QUESTION_ID/SYSTEM`, e.g. `q01/assistant-v1`",
             )
         })?;
-    let c = match &args.criterion {
+    let c = match one_criterion(&args.criterion, "rubric show")? {
         Some(k) => rubric.criterion(k).ok_or_else(|| {
             usage(
-                format!("rubric `{}` has no criterion `{k}`", args.rubric.display()),
+                format!("rubric `{}` has no criterion `{k}`", args.rubric.named().display()),
                 format!(
                     "use one of: {}",
                     rubric

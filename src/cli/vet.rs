@@ -3,19 +3,19 @@
 //! with human preferences, and reference-based metrics as baselines; an optional gate
 //! for CI pipelines. Never runs the model: it reads finished run folders.
 
-use std::collections::HashMap;
 use std::path::PathBuf;
 use std::process::ExitCode;
 
 use clap::Args;
 use serde::Serialize;
 
+use super::common::RubricArg;
 use super::errors::{usage, GateFailed};
 use super::{print_json, OutputArgs};
-use crate::data::{check_labels, read_answers, read_labels, read_preferences, AnswerRecord};
+use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences, AnswerRecord};
 use crate::judge::{GradeRecord, PairRecord};
 use crate::overlap::{score_pair, OverlapOptions};
-use crate::rubric::{load_rubric, Rubric};
+use crate::rubric::Rubric;
 use crate::store::read_records;
 use crate::vet::{
     gate_failures, report_text, vet, vet_pairs, PairVetReport, Variant, VariantKind, VetOptions,
@@ -25,32 +25,35 @@ use crate::vet::{
 /// Arguments of `assize vet`.
 #[derive(Debug, Clone, Args)]
 pub struct VetArgs {
-    /// Grading run folder of the judge to vet (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`)
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
-    /// Human labels in long form: question_id, system, criterion, rater, score
+    /// Human labels in long form (question_id, system, criterion, rater, score)
     #[arg(long, short = 'l', value_name = "FILE")]
     pub labels: PathBuf,
-    /// Rubric the grades were made with
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
+    #[command(flatten)]
+    pub rubric: RubricArg,
     /// More grading runs to show side by side, as `NAME=DIR` (e.g. `reasoning=runs/grade-…`)
     #[arg(long, value_name = "NAME=DIR")]
     pub variant: Vec<String>,
-    /// Answers file: adds reference-based metrics (ROUGE-L, BLEU, chrF, token F1) as baselines
-    #[arg(long, value_name = "FILE")]
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
+    ///
+    /// Adds reference-based metrics (ROUGE-L, BLEU, chrF, token F1) as baselines.
+    #[arg(long = "answers", short = 'a', value_name = "FILE")]
     pub baselines: Option<PathBuf>,
-    /// Comparison run folder (holds `pairs.jsonl`) to vet against `--preferences`
+    /// Comparison run folder (holds `pairs.jsonl`)
+    ///
+    /// Its verdicts are vetted against `--preferences`.
     #[arg(long, value_name = "DIR", requires = "preferences")]
     pub pairs: Option<PathBuf>,
-    /// Human pairwise preferences: question_id, system_a, system_b, rater, preferred
+    /// Human pairwise preferences (question_id, system_a, system_b, rater, preferred)
     #[arg(long, value_name = "FILE")]
     pub preferences: Option<PathBuf>,
     /// Exit with status 1 when a criterion's judge quadratic kappa has a 95% lower bound below this
     #[arg(long, value_name = "KAPPA")]
     pub min_kappa: Option<f64>,
     /// Bootstrap resamples per interval
-    #[arg(long, value_name = "N", default_value_t = 2000)]
+    #[arg(long, value_name = "N", default_value_t = 2000, value_parser = super::values::at_least_one)]
     pub resamples: usize,
     /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
@@ -124,8 +127,9 @@ fn baseline_records(
 
 /// Compute the vetting reports.
 pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
-    let rubric = load_rubric(&args.rubric)?;
-    let labels = read_labels(&args.labels)?;
+    let rubric = args.rubric.load_for_run(&args.grades)?;
+    let answers = args.baselines.as_deref().map(read_answers).transpose()?;
+    let labels = read_labels_checked(&args.labels, &rubric.scales(), answers.as_deref(), OtherCriteria::Refuse)?;
     let primary = load_grades(&args.grades)?;
     let mut extra = Vec::new();
     for v in &args.variant {
@@ -137,22 +141,8 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         };
         extra.push((name.to_string(), load_grades(std::path::Path::new(dir))?));
     }
-    let baselines = match &args.baselines {
-        Some(p) => {
-            let answers = read_answers(p)?;
-            let scales: HashMap<String, Vec<String>> = rubric
-                .criteria
-                .iter()
-                .map(|c| (c.key.clone(), c.scale.labels()))
-                .collect();
-            let known: Vec<_> = labels
-                .iter()
-                .filter(|l| scales.contains_key(&l.criterion))
-                .cloned()
-                .collect();
-            check_labels(&args.labels, &known, &answers, &scales)?;
-            baseline_records(&answers, &rubric)?
-        }
+    let baselines = match &answers {
+        Some(answers) => baseline_records(answers, &rubric)?,
         None => Vec::new(),
     };
     let mut variants = vec![

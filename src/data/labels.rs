@@ -2,7 +2,7 @@
 //! `criterion`, `rater`, `score`) and pairwise preferences (`question_id`,
 //! `system_a`, `system_b`, `rater`, `preferred` = a system name or `tie`).
 //! Input: JSONL or CSV. Output: rows, checked for shape here and against the answers
-//! and rubric by `check_labels`. Never guesses a missing value.
+//! and rubric by `read_labels_checked`, in one pass. Never guesses a missing value.
 
 use std::collections::{HashMap, HashSet};
 use std::path::Path;
@@ -146,76 +146,126 @@ pub fn read_preferences(path: &Path) -> Result<Vec<PreferenceRow>, DataError> {
     })
 }
 
-/// Check labels against the answers and the declared criteria and scales: unknown
-/// items, unknown criteria and values off the scale are all reported in one error.
-/// `scales` maps a criterion key to its allowed labels.
-pub fn check_labels(
+/// What to do with a label whose criterion the rubric lacks.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum OtherCriteria {
+    /// Report it as a bad line (vetting: every label should belong to the rubric).
+    Refuse,
+    /// Leave it out unchecked (few-shot anchors drawn from a file made for another rubric).
+    Skip,
+}
+
+/// Read human scores and check them against the rubric's scales, and against the
+/// answers when given, in one pass: a line's missing fields, unknown item, unknown
+/// criterion, off-scale score and repeated rating are reported together, and every
+/// bad line of the file in the same error.
+pub fn read_labels_checked(
     path: &Path,
-    labels: &[LabelRow],
-    answers: &[AnswerRecord],
     scales: &HashMap<String, Vec<String>>,
-) -> Result<(), DataError> {
-    let items: HashSet<(&str, &str)> = answers
-        .iter()
-        .map(|a| (a.question_id.as_str(), a.system.as_str()))
-        .collect();
-    let mut seen: HashMap<(&str, &str, &str, &str), usize> = HashMap::new();
-    let mut problems = Vec::new();
-    for l in labels {
+    answers: Option<&[AnswerRecord]>,
+    other: OtherCriteria,
+) -> Result<Vec<LabelRow>, DataError> {
+    const KIND: &str = "human labels";
+    let (rows, mut problems) = read_rows(KIND, path)?;
+    let mut checker = LabelChecker::new(answers, scales);
+    let mut out = Vec::with_capacity(rows.len());
+    for row in &rows {
         let mut msgs = Vec::new();
-        if !items.contains(&(l.question_id.as_str(), l.system.as_str())) {
-            msgs.push(format!(
-                "no answer of system `{}` to question `{}` in the answers file",
-                l.system, l.question_id
-            ));
+        let mut get = |name: &str| {
+            row.required(name).unwrap_or_else(|m| {
+                msgs.push(m);
+                String::new()
+            })
+        };
+        let label = LabelRow {
+            question_id: get("question_id"),
+            system: get("system"),
+            criterion: get("criterion"),
+            rater: get("rater"),
+            score: get("score").trim().to_string(),
+            line: row.line,
+        };
+        let foreign = !label.criterion.is_empty() && !scales.contains_key(&label.criterion);
+        if foreign && other == OtherCriteria::Skip {
+            continue;
         }
-        match scales.get(&l.criterion) {
-            None => {
-                let mut known: Vec<&String> = scales.keys().collect();
-                known.sort();
-                msgs.push(format!(
-                    "unknown criterion `{}` (the rubric has: {})",
-                    l.criterion,
-                    known
-                        .iter()
-                        .map(|k| format!("`{k}`"))
-                        .collect::<Vec<_>>()
-                        .join(", ")
-                ));
-            }
-            Some(allowed) if !allowed.contains(&l.score) => msgs.push(format!(
-                "score `{}` is not on the scale of `{}` ({})",
-                l.score,
-                l.criterion,
-                allowed.join(", ")
-            )),
-            Some(_) => {}
-        }
-        let key = (
-            l.question_id.as_str(),
-            l.system.as_str(),
-            l.criterion.as_str(),
-            l.rater.as_str(),
-        );
-        if let Some(first) = seen.insert(key, l.line) {
-            msgs.push(format!(
-                "the same rater already scored this on line {first}"
-            ));
-        }
-        if !msgs.is_empty() {
+        msgs.extend(checker.messages(&label));
+        if msgs.is_empty() {
+            out.push(label);
+        } else {
             problems.push(LineProblem {
-                line: l.line,
+                line: row.line,
                 message: msgs.join("; "),
             });
         }
     }
-    if problems.is_empty() {
-        Ok(())
-    } else {
-        Err(DataError::BadLines {
-            kind: "human labels",
-            path: path.to_path_buf(),
-            problems,
-        })
+    finish(KIND, path, out, problems)
+}
+
+/// The checks of one label against answers and scales; fields left empty by a
+/// shape error are not checked again.
+struct LabelChecker<'a> {
+    items: Option<HashSet<(&'a str, &'a str)>>,
+    scales: &'a HashMap<String, Vec<String>>,
+    seen: HashMap<[String; 4], usize>,
+}
+
+impl<'a> LabelChecker<'a> {
+    fn new(answers: Option<&'a [AnswerRecord]>, scales: &'a HashMap<String, Vec<String>>) -> Self {
+        LabelChecker {
+            items: answers.map(|a| {
+                a.iter()
+                    .map(|a| (a.question_id.as_str(), a.system.as_str()))
+                    .collect()
+            }),
+            scales,
+            seen: HashMap::new(),
+        }
+    }
+
+    fn messages(&mut self, l: &LabelRow) -> Vec<String> {
+        let mut msgs = Vec::new();
+        let both = !l.question_id.is_empty() && !l.system.is_empty();
+        if let Some(items) = &self.items {
+            if both && !items.contains(&(l.question_id.as_str(), l.system.as_str())) {
+                msgs.push(format!(
+                    "no answer of system `{}` to question `{}` in the answers file",
+                    l.system, l.question_id
+                ));
+            }
+        }
+        match self.scales.get(&l.criterion) {
+            None if !l.criterion.is_empty() => {
+                let mut known: Vec<&String> = self.scales.keys().collect();
+                known.sort();
+                let known: Vec<String> = known.iter().map(|k| format!("`{k}`")).collect();
+                msgs.push(format!(
+                    "unknown criterion `{}` (the rubric has: {})",
+                    l.criterion,
+                    known.join(", ")
+                ));
+            }
+            Some(allowed) if !l.score.is_empty() && !allowed.contains(&l.score) => {
+                msgs.push(format!(
+                    "score `{}` is not on the scale of `{}` ({})",
+                    l.score,
+                    l.criterion,
+                    allowed.join(", ")
+                ))
+            }
+            _ => {}
+        }
+        let key = [
+            l.question_id.clone(),
+            l.system.clone(),
+            l.criterion.clone(),
+            l.rater.clone(),
+        ];
+        if key.iter().all(|k| !k.is_empty()) {
+            if let Some(first) = self.seen.insert(key, l.line) {
+                msgs.push(format!("the same rater already scored this on line {first}"));
+            }
+        }
+        msgs
     }
 }

@@ -8,7 +8,10 @@ pub mod labels;
 pub mod table;
 
 pub use answers::{parse_answers, read_answers, AnswerRecord};
-pub use labels::{check_labels, parse_labels, read_labels, read_preferences, LabelRow, PreferenceRow};
+pub use labels::{
+    parse_labels, read_labels, read_labels_checked, read_preferences, LabelRow, OtherCriteria,
+    PreferenceRow,
+};
 
 use std::fmt;
 use std::path::PathBuf;

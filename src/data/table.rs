@@ -1,6 +1,6 @@
 //! Reading rows from JSONL or CSV into string-keyed maps with their line numbers.
-//! Input: a path. Output: rows, or every unreadable line at once. Knows nothing of
-//! what the fields mean.
+//! Input: a path, or `-` for standard input. Output: rows, or every unreadable line
+//! at once. Knows nothing of what the fields mean.
 
 use std::collections::BTreeMap;
 use std::path::Path;
@@ -35,18 +35,44 @@ impl Row {
     }
 }
 
-/// Read all rows of a JSONL (`.jsonl`, `.ndjson`, `.json`) or CSV (`.csv`) file.
-/// Unreadable lines come back as problems beside the good rows, so the caller can
-/// add its own checks and report everything in one pass.
+/// The path that means standard input.
+pub const STDIN: &str = "-";
+
+/// Standard input, read once per process and kept, so that several readers of `-`
+/// see the same bytes.
+fn stdin_bytes() -> std::io::Result<Vec<u8>> {
+    static BYTES: std::sync::OnceLock<Result<Vec<u8>, String>> = std::sync::OnceLock::new();
+    BYTES
+        .get_or_init(|| {
+            let mut buf = Vec::new();
+            std::io::Read::read_to_end(&mut std::io::stdin(), &mut buf)
+                .map(|_| buf)
+                .map_err(|e| e.to_string())
+        })
+        .clone()
+        .map_err(std::io::Error::other)
+}
+
+/// Read all rows of a JSONL (`.jsonl`, `.ndjson`, `.json`) or CSV (`.csv`) file, or
+/// of standard input for `-` (JSONL when its first non-blank character is `{`, else
+/// CSV). Unreadable lines come back as problems beside the good rows, so the caller
+/// can add its own checks and report everything in one pass.
 pub fn read_rows(
     kind: &'static str,
     path: &Path,
 ) -> Result<(Vec<Row>, Vec<LineProblem>), DataError> {
-    let bytes = std::fs::read(path).map_err(|source| DataError::Io {
+    let io = |source| DataError::Io {
         kind,
         path: path.to_path_buf(),
         source,
-    })?;
+    };
+    if path == Path::new(STDIN) {
+        let bytes = stdin_bytes().map_err(io)?;
+        let first = bytes.iter().find(|b| !b.is_ascii_whitespace());
+        let ext = if first == Some(&b'{') { "jsonl" } else { "csv" };
+        return rows_of(kind, path, ext, &bytes);
+    }
+    let bytes = std::fs::read(path).map_err(io)?;
     parse_rows(kind, path, &bytes)
 }
 
@@ -63,8 +89,18 @@ pub fn parse_rows(
         .and_then(|e| e.to_str())
         .unwrap_or("")
         .to_ascii_lowercase();
+    rows_of(kind, path, &ext, bytes)
+}
+
+/// Rows of bytes in the format `ext` names (`jsonl`, `ndjson`, `json` or `csv`).
+fn rows_of(
+    kind: &'static str,
+    path: &Path,
+    ext: &str,
+    bytes: &[u8],
+) -> Result<(Vec<Row>, Vec<LineProblem>), DataError> {
     let (text, encoding) = decode_text(bytes);
-    let (rows, mut problems) = match ext.as_str() {
+    let (rows, mut problems) = match ext {
         "jsonl" | "ndjson" | "json" => jsonl_rows(&text),
         "csv" => csv_rows(&text),
         _ => {

@@ -160,6 +160,14 @@ impl Rubric {
         Ok(())
     }
 
+    /// Each criterion's key with its labels in scale order, for checking human labels.
+    pub fn scales(&self) -> std::collections::HashMap<String, Vec<String>> {
+        self.criteria
+            .iter()
+            .map(|c| (c.key.clone(), c.scale.labels()))
+            .collect()
+    }
+
     /// Every need of any criterion: the shared part of a form shows these fields.
     pub fn all_needs(&self) -> Vec<Need> {
         let mut v: Vec<Need> = self.criteria.iter().flat_map(|c| c.needs.clone()).collect();

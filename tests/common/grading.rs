@@ -4,7 +4,7 @@
 
 use std::path::{Path, PathBuf};
 
-use assize::cli::common::ModelArgs;
+use assize::cli::common::{ModelArgs, RubricArg};
 use assize::cli::grade::GradeArgs;
 use assize::cli::OutputArgs;
 use assize::judge::scripted::ScriptedJudge;
@@ -18,7 +18,9 @@ pub fn root() -> PathBuf {
 pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
     GradeArgs {
         answers: answers.to_path_buf(),
-        rubric: root().join("judge-templates/rubrics/quick.toml"),
+        rubric: RubricArg {
+            path: Some(root().join("judge-templates/rubrics/quick.toml")),
+        },
         criteria: vec![],
         model: ModelArgs {
             model: "scripted".into(),
