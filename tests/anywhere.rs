@@ -58,7 +58,7 @@ fn installed_binary_grades_from_a_folder_outside_the_repository() {
             "--criteria",
             "helpfulness",
         ])
-        .args(["--json", "--quiet"])
+        .args(["--csv", "grades.csv", "--json", "--quiet"])
         .output()
         .expect("runs");
     assert!(o.status.success(), "{}", stderr(&o));
@@ -67,6 +67,11 @@ fn installed_binary_grades_from_a_folder_outside_the_repository() {
     assert_eq!(v["records"], 1, "{v}");
     let mean = v["summary"][0]["mean"].as_f64().expect("a mean score");
     assert!((1.0..=5.0).contains(&mean), "{v}");
+    let csv = std::fs::read_to_string(root.path().join("work/grades.csv")).expect("CSV export");
+    let lines: Vec<&str> = csv.lines().collect();
+    assert!(lines[0].starts_with("question_id,system,criterion,expected"), "{csv}");
+    assert_eq!(lines.len(), 2, "{csv}");
+    assert!(lines[1].starts_with("q1,v1,helpfulness,"), "{csv}");
     assert!(v["failed"].as_array().expect("list").is_empty(), "{v}");
 }
 

@@ -496,6 +496,15 @@ fn vet_gate_fails_with_exit_code_one() {
     assert!(ok.status.success(), "{}", stderr(&ok));
     let text = String::from_utf8_lossy(&ok.stdout);
     assert!(text.contains("trust card for `correctness`"), "{text}");
+    // The same table as CSV: one row per criterion and variant.
+    let dir = tempfile::tempdir().expect("tmp");
+    let csv = dir.path().join("vet.csv");
+    let mut with_csv = base.to_vec();
+    with_csv.extend(["--csv", csv.to_str().expect("utf-8")]);
+    assert!(run(&with_csv).status.success());
+    let table = std::fs::read_to_string(&csv).expect("CSV written");
+    assert!(table.starts_with("criterion,variant,n_items,kappa_quadratic"), "{table}");
+    assert!(table.lines().any(|l| l.starts_with("correctness,expected score,")), "{table}");
     let mut strict = base.to_vec();
     strict.extend(["--min-kappa", "0.99"]);
     let o = run(&strict);

@@ -40,6 +40,7 @@ fn args(run_dir: PathBuf) -> GradeArgs {
         limit: Some(6),
         no_prefix_reuse: false,
         templates: None,
+        csv: None,
         output: OutputArgs {
             json: true,
             quiet: true,

@@ -86,6 +86,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         limit: None,
         no_prefix_reuse: false,
         templates: None,
+        csv: None,
         output: OutputArgs {
             json: true,
             quiet: true,

@@ -88,6 +88,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         limit: Some(ITEMS),
         no_prefix_reuse: false,
         templates: None,
+        csv: None,
         output: OutputArgs {
             json: true,
             quiet: true,

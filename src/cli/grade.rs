@@ -73,6 +73,9 @@ pub struct GradeArgs {
     /// Folder with form templates (`system.j2`, `grade.j2`, `pair.j2`) replacing the built-in ones
     #[arg(long, value_name = "DIR")]
     pub templates: Option<PathBuf>,
+    /// Also write the result table as CSV to this file
+    #[arg(long, value_name = "FILE")]
+    pub csv: Option<PathBuf>,
     #[command(flatten)]
     pub output: OutputArgs,
 }
@@ -509,6 +512,11 @@ pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
             c.reused_tokens,
             c.generated_tokens
         );
+    }
+    if let Some(path) = &args.csv {
+        let dir = std::path::Path::new(&report.run_dir);
+        let records: Vec<GradeRecord> = crate::store::read_records(&dir.join(GRADES_FILE))?;
+        super::csv_out::write_grades(path, &records)?;
     }
     if args.output.json {
         print_json(&report)?;

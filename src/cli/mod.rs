@@ -11,6 +11,7 @@ use clap::{Parser, Subcommand};
 pub mod answer;
 pub mod common;
 pub mod compare;
+pub mod csv_out;
 pub mod errors;
 pub mod estimate;
 pub mod grade;

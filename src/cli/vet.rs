@@ -58,6 +58,9 @@ pub struct VetArgs {
     /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
+    /// Also write the result table as CSV to this file
+    #[arg(long, value_name = "FILE")]
+    pub csv: Option<PathBuf>,
     #[command(flatten)]
     pub output: OutputArgs,
 }
@@ -198,6 +201,9 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
 /// Run `assize vet`.
 pub fn run(args: VetArgs) -> anyhow::Result<ExitCode> {
     let out = vet_run(&args)?;
+    if let Some(path) = &args.csv {
+        super::csv_out::write_vet(path, &out.pointwise)?;
+    }
     if args.output.json {
         print_json(&out)?;
     } else {

@@ -39,6 +39,7 @@ pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
         limit: None,
         no_prefix_reuse: false,
         templates: None,
+        csv: None,
         output: OutputArgs {
             json: true,
             quiet: true,
