@@ -16,41 +16,42 @@ use std::time::{Duration, Instant};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
-/// One parser under test: its corpus folder, and a function that must not panic.
+/// One parser under test: its corpus folder, and a function that must not panic
+/// (returning whether the input was accepted).
 struct Target {
     name: &'static str,
-    parse: fn(&[u8]),
+    parse: fn(&[u8]) -> bool,
 }
 
-fn gguf(bytes: &[u8]) {
-    if assize::engine::gguf_check::check(Cursor::new(bytes), bytes.len() as u64).is_ok() {
-        let _ = candle_core::quantized::gguf_file::Content::read(&mut Cursor::new(bytes));
-    }
+fn gguf(bytes: &[u8]) -> bool {
+    assize::engine::gguf_check::check(Cursor::new(bytes), bytes.len() as u64).is_ok()
+        && candle_core::quantized::gguf_file::Content::read(&mut Cursor::new(bytes)).is_ok()
 }
 
-fn answers_jsonl(bytes: &[u8]) {
-    let _ = assize::data::parse_answers(Path::new("answers.jsonl"), bytes);
+fn answers_jsonl(bytes: &[u8]) -> bool {
+    assize::data::parse_answers(Path::new("answers.jsonl"), bytes).is_ok()
 }
 
-fn answers_csv(bytes: &[u8]) {
-    let _ = assize::data::parse_answers(Path::new("answers.csv"), bytes);
+fn answers_csv(bytes: &[u8]) -> bool {
+    assize::data::parse_answers(Path::new("answers.csv"), bytes).is_ok()
 }
 
-fn labels(bytes: &[u8]) {
-    let _ = assize::data::parse_labels(Path::new("labels.csv"), bytes);
+fn labels(bytes: &[u8]) -> bool {
+    assize::data::parse_labels(Path::new("labels.csv"), bytes).is_ok()
 }
 
-fn rubric(bytes: &[u8]) {
-    let _ = assize::rubric::parse_rubric_bytes(Path::new("rubric.toml"), bytes);
+fn rubric(bytes: &[u8]) -> bool {
+    assize::rubric::parse_rubric_bytes(Path::new("rubric.toml"), bytes).is_ok()
 }
 
-fn results(bytes: &[u8]) {
-    if let Ok(loaded) = assize::store::parse_lines(Path::new("grades.jsonl"), bytes) {
-        for l in loaded.lines {
-            let _ = serde_json::from_value::<assize::judge::GradeRecord>(l.value.clone());
-            let _ = serde_json::from_value::<assize::judge::PairRecord>(l.value);
-        }
-    }
+fn results(bytes: &[u8]) -> bool {
+    let Ok(loaded) = assize::store::parse_lines(Path::new("grades.jsonl"), bytes) else {
+        return false;
+    };
+    loaded.lines.into_iter().all(|l| {
+        serde_json::from_value::<assize::judge::GradeRecord>(l.value.clone()).is_ok()
+            || serde_json::from_value::<assize::judge::PairRecord>(l.value).is_ok()
+    })
 }
 
 const TARGETS: &[Target] = &[
@@ -118,13 +119,20 @@ fn corpus(name: &str) -> Vec<Vec<u8>> {
     files.iter().map(|f| std::fs::read(f).expect("corpus file")).collect()
 }
 
-/// Run one target; returns (inputs tried, inputs that panicked).
-fn fuzz(t: &Target, seed: u64, limit: Limit) -> (u64, u64) {
+/// Inputs tried, accepted (parsed without error) and panicked.
+struct Tally {
+    tried: u64,
+    accepted: u64,
+    panics: u64,
+}
+
+/// Run one target.
+fn fuzz(t: &Target, seed: u64, limit: Limit) -> Tally {
     let seeds = corpus(t.name);
     assert!(!seeds.is_empty(), "empty corpus for {}", t.name);
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let start = Instant::now();
-    let (mut tried, mut panics) = (0u64, 0u64);
+    let (mut tried, mut accepted, mut panics) = (0u64, 0u64, 0u64);
     while !limit.reached(tried, start) {
         let mut input = seeds[rng.random_range(0..seeds.len())].clone();
         let other = &seeds[rng.random_range(0..seeds.len())];
@@ -132,14 +140,15 @@ fn fuzz(t: &Target, seed: u64, limit: Limit) -> (u64, u64) {
             mutate(&mut rng, &mut input, other);
         }
         tried += 1;
-        if catch_unwind(AssertUnwindSafe(|| (t.parse)(&input))).is_err() {
-            panics += 1;
-            let dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("target/fuzz-failures");
-            std::fs::create_dir_all(&dir).expect("mkdir");
-            std::fs::write(dir.join(format!("{}-{tried}.bin", t.name)), &input).expect("save");
-        }
+        let Err(_) = catch_unwind(AssertUnwindSafe(|| accepted += (t.parse)(&input) as u64)) else {
+            continue;
+        };
+        panics += 1;
+        let dir = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("target/fuzz-failures");
+        std::fs::create_dir_all(&dir).expect("mkdir");
+        std::fs::write(dir.join(format!("{}-{tried}.bin", t.name)), &input).expect("save");
     }
-    (tried, panics)
+    Tally { tried, accepted, panics }
 }
 
 #[derive(Clone, Copy)]
@@ -173,20 +182,17 @@ fn parsers_never_panic_on_mutated_inputs() {
     let seed = std::env::var("ASSIZE_FUZZ_SEED").ok().and_then(|s| s.parse().ok()).unwrap_or(14);
     let hook = std::panic::take_hook();
     std::panic::set_hook(Box::new(|_| {}));
-    let results: Vec<(&str, u64, u64)> = TARGETS
-        .iter()
-        .map(|t| {
-            let (tried, panics) = fuzz(t, seed, limit);
-            (t.name, tried, panics)
-        })
-        .collect();
+    let results: Vec<(&str, Tally)> = TARGETS.iter().map(|t| (t.name, fuzz(t, seed, limit))).collect();
     std::panic::set_hook(hook);
     let mut total = 0;
-    for (name, tried, panics) in &results {
-        eprintln!("fuzz {name:<14} {tried:>9} inputs, {panics} panics");
-        total += tried;
+    for (name, t) in &results {
+        eprintln!(
+            "fuzz {name:<14} {:>9} inputs ({:>7} accepted), {} panics",
+            t.tried, t.accepted, t.panics
+        );
+        total += t.tried;
     }
     eprintln!("fuzz total          {total:>9} inputs (seed {seed})");
-    let failed: Vec<_> = results.iter().filter(|r| r.2 > 0).collect();
+    let failed: Vec<&str> = results.iter().filter(|r| r.1.panics > 0).map(|r| r.0).collect();
     assert!(failed.is_empty(), "panics (inputs saved in target/fuzz-failures): {failed:?}");
 }
