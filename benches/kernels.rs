@@ -6,12 +6,15 @@
 //! rows/s per format on stdout. Never asserts on time. One row per call is
 //! memory-bound, so compare the numbers with the machine's streaming bandwidth.
 //!
+//! The kernel family is the one the engine would use (`ASSIZE_KERNELS=avx2` and the
+//! like cap it, so one machine can measure each family it runs).
+//!
 //! usage: cargo bench --bench kernels [-- [THREADS] [--in-cache]]
 
 use std::hint::black_box;
 use std::time::Instant;
 
-use assize::engine::kernels::Packed;
+use assize::engine::kernels::{Kernels, Packed};
 use candle_core::quantized::{GgmlDType, QTensor};
 use candle_core::{Device, Tensor};
 
@@ -35,13 +38,13 @@ fn main() {
         std::env::set_var("CANDLE_NUM_THREADS", &t);
         std::env::set_var("RAYON_NUM_THREADS", &t);
     }
-    if !assize::engine::kernels::available() {
-        println!("this processor lacks AVX-512 VNNI; the repacked kernels are not used");
+    let Some(kernels) = Kernels::active() else {
+        println!("ASSIZE_KERNELS=candle: the repacked kernels are not used");
         return;
-    }
+    };
     let in_cache = std::env::args().any(|a| a == "--in-cache");
     let threads = candle_core::utils::barrier_pool().n_workers() + 1;
-    println!("threads {threads}");
+    println!("threads {threads}, kernels {}", kernels.isa());
     // (format, n, k): attention output, ffn up/gate and down of the 1.5B judge; the
     // 0.5B judge's ffn up/gate in its Q8_0 and Q5_0 forms.
     for (dtype, n, k) in [
@@ -57,10 +60,11 @@ fn main() {
         let qt = QTensor::quantize(&t, dtype).expect("quantize");
         // Enough copies to overflow the last-level cache (~600 MB of tiles); one copy
         // with `--in-cache`, to see the kernel's arithmetic rate instead of memory's.
-        let one = Packed::new(&qt).expect("pack").expect("covered").bytes();
+        let pack = || Packed::new(&qt, kernels).expect("pack").expect("covered");
+        let one = pack().bytes();
         let copies = if in_cache { 1 } else { (600 << 20) / one + 1 };
         let packed: Vec<Packed> = (0..copies)
-            .map(|_| Packed::new(&qt).expect("pack").expect("covered"))
+            .map(|_| pack())
             .collect();
         let x = values(k, 11);
         for p in &packed {

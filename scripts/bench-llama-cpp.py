@@ -3,14 +3,18 @@
 `assize model bench` (same prompt length, thread count and kind of token ids).
 
 llama.cpp (Gerganov et al.) is the C++ CPU engine for GGUF files; this script reaches it
-through the `llama-cpp-python` package, built from source on this machine by pip so it
-uses the processor's own vector instructions:
+through the `llama-cpp-python` package, built from source by pip. Build it for the
+instruction set you compare with, each build in its own virtual environment:
+    # this machine's own instructions
     CMAKE_ARGS="-DGGML_NATIVE=ON" pip install llama-cpp-python
+    # AVX2 only (to compare with `ASSIZE_KERNELS=avx2` on an AVX-512 machine)
+    CMAKE_ARGS="-DGGML_NATIVE=OFF -DGGML_AVX=ON -DGGML_AVX2=ON -DGGML_FMA=ON \
+      -DGGML_F16C=ON -DGGML_AVX512=OFF -DGGML_AVX512_VNNI=OFF -DGGML_AVX512_VBMI=OFF \
+      -DGGML_AVX512_BF16=OFF -DGGML_AVX_VNNI=OFF -DGGML_AMX_TILE=OFF -DGGML_AMX_INT8=OFF \
+      -DGGML_AMX_BF16=OFF" pip install --no-binary llama-cpp-python llama-cpp-python
 On processors that report AMX inside a virtual machine, ggml's AMX kernels may crash
-(seen here); build without them instead:
-    CMAKE_ARGS="-DGGML_NATIVE=OFF -DGGML_AVX2=ON -DGGML_FMA=ON -DGGML_F16C=ON \
-      -DGGML_AVX512=ON -DGGML_AVX512_VNNI=ON -DGGML_AVX512_VBMI=ON -DGGML_AVX512_BF16=ON \
-      -DGGML_AMX_TILE=OFF -DGGML_AMX_INT8=OFF -DGGML_AMX_BF16=OFF" pip install llama-cpp-python
+(seen here); leave them out as above. The JSON line records the build's instruction
+sets as llama.cpp reports them (`system_info`).
 Each figure is the best of `--repeats` runs. Nothing here is a test.
 
 usage: scripts/bench-llama-cpp.py MODEL.gguf [--prompt-tokens 256] [--gen-tokens 64]
@@ -64,6 +68,7 @@ def main():
         "gen_tokens": args.gen_tokens,
         "prompt_tokens_per_second": round(best_prompt, 1),
         "gen_tokens_per_second": round(best_gen, 1),
+        "system_info": llama_cpp.llama_print_system_info().decode(errors="replace").strip(),
     }))
 
 

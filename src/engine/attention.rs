@@ -5,7 +5,8 @@
 //! projection. Never reads weights, and never lets a row's result depend on the other
 //! rows of the call, on how heads are split over threads, or on the thread count.
 
-use super::linear::{attn_simd, dot, SharedOut};
+use super::kernels::{self, KeyValues, Kernels};
+use super::linear::SharedOut;
 
 /// Keys and values of the tokens seen so far; cloning forks it. One buffer per layer and
 /// key/value head (index `layer * kv_heads + head`), so the rows one head attends to
@@ -108,8 +109,9 @@ pub(crate) struct AttnShape {
 /// Causal scaled dot-product attention (Vaswani et al. 2017) of `m` query rows starting
 /// at position `pos0` over the cached keys/values, with grouped key/value heads and an
 /// optional sliding window of `w` tokens (the current one included, as llama.cpp and
-/// the reference Python Gemma 3 implementation count it). Each (row, head) unit runs on
-/// one worker in a fixed order, so results do not depend on scheduling.
+/// the reference Python Gemma 3 implementation count it), on the kernels of
+/// `kernels::attend`. Each head is computed by one worker in a fixed order, so results
+/// do not depend on scheduling.
 pub(crate) fn attention(
     q: &[f32],
     kc: &[Vec<f32>],
@@ -125,74 +127,41 @@ pub(crate) fn attention(
     let mut out = vec![0f32; m * q_dim];
     let shared = SharedOut(out.as_mut_ptr());
     let scale = c.scale;
-    #[cfg(target_arch = "x86_64")]
-    let simd = d.is_multiple_of(16) && d <= 256 && attn_simd::available();
-    #[cfg(target_arch = "x86_64")]
-    if simd {
-        // Work units are (row, key/value head, part of its query heads): the heads that
-        // share a key/value head read each key and value row once. A single row gets
-        // its query heads split so that every thread has a unit. Each head's arithmetic
-        // is the same whatever the split.
-        let pool = candle_core::utils::barrier_pool();
-        let threads = pool.n_workers() + 1;
-        let per_row = c.kv_heads;
-        let parts = if m * per_row >= threads {
-            1
-        } else {
-            threads.div_ceil(m * per_row).min(group)
-        };
-        pool.execute_chunked(m * per_row * parts, |units| {
-            let mut scores = Vec::new();
-            for u in units {
-                let (r, rest) = (u / (per_row * parts), u % (per_row * parts));
-                let (g, part) = (rest / parts, rest % parts);
-                let h0 = g * group + part * group / parts;
-                let h1 = g * group + (part + 1) * group / parts;
-                let p = pos0 + r;
-                let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-                let span = (r * heads + h0) * d..(r * heads + h1) * d;
-                // SAFETY: this unit owns heads h0..h1 of row r in `out`, which outlives
-                // the pool call; no other unit touches that range.
-                let o = unsafe {
-                    std::slice::from_raw_parts_mut(shared.ptr().add(span.start), span.len())
-                };
-                // SAFETY: features checked by `available()`; d is a multiple of 16.
-                unsafe {
-                    attn_simd::attend(&q[span], &kc[g], &vc[g], d, lo, p, scale, o, &mut scores, d)
-                };
-            }
-        });
-        return out;
-    }
-    candle_core::utils::barrier_pool().execute_chunked(m * heads, |units| {
+    let kernels = Kernels::for_rows();
+    // Work units are (row, key/value head, part of its query heads): the heads that
+    // share a key/value head read each key and value row once. A single row gets its
+    // query heads split so that every thread has a unit. Each head's arithmetic is the
+    // same whatever the split.
+    let pool = candle_core::utils::barrier_pool();
+    let threads = pool.n_workers() + 1;
+    let per_row = c.kv_heads;
+    let parts = if m * per_row >= threads {
+        1
+    } else {
+        threads.div_ceil(m * per_row).min(group)
+    };
+    pool.execute_chunked(m * per_row * parts, |units| {
         let mut scores = Vec::new();
         for u in units {
-            let (r, h) = (u / heads, u % heads);
-            let g = h / group;
+            let (r, rest) = (u / (per_row * parts), u % (per_row * parts));
+            let (g, part) = (rest / parts, rest % parts);
+            let h0 = g * group + part * group / parts;
+            let h1 = g * group + (part + 1) * group / parts;
             let p = pos0 + r;
             let lo = window.map_or(0, |w| (p + 1).saturating_sub(w));
-            let qv = &q[u * d..(u + 1) * d];
-            // SAFETY: unit u = r * heads + h owns out[u*d..(u+1)*d] (row r, head h);
-            // `out` outlives the pool call and no other unit touches this range.
-            let o = unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(u * d), d) };
-            let (keys, vals) = (&kc[g], &vc[g]);
-            scores.clear();
-            let mut max = f32::NEG_INFINITY;
-            for j in lo..=p {
-                let s = dot(qv, &keys[j * d..][..d]) * scale;
-                max = max.max(s);
-                scores.push(s);
-            }
-            let mut sum = 0f32;
-            for s in scores.iter_mut() {
-                *s = (*s - max).exp();
-                sum += *s;
-            }
-            for (s, j) in scores.iter().zip(lo..=p) {
-                let wgt = s / sum;
-                let vr = &vals[j * d..][..d];
-                o.iter_mut().zip(vr).for_each(|(o, v)| *o += wgt * v);
-            }
+            let span = (r * heads + h0) * d..(r * heads + h1) * d;
+            // SAFETY: this unit owns heads h0..h1 of row r in `out`, which outlives the
+            // pool call; no other unit touches that range.
+            let o =
+                unsafe { std::slice::from_raw_parts_mut(shared.ptr().add(span.start), span.len()) };
+            let kv = KeyValues {
+                keys: &kc[g],
+                vals: &vc[g],
+                stride: d,
+                lo,
+                p,
+            };
+            kernels::attend(kernels, &q[span], &kv, d, scale, o, &mut scores);
         }
     });
     debug_assert_eq!(out.len(), m * q_dim);

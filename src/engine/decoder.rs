@@ -17,7 +17,8 @@ use super::arch::{self, Block, Part, Plan};
 use super::attention::{attend_block, AttnShape};
 use super::gguf::GgufFile;
 use super::linear::{Embedding, Linear, Loader, MatmulPolicy};
-use super::ops::{activate, add_bias, add_into, rms_norm, rope, rope_freqs, scale_rope_freqs};
+use super::kernels::{self, Kernels};
+use super::ops::{add_bias, add_into, rms_norm, rope, rope_freqs, scale_rope_freqs};
 use super::EngineError;
 
 pub use super::attention::KvCache;
@@ -496,10 +497,7 @@ impl Decoder {
             add_into(&mut x, &o);
             let h = rms_norm(&x, &l.ffn_norm, eps);
             let [mut a, u] = fused(&[&l.gate, &l.up], &h, m)?;
-            let act = c.activation;
-            a.iter_mut()
-                .zip(&u)
-                .for_each(|(g, u)| *g = activate(act, *g) * u);
+            kernels::gate(Kernels::for_rows(), c.activation, &mut a, &u);
             let mut d = l.down.forward(&a, m)?;
             if let Some(w) = &l.post_ffn_norm {
                 d = rms_norm(&d, w, eps);

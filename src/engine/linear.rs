@@ -21,7 +21,7 @@ use candle_core::quantized::{GgmlDType, QMatMul, QStorage, QTensor};
 use candle_core::{DType, Device, Module, Tensor};
 
 use super::gguf::GgufFile;
-use super::kernels::{self, Packed};
+use super::kernels::{Kernels, Packed};
 use super::EngineError;
 
 /// How weights are multiplied.
@@ -122,8 +122,8 @@ impl Linear {
         if policy == MatmulPolicy::Reference || float {
             return Self::dense_f32(&qt);
         }
-        if kernels::enabled() {
-            if let Some(p) = Packed::new(&qt)? {
+        if let Some(kernels) = Kernels::active() {
+            if let Some(p) = Packed::new(&qt, kernels)? {
                 // The file's copy of the weight is dropped with `qt`.
                 return Ok(Self::from_packed(Arc::new(p)));
             }
@@ -178,8 +178,8 @@ impl Linear {
         if policy == MatmulPolicy::Reference {
             return Self::dense_f32(&qt);
         }
-        if kernels::enabled() {
-            if let Some(p) = Packed::new(&qt)? {
+        if let Some(kernels) = Kernels::active() {
+            if let Some(p) = Packed::new(&qt, kernels)? {
                 return Ok(Self::from_packed(Arc::new(p)));
             }
         }
@@ -514,172 +514,6 @@ impl SharedOut {
     pub(crate) fn ptr(&self) -> *mut f32 {
         self.0
     }
-}
-
-/// Attention of the query heads that share one key/value head, with AVX-512. Keys and
-/// values are visited in tiles of `TILE` positions that stay in the L1 cache while
-/// every head of the unit uses them. Per head: scores of four keys at a time (four
-/// independent accumulators, each key summed in the same order whatever its group),
-/// softmax in position order, then the weighted sum of values held in registers and
-/// accumulated in position order. A head's result therefore does not depend on which
-/// other heads or rows share its unit.
-#[cfg(target_arch = "x86_64")]
-pub(crate) mod attn_simd {
-    use std::arch::x86_64::*;
-
-    /// Positions per tile: 32 rows of keys or values of width 256 are 32 KiB.
-    const TILE: usize = 32;
-
-    pub fn available() -> bool {
-        is_x86_feature_detected!("avx512f")
-    }
-
-    /// Query heads `q` (`nh × d` values), key and value rows `j` at `j * stride` of
-    /// `keys` / `vals` for `j` in `lo..=p`; writes `out` (`nh × d` values). Dispatches on the head width so a query and an output stay in
-    /// registers.
-    #[target_feature(enable = "avx512f")]
-    #[allow(clippy::too_many_arguments)]
-    pub unsafe fn attend(
-        q: &[f32],
-        keys: &[f32],
-        vals: &[f32],
-        stride: usize,
-        lo: usize,
-        p: usize,
-        scale: f32,
-        out: &mut [f32],
-        scores: &mut Vec<f32>,
-        d: usize,
-    ) {
-        assert!(d.is_multiple_of(16) && d <= 256 && out.len() == q.len());
-        assert!(q.len().is_multiple_of(d));
-        assert!(keys.len() >= p * stride + d && vals.len() >= p * stride + d);
-        let args = (q, keys, vals, stride, lo, p, scale, out, scores);
-        match d / 16 {
-            4 => heads::<4>(args),
-            8 => heads::<8>(args),
-            16 => heads::<16>(args),
-            1 => heads::<1>(args),
-            2 => heads::<2>(args),
-            3 => heads::<3>(args),
-            5 => heads::<5>(args),
-            6 => heads::<6>(args),
-            7 => heads::<7>(args),
-            9 => heads::<9>(args),
-            10 => heads::<10>(args),
-            11 => heads::<11>(args),
-            12 => heads::<12>(args),
-            13 => heads::<13>(args),
-            14 => heads::<14>(args),
-            _ => heads::<15>(args),
-        }
-    }
-
-    type Args<'a> = (
-        &'a [f32],
-        &'a [f32],
-        &'a [f32],
-        usize,
-        usize,
-        usize,
-        f32,
-        &'a mut [f32],
-        &'a mut Vec<f32>,
-    );
-
-    #[target_feature(enable = "avx512f")]
-    unsafe fn heads<const C: usize>(args: Args<'_>) {
-        let (q, keys, vals, stride, lo, p, scale, out, scores) = args;
-        let d = 16 * C;
-        let nh = q.len() / d;
-        let n = p + 1 - lo;
-        let (kp, vp) = (keys.as_ptr(), vals.as_ptr());
-        let score = |acc: __m512| _mm512_reduce_add_ps(acc) * scale;
-        scores.clear();
-        scores.resize(nh * n, 0.0);
-        let mut t0 = lo;
-        while t0 <= p {
-            let t1 = (t0 + TILE).min(p + 1);
-            for h in 0..nh {
-                let qv: [__m512; C] =
-                    std::array::from_fn(|c| _mm512_loadu_ps(q.as_ptr().add(h * d + 16 * c)));
-                let row = &mut scores[h * n..(h + 1) * n];
-                let mut j = t0;
-                while j + 4 <= t1 {
-                    let mut acc = [_mm512_setzero_ps(); 4];
-                    for (c, qc) in qv.iter().enumerate() {
-                        for (t, a) in acc.iter_mut().enumerate() {
-                            let k = _mm512_loadu_ps(kp.add((j + t) * stride + 16 * c));
-                            *a = _mm512_fmadd_ps(*qc, k, *a);
-                        }
-                    }
-                    for (t, a) in acc.into_iter().enumerate() {
-                        row[j + t - lo] = score(a);
-                    }
-                    j += 4;
-                }
-                while j < t1 {
-                    let mut a = _mm512_setzero_ps();
-                    for (c, qc) in qv.iter().enumerate() {
-                        a = _mm512_fmadd_ps(*qc, _mm512_loadu_ps(kp.add(j * stride + 16 * c)), a);
-                    }
-                    row[j - lo] = score(a);
-                    j += 1;
-                }
-            }
-            t0 = t1;
-        }
-        // Softmax weights per head, in position order.
-        for row in scores.chunks_exact_mut(n) {
-            let max = row.iter().fold(f32::NEG_INFINITY, |m, &s| m.max(s));
-            // The branch-free `exp` of this module vectorises; the library's is a call
-            // per score.
-            for s in row.iter_mut() {
-                *s = crate::engine::ops::exp(*s - max);
-            }
-            let sum = row.iter().fold(0f32, |a, &s| a + s);
-            for s in row.iter_mut() {
-                *s /= sum;
-            }
-        }
-        out.fill(0.0);
-        let mut t0 = lo;
-        while t0 <= p {
-            let t1 = (t0 + TILE).min(p + 1);
-            for h in 0..nh {
-                let op = out.as_mut_ptr().add(h * d);
-                let mut o: [__m512; C] = std::array::from_fn(|c| _mm512_loadu_ps(op.add(16 * c)));
-                for (j, &w) in (t0..t1).zip(&scores[h * n + t0 - lo..h * n + t1 - lo]) {
-                    let w = _mm512_set1_ps(w);
-                    for (c, oc) in o.iter_mut().enumerate() {
-                        *oc = _mm512_fmadd_ps(w, _mm512_loadu_ps(vp.add(j * stride + 16 * c)), *oc);
-                    }
-                }
-                for (c, oc) in o.iter().enumerate() {
-                    _mm512_storeu_ps(op.add(16 * c), *oc);
-                }
-            }
-            t0 = t1;
-        }
-    }
-}
-
-/// Dot product with eight independent lanes (vectorises; fixed order, deterministic).
-pub(crate) fn dot(a: &[f32], b: &[f32]) -> f32 {
-    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
-    let tail: f32 = ca
-        .remainder()
-        .iter()
-        .zip(cb.remainder())
-        .map(|(x, y)| x * y)
-        .sum();
-    let mut acc = [0f32; 8];
-    for (x, y) in ca.zip(cb) {
-        for i in 0..8 {
-            acc[i] += x[i] * y[i];
-        }
-    }
-    acc.iter().sum::<f32>() + tail
 }
 
 /// Matrix-vector products of a Q8_0 weight whose rows candle cannot pack (inner width

@@ -1,12 +1,19 @@
-//! Matrix-multiply kernels of the decoder: quantised weights repacked once at load
-//! into 16-column tiles, multiplied by activation rows quantised to int8 with AVX-512
-//! VNNI (`vpdpbusd`). Input: a Q4_K, Q6_K, Q5_0 or Q8_0-representable (Q4_0, Q8_0)
-//! weight `n × k` and f32 rows `m × k`. Output: f32 rows `m × n`. The same tiles serve
-//! prompts (several rows share each unpacked weight register) and generation (one
-//! row, where streaming the weight from memory is the whole cost, so the tiles keep
-//! close to the file's bits per weight). Never lets one row's result depend on the
-//! other rows of the call or on the thread count: every output element is summed by
-//! one worker in a fixed order.
+//! Kernels of the decoder, one file per instruction-set family, chosen at run time:
+//! matrix products of quantised weights repacked once at load into 16-column tiles,
+//! multiplied by activation rows quantised to int8, and the attention of one query
+//! group over the cached keys and values. Input: a Q4_K, Q6_K, Q5_0 or
+//! Q8_0-representable (Q4_0, Q8_0) weight `n × k` and f32 rows `m × k`. Output: f32
+//! rows `m × n`. This file holds one cached check of the processor's features, the cap
+//! from `ASSIZE_KERNELS`, the tile layout and the dispatch; `scalar.rs` is the plain
+//! reference every vector kernel is tested against, `avx512.rs` (AVX-512 VNNI),
+//! `avx2.rs` (AVX2, with `vpdpbusd` on 256-bit registers where AVX-VNNI exists) and
+//! `neon.rs` (ARM, `sdot` where the dot-product extension exists) the vector ones.
+//! Never runs a kernel whose instructions this processor lacks: a `Kernels` value, the
+//! only way to reach one, exists only after the check. Never lets one row's result
+//! depend on the other rows of the call or on the thread count: every output element
+//! is summed by one worker in a fixed order. The integer sums are exact and the float
+//! steps run in the same order per output column on every family, so the products
+//! give the same bits on every family.
 //!
 //! Numerics follow ggml's formats (Gerganov et al., ggml `k_quants.c`, `ggml-quants.c`):
 //! activations are quantised per 256 values as Q8_K (`d = max / -127`,
@@ -34,8 +41,18 @@
 
 use std::sync::OnceLock;
 
+#[cfg(target_arch = "x86_64")]
+mod avx2;
+#[cfg(target_arch = "x86_64")]
+mod avx512;
+#[cfg(target_arch = "aarch64")]
+mod neon;
+mod scalar;
+
 use candle_core::quantized::{GgmlDType, QTensor};
 use candle_core::Device;
+
+use super::ops::{exp, Activation};
 
 /// Output columns of one tile (one 512-bit register of f32 / i32 lanes).
 const TILE_N: usize = 16;
@@ -122,6 +139,7 @@ impl Drop for TileBuf {
 /// A weight repacked into 16-column tiles.
 pub struct Packed {
     format: Format,
+    kernels: Kernels,
     /// Output features.
     pub n: usize,
     /// Input features.
@@ -130,29 +148,247 @@ pub struct Packed {
     data: TileBuf,
 }
 
-/// Whether this processor runs the kernels (AVX-512 F/BW and VNNI, F16C).
-pub fn available() -> bool {
-    #[cfg(target_arch = "x86_64")]
-    {
-        static AVAILABLE: OnceLock<bool> = OnceLock::new();
-        *AVAILABLE.get_or_init(|| {
-            is_x86_feature_detected!("avx512f")
-                && is_x86_feature_detected!("avx512bw")
-                && is_x86_feature_detected!("avx512vnni")
-                && is_x86_feature_detected!("f16c")
-        })
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    false
+/// Instruction-set families with their own kernels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Isa {
+    /// Plain Rust: any processor; the reference the others are tested against.
+    Scalar,
+    /// x86-64 AVX2, FMA and F16C (Intel since 2013, AMD Zen 1-3): int8 products with
+    /// `vpmaddubsw` / `vpmaddwd`.
+    Avx2,
+    /// AVX2 plus AVX-VNNI (Intel client chips since 2021): `vpdpbusd` on 256 bits.
+    AvxVnni,
+    /// AVX-512 F/BW/VL and VNNI, AVX2, FMA, F16C (Intel servers, AMD Zen 4/5).
+    Avx512,
+    /// 64-bit ARM with NEON (Advanced SIMD, always present on AArch64).
+    Neon,
+    /// NEON plus the dot-product extension (`sdot`; Apple M1 and later, Neoverse).
+    NeonDot,
 }
 
-/// Whether loads should repack weights for these kernels: the processor has them and
-/// `ASSIZE_KERNELS=candle` (candle's own kernels, for comparison) is not set. Read once.
-pub fn enabled() -> bool {
-    static ENABLED: OnceLock<bool> = OnceLock::new();
-    *ENABLED.get_or_init(|| {
-        available() && std::env::var("ASSIZE_KERNELS").map_or(true, |v| v != "candle")
-    })
+impl Isa {
+    /// Every family, best first within each architecture.
+    pub const ALL: [Isa; 6] = [
+        Isa::Avx512,
+        Isa::AvxVnni,
+        Isa::Avx2,
+        Isa::NeonDot,
+        Isa::Neon,
+        Isa::Scalar,
+    ];
+
+    /// The name `ASSIZE_KERNELS` takes and reports show.
+    pub fn name(self) -> &'static str {
+        match self {
+            Isa::Scalar => "scalar",
+            Isa::Avx2 => "avx2",
+            Isa::AvxVnni => "avxvnni",
+            Isa::Avx512 => "avx512",
+            Isa::Neon => "neon",
+            Isa::NeonDot => "neondot",
+        }
+    }
+
+    /// Whether this processor has every instruction the family's kernels use.
+    pub fn runs_here(self) -> bool {
+        #[cfg(target_arch = "x86_64")]
+        let x86 = |f: &[bool]| f.iter().all(|&b| b);
+        match self {
+            Isa::Scalar => true,
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => x86(&[
+                is_x86_feature_detected!("avx2"),
+                is_x86_feature_detected!("fma"),
+                is_x86_feature_detected!("f16c"),
+            ]),
+            #[cfg(target_arch = "x86_64")]
+            Isa::AvxVnni => Isa::Avx2.runs_here() && is_x86_feature_detected!("avxvnni"),
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => {
+                Isa::Avx2.runs_here()
+                    && x86(&[
+                        is_x86_feature_detected!("avx512f"),
+                        is_x86_feature_detected!("avx512bw"),
+                        is_x86_feature_detected!("avx512vl"),
+                        is_x86_feature_detected!("avx512vnni"),
+                    ])
+            }
+            #[cfg(target_arch = "aarch64")]
+            Isa::Neon => std::arch::is_aarch64_feature_detected!("neon"),
+            #[cfg(target_arch = "aarch64")]
+            Isa::NeonDot => {
+                std::arch::is_aarch64_feature_detected!("neon")
+                    && std::arch::is_aarch64_feature_detected!("dotprod")
+            }
+            #[allow(unreachable_patterns)]
+            _ => false,
+        }
+    }
+}
+
+impl std::fmt::Display for Isa {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+/// Proof that this processor runs one family's kernels: the only way to reach a
+/// kernel. Built by `Kernels::new`, which checks the features, so a packed weight or an
+/// attention call that holds one cannot execute an instruction the processor lacks.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Kernels(Isa);
+
+impl Kernels {
+    /// `isa`'s kernels, when this processor runs them.
+    pub fn new(isa: Isa) -> Option<Kernels> {
+        isa.runs_here().then_some(Kernels(isa))
+    }
+
+    /// The best family this processor runs (checked once).
+    pub fn best() -> Kernels {
+        static BEST: OnceLock<Kernels> = OnceLock::new();
+        *BEST.get_or_init(|| {
+            Isa::ALL
+                .iter()
+                .find_map(|&isa| Kernels::new(isa))
+                .unwrap_or(Kernels(Isa::Scalar))
+        })
+    }
+
+    /// The kernels loads use: the best family, capped by `ASSIZE_KERNELS` (a family
+    /// name such as `avx2` or `scalar`, so that one machine can run a lesser family's
+    /// path); `None` with `ASSIZE_KERNELS=candle` (candle's own kernels, for
+    /// comparison). A family this processor lacks, or an unknown name, is reported
+    /// once on stderr and the best family is used. Read once.
+    pub fn active() -> Option<Kernels> {
+        static ACTIVE: OnceLock<Option<Kernels>> = OnceLock::new();
+        *ACTIVE.get_or_init(|| {
+            let want = std::env::var("ASSIZE_KERNELS").unwrap_or_default();
+            if want.is_empty() {
+                return Some(Kernels::best());
+            }
+            if want == "candle" {
+                return None;
+            }
+            match Isa::ALL.iter().find(|i| i.name() == want) {
+                Some(&isa) => Kernels::new(isa).or_else(|| {
+                    eprintln!(
+                        "warning: ASSIZE_KERNELS={want}: this processor lacks those \
+                         instructions; using {}",
+                        Kernels::best().isa()
+                    );
+                    Some(Kernels::best())
+                }),
+                None => {
+                    let names: Vec<&str> = Isa::ALL.iter().map(|i| i.name()).collect();
+                    eprintln!(
+                        "warning: ASSIZE_KERNELS={want} is not a kernel family ({} or \
+                         candle); using {}",
+                        names.join(", "),
+                        Kernels::best().isa()
+                    );
+                    Some(Kernels::best())
+                }
+            }
+        })
+    }
+
+    /// The kernels of attention and the row operations: the active family, or the best
+    /// one when the matrix products run on candle's (`ASSIZE_KERNELS=candle`).
+    pub fn for_rows() -> Kernels {
+        Kernels::active().unwrap_or_else(Kernels::best)
+    }
+
+    /// The family.
+    pub fn isa(self) -> Isa {
+        self.0
+    }
+}
+
+/// Cached keys and values of one key/value head: rows `j` at `j * stride` of `keys`
+/// and `vals`, of which positions `lo ..= p` are visible.
+pub struct KeyValues<'a> {
+    pub keys: &'a [f32],
+    pub vals: &'a [f32],
+    pub stride: usize,
+    pub lo: usize,
+    pub p: usize,
+}
+
+/// Attention of the query heads `q` (`q.len() / d` heads of `d` values) that share one
+/// key/value head: softmax(q · k · `scale`) · v over the
+/// visible positions, written to `out` (`q.len()` values); `scores` is scratch space.
+/// Keys and values are visited in tiles of `ATTN_TILE` positions that stay in the L1
+/// cache while every head of the unit uses them. Per head: scores of four keys at a
+/// time (each key summed in the same order whatever its group), softmax in position
+/// order, then the weighted sum of values accumulated in position order. A head's
+/// result therefore does not depend on which other heads or rows share its unit. The
+/// vector families take head widths that are a multiple of their lane count (AVX-512
+/// up to 256); any other width runs the scalar kernel.
+pub fn attend(
+    kernels: Kernels,
+    q: &[f32],
+    kv: &KeyValues<'_>,
+    d: usize,
+    scale: f32,
+    out: &mut [f32],
+    scores: &mut Vec<f32>,
+) {
+    assert!(d > 0 && q.len().is_multiple_of(d) && out.len() == q.len());
+    assert!(kv.lo <= kv.p && kv.stride >= d);
+    assert!(kv.keys.len() >= kv.p * kv.stride + d && kv.vals.len() >= kv.p * kv.stride + d);
+    // SAFETY: `kernels` proves the features; the lengths are checked above.
+    match kernels.isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 if d.is_multiple_of(16) && d <= 256 => unsafe {
+            avx512::attend(q, kv, d, scale, out, scores)
+        },
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 | Isa::Avx2 | Isa::AvxVnni if d.is_multiple_of(8) => unsafe {
+            avx2::attend(q, kv, d, scale, out, scores)
+        },
+        #[cfg(target_arch = "aarch64")]
+        Isa::Neon | Isa::NeonDot if d.is_multiple_of(4) => unsafe {
+            neon::attend(q, kv, d, scale, out, scores)
+        },
+        _ => scalar::attend(q, kv, d, scale, out, scores),
+    }
+}
+
+/// `g[i] = act(g[i]) · u[i]`, the gated feed-forward activation of a block, compiled
+/// for each family's vector width (a portable build's baseline has no SIMD rounding
+/// instruction, so this loop would call the C library per element). Element by element
+/// without fused steps, so every family gives the same bits. On ARM, NEON is the
+/// baseline and the plain loop already uses it.
+pub fn gate(kernels: Kernels, act: Activation, g: &mut [f32], u: &[f32]) {
+    assert_eq!(g.len(), u.len(), "gate and up rows of different widths");
+    // SAFETY: `kernels` proves the features.
+    match kernels.isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 => unsafe { avx512::gate(act, g, u) },
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx2 | Isa::AvxVnni => unsafe { avx2::gate(act, g, u) },
+        _ => scalar::gate(act, g, u),
+    }
+}
+
+/// Positions per attention tile: 32 rows of keys or values of width 256 are 32 KiB.
+const ATTN_TILE: usize = 32;
+
+/// Turn each `n`-wide row of scores into softmax weights, in position order, with the
+/// branch-free `exp` (inlined into each family's kernel, so the loops vectorise there).
+#[inline(always)]
+fn softmax(scores: &mut [f32], n: usize) {
+    for row in scores.chunks_exact_mut(n) {
+        let max = row.iter().fold(f32::NEG_INFINITY, |m, &s| m.max(s));
+        for s in row.iter_mut() {
+            *s = exp(*s - max);
+        }
+        let sum = row.iter().fold(0f32, |a, &s| a + s);
+        for s in row.iter_mut() {
+            *s /= sum;
+        }
+    }
 }
 
 /// IEEE 754 binary16 to f32 (exact; subnormals included).
@@ -195,10 +431,10 @@ fn put_f32(dst: &mut [u8], v: f32) {
 }
 
 impl Packed {
-    /// Repack `qt` (`n × k`, GGUF order) for the kernels; `None` when its type or shape
+    /// Repack `qt` (`n × k`, GGUF order) for `kernels`; `None` when its type or shape
     /// is not covered (`n` must be a multiple of 16; `k` of 256 for Q4_K / Q6_K, of 32
     /// for Q4_0 / Q5_0 / Q8_0).
-    pub fn new(qt: &QTensor) -> candle_core::Result<Option<Packed>> {
+    pub fn new(qt: &QTensor, kernels: Kernels) -> candle_core::Result<Option<Packed>> {
         let (n, k) = qt.shape().dims2()?;
         if n == 0 || k == 0 || !n.is_multiple_of(TILE_N) {
             return Ok(None);
@@ -264,6 +500,7 @@ impl Packed {
         }
         Ok(Some(Packed {
             format,
+            kernels,
             n,
             k,
             tile_bytes,
@@ -355,6 +592,11 @@ impl Packed {
         self.format
     }
 
+    /// The kernels this weight runs on.
+    pub fn kernels(&self) -> Kernels {
+        self.kernels
+    }
+
     /// `y = x · Wᵀ` for `m` rows of `x` (`m × k`, row-major): `m × n`, on candle's
     /// worker pool.
     pub fn forward(&self, x: &[f32], m: usize) -> Vec<f32> {
@@ -377,7 +619,8 @@ impl Packed {
             "weights of different widths"
         );
         assert_eq!(x.len(), m * k, "activation rows of the wrong width");
-        let acts = Acts::quantise(x, m, k, parallel);
+        let kernels = weights.first().map_or(Kernels(Isa::Scalar), |w| w.kernels);
+        let acts = Acts::quantise(x, m, k, parallel, kernels);
         let mut outs: Vec<Vec<f32>> = weights.iter().map(|w| vec![0f32; m * w.n]).collect();
         let shared: Vec<SharedOut> = outs.iter_mut().map(|o| SharedOut(o.as_mut_ptr())).collect();
         // First tile number of each weight in the combined range.
@@ -395,8 +638,7 @@ impl Packed {
                     wi += 1;
                 }
                 // SAFETY: tile t writes only columns [16 t', 16 t' + 16) of each row of
-                // its weight's output, which outlives this call; features checked by
-                // `enabled()`.
+                // its weight's output, which outlives this call.
                 unsafe { weights[wi].tile(t - starts[wi], &acts, shared[wi].ptr()) };
             }
         };
@@ -410,6 +652,11 @@ impl Packed {
 
     /// All rows of `acts` against tile `t`, `MT` rows at a time, then one by one; the
     /// per-row instruction sequence is the same either way.
+    ///
+    /// # Safety
+    /// `t` is a tile of this weight, `acts` holds rows of width `self.k`, and `out`
+    /// points at column `16 t` of row 0 of an `acts.m × self.n` output that no other
+    /// thread writes in columns `16 t .. 16 t + 16`.
     unsafe fn tile(&self, t: usize, acts: &Acts, out: *mut f32) {
         let base = self.data.ptr.add(t * self.tile_bytes);
         let mut r = 0;
@@ -423,17 +670,37 @@ impl Packed {
         }
     }
 
+    /// Rows `r0 .. r0 + R` against the tile at `w`, on this weight's kernels.
+    ///
+    /// # Safety
+    /// As `tile`; `w` is the start of one of this weight's tiles and `out` its first
+    /// output column in row `r0`. The features are those `self.kernels` checked.
     #[inline(always)]
     unsafe fn rows<const R: usize>(&self, w: *const u8, a: &Acts, r0: usize, out: *mut f32) {
-        #[cfg(target_arch = "x86_64")]
-        match self.format {
-            Format::Q4K => vnni::q4k::<R>(w, a, r0, self.n, out),
-            Format::Q6K => vnni::q6k::<R>(w, a, r0, self.n, out),
-            Format::Q5 => vnni::q5::<R>(w, a, r0, self.k.div_ceil(64), self.n, out),
-            Format::Q8_0 => vnni::q8_0::<R>(w, a, r0, self.k / 32, self.n, out),
+        let (n, pairs, blocks) = (self.n, self.k.div_ceil(64), self.k / 32);
+        macro_rules! family {
+            ($m:ident $(, $v:literal)?) => {
+                match self.format {
+                    Format::Q4K => $m::q4k::<R $(, $v)?>(w, a, r0, n, out),
+                    Format::Q6K => $m::q6k::<R $(, $v)?>(w, a, r0, n, out),
+                    Format::Q5 => $m::q5::<R $(, $v)?>(w, a, r0, pairs, n, out),
+                    Format::Q8_0 => $m::q8_0::<R $(, $v)?>(w, a, r0, blocks, n, out),
+                }
+            };
         }
-        #[cfg(not(target_arch = "x86_64"))]
-        let _ = (w, a, r0, out);
+        match self.kernels.isa() {
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => family!(avx512),
+            #[cfg(target_arch = "x86_64")]
+            Isa::AvxVnni => family!(avx2, true),
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => family!(avx2, false),
+            #[cfg(target_arch = "aarch64")]
+            Isa::NeonDot => family!(neon, true),
+            #[cfg(target_arch = "aarch64")]
+            Isa::Neon => family!(neon, false),
+            _ => family!(scalar),
+        }
     }
 }
 
@@ -545,7 +812,7 @@ struct Acts {
 }
 
 impl Acts {
-    fn quantise(x: &[f32], m: usize, k: usize, parallel: bool) -> Acts {
+    fn quantise(x: &[f32], m: usize, k: usize, parallel: bool, kernels: Kernels) -> Acts {
         let kb = k.div_ceil(QK);
         let mut a = Acts {
             m,
@@ -566,7 +833,7 @@ impl Acts {
         let unit = |rows: std::ops::Range<usize>| {
             for r in rows {
                 // SAFETY: row r writes only its own slices of the buffers.
-                unsafe { ptrs.row(r, &x[r * k..(r + 1) * k], kb) };
+                unsafe { ptrs.row(r, &x[r * k..(r + 1) * k], kb, kernels) };
             }
         };
         if parallel && m > 1 {
@@ -590,11 +857,15 @@ struct ActsPtrs {
 unsafe impl Sync for ActsPtrs {}
 
 impl ActsPtrs {
-    unsafe fn row(&self, r: usize, x: &[f32], kb: usize) {
+    /// Quantise activation row `r` (`x`, at most `kb` super-blocks wide).
+    ///
+    /// # Safety
+    /// `r` is a row of the buffers these pointers view, and no other thread writes it.
+    unsafe fn row(&self, r: usize, x: &[f32], kb: usize, kernels: Kernels) {
         let q = std::slice::from_raw_parts_mut(self.q.add(r * kb * QK), kb * QK);
         for (b, xs) in x.chunks(QK).enumerate() {
             let mut s16 = [0i32; 16];
-            let d = quantise_block(xs, &mut q[b * QK..(b + 1) * QK], &mut s16);
+            let d = quantise_block(xs, &mut q[b * QK..(b + 1) * QK], &mut s16, kernels);
             *self.d.add(r * kb + b) = d;
             for p in 0..4 {
                 let lo = (s16[4 * p] + s16[4 * p + 1]) as i16 as u16 as u32;
@@ -616,22 +887,16 @@ impl ActsPtrs {
 /// largest value to −127 instead of +127; that flips the signs of both `q` and `d`
 /// and leaves every product `d · q` unchanged. Returns `d`; `sums` gets the sums of
 /// each 16 quants.
-fn quantise_block(xs: &[f32], q: &mut [i8], sums: &mut [i32; 16]) -> f32 {
-    #[cfg(target_arch = "x86_64")]
-    if available() {
-        // SAFETY: features checked just above.
-        return unsafe { vnni::quantise(xs, q, sums) };
+fn quantise_block(xs: &[f32], q: &mut [i8], sums: &mut [i32; 16], kernels: Kernels) -> f32 {
+    assert!(xs.len().is_multiple_of(16) && xs.len() <= q.len());
+    // SAFETY: `kernels` proves the features; the lengths are checked above.
+    match kernels.isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 => unsafe { avx512::quantise(xs, q, sums) },
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx2 | Isa::AvxVnni => unsafe { avx2::quantise(xs, q, sums) },
+        _ => scalar::quantise(xs, q, sums),
     }
-    let amax = xs.iter().fold(0f32, |a, v| a.max(v.abs()));
-    if amax == 0.0 {
-        return 0.0;
-    }
-    let iscale = 127.0 / amax;
-    for (j, (q, &v)) in q.iter_mut().zip(xs).enumerate() {
-        *q = (iscale * v).round_ties_even().clamp(-128.0, 127.0) as i8;
-        sums[j / 16] += *q as i32;
-    }
-    1.0 / iscale
 }
 
 /// Output buffer shared by tile workers; each writes its own 16 columns.
@@ -641,354 +906,6 @@ unsafe impl Sync for SharedOut {}
 impl SharedOut {
     fn ptr(&self) -> *mut f32 {
         self.0
-    }
-}
-
-#[cfg(target_arch = "x86_64")]
-mod vnni {
-    use super::{Acts, QK};
-    use std::arch::x86_64::*;
-
-    /// Broadcast 4 activation quants (one i32) to all lanes.
-    #[inline(always)]
-    unsafe fn bcast(p: *const i8) -> __m512i {
-        _mm512_set1_epi32((p as *const i32).read_unaligned())
-    }
-
-    /// Bytes ahead of each weight load that are requested early. A single row leaves
-    /// the core mostly waiting on memory; asking for lines this far ahead overlaps the
-    /// wait with arithmetic (tiles of one worker's range are contiguous). 2 KiB was
-    /// the best of 0, 1, 2, 4 and 8 KiB in `cargo bench --bench kernels`.
-    const PREFETCH: usize = 2048;
-
-    /// Load one 64-byte line of a tile and request the line `PREFETCH` bytes ahead.
-    #[inline(always)]
-    unsafe fn load(p: *const u8) -> __m512i {
-        _mm_prefetch::<_MM_HINT_T0>(p.wrapping_add(PREFETCH) as *const i8);
-        _mm512_load_si512(p as *const __m512i)
-    }
-
-    /// `quantise_block` 16 values at a time.
-    #[target_feature(enable = "avx512f,avx512bw")]
-    pub(super) unsafe fn quantise(xs: &[f32], q: &mut [i8], sums: &mut [i32; 16]) -> f32 {
-        let mut vmax = _mm512_setzero_ps();
-        for c in xs.chunks_exact(16) {
-            vmax = _mm512_max_ps(vmax, _mm512_abs_ps(_mm512_loadu_ps(c.as_ptr())));
-        }
-        let amax = _mm512_reduce_max_ps(vmax);
-        if amax == 0.0 {
-            return 0.0;
-        }
-        let iscale = 127.0 / amax;
-        let s = _mm512_set1_ps(iscale);
-        let lo = _mm512_set1_epi32(-128);
-        let hi = _mm512_set1_epi32(127);
-        for (i, c) in xs.chunks_exact(16).enumerate() {
-            let v = _mm512_mul_ps(_mm512_loadu_ps(c.as_ptr()), s);
-            let r = _mm512_cvtps_epi32(v); // MXCSR default: nearest, ties to even
-            let r = _mm512_min_epi32(_mm512_max_epi32(r, lo), hi);
-            sums[i] = _mm512_reduce_add_epi32(r);
-            _mm_storeu_si128(
-                q.as_mut_ptr().add(i * 16) as *mut __m128i,
-                _mm512_cvtepi32_epi8(r),
-            );
-        }
-        1.0 / iscale
-    }
-
-    /// Q4_K: `R` rows from `r0` against one tile.
-    #[target_feature(enable = "avx512f,avx512bw,avx512vnni,f16c")]
-    pub(super) unsafe fn q4k<const R: usize>(
-        w: *const u8,
-        a: &Acts,
-        r0: usize,
-        n: usize,
-        out: *mut f32,
-    ) {
-        let mask = _mm512_set1_epi8(0x0f);
-        let kb = a.kb;
-        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
-        let mut acc = [_mm512_setzero_ps(); R];
-        for b in 0..kb {
-            let sb = w.add(b * super::Q4K_SB);
-            let mut sumi = [_mm512_setzero_si512(); R];
-            for sp in 0..4 {
-                let mut ia = [_mm512_setzero_si512(); R];
-                let mut ib = [_mm512_setzero_si512(); R];
-                for g in 0..4 {
-                    let wa = load(sb.add((sp * 8 + g) * 64));
-                    let wb = load(sb.add((sp * 8 + 4 + g) * 64));
-                    let la = _mm512_and_si512(wa, mask);
-                    let ha = _mm512_and_si512(_mm512_srli_epi16::<4>(wa), mask);
-                    let lb = _mm512_and_si512(wb, mask);
-                    let hb = _mm512_and_si512(_mm512_srli_epi16::<4>(wb), mask);
-                    let off = b * QK + sp * 64 + g * 8;
-                    for i in 0..R {
-                        let x = xq[i].add(off);
-                        ia[i] = _mm512_dpbusd_epi32(ia[i], la, bcast(x));
-                        ia[i] = _mm512_dpbusd_epi32(ia[i], ha, bcast(x.add(4)));
-                        ib[i] = _mm512_dpbusd_epi32(ib[i], lb, bcast(x.add(32)));
-                        ib[i] = _mm512_dpbusd_epi32(ib[i], hb, bcast(x.add(36)));
-                    }
-                }
-                let sa = _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32) as *const _));
-                let sbv =
-                    _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32 + 16) as *const _));
-                for i in 0..R {
-                    let t = _mm512_add_epi32(
-                        _mm512_mullo_epi32(ia[i], sa),
-                        _mm512_mullo_epi32(ib[i], sbv),
-                    );
-                    sumi[i] = _mm512_add_epi32(sumi[i], t);
-                }
-            }
-            let mut mins = [_mm512_setzero_si512(); R];
-            for p in 0..4 {
-                let mn = _mm512_cvtepu8_epi16(_mm256_load_si256(sb.add(2176 + p * 32) as *const _));
-                for (i, acc) in mins.iter_mut().enumerate() {
-                    let s = *a.sum32_pairs.get_unchecked(((r0 + i) * kb + b) * 4 + p);
-                    *acc = _mm512_dpwssd_epi32(*acc, mn, _mm512_set1_epi32(s));
-                }
-            }
-            let d = _mm512_cvtph_ps(_mm256_load_si256(sb.add(2304) as *const __m256i));
-            let dmin = _mm512_cvtph_ps(_mm256_load_si256(sb.add(2336) as *const __m256i));
-            for i in 0..R {
-                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                let f = _mm512_cvtepi32_ps(sumi[i]);
-                acc[i] = _mm512_fmadd_ps(f, _mm512_mul_ps(d, dx), acc[i]);
-                let fm = _mm512_cvtepi32_ps(mins[i]);
-                acc[i] = _mm512_fnmadd_ps(fm, _mm512_mul_ps(dmin, dx), acc[i]);
-            }
-        }
-        for (i, v) in acc.iter().enumerate() {
-            _mm512_storeu_ps(out.add(i * n), *v);
-        }
-    }
-
-    /// Top bits of a Q6_K value moved to bits 4-5 of each byte: `S` = 4 - 4 gg for the
-    /// low value of nibble line `2 gp + gg`, 2 - 4 gg for its high value.
-    #[inline(always)]
-    unsafe fn top2<const S: i32>(h: __m512i) -> __m512i {
-        let m = _mm512_set1_epi8(0x30);
-        match S {
-            4 => _mm512_and_si512(_mm512_slli_epi16::<4>(h), m),
-            2 => _mm512_and_si512(_mm512_slli_epi16::<2>(h), m),
-            0 => _mm512_and_si512(h, m),
-            _ => _mm512_and_si512(_mm512_srli_epi16::<2>(h), m),
-        }
-    }
-
-    /// Q6_K: `R` rows from `r0` against one tile.
-    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
-    pub(super) unsafe fn q6k<const R: usize>(
-        w: *const u8,
-        a: &Acts,
-        r0: usize,
-        n: usize,
-        out: *mut f32,
-    ) {
-        let mask = _mm512_set1_epi8(0x0f);
-        let kb = a.kb;
-        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
-        let mut acc = [_mm512_setzero_ps(); R];
-        for b in 0..kb {
-            let sb = w.add(b * super::Q6K_SB);
-            let mut sumi = [_mm512_setzero_si512(); R];
-            for s in 0..8 {
-                let c = |i: usize, sub: usize| {
-                    _mm512_set1_epi32(*a.corr16.get_unchecked(((r0 + i) * kb + b) * 16 + sub))
-                };
-                // Sub-block 2 s is nibble lines g = 0, 1 (top bits line gp = 0);
-                // sub-block 2 s + 1 is g = 2, 3 (gp = 1).
-                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * s));
-                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, 2 * s + 1));
-                for gp in 0..2 {
-                    let h = load(sb.add(2048 + (s * 2 + gp) * 64));
-                    for gg in 0..2 {
-                        let g = 2 * gp + gg;
-                        let wv = load(sb.add((s * 4 + g) * 64));
-                        let (tl, th) = if gg == 0 {
-                            (top2::<4>(h), top2::<2>(h))
-                        } else {
-                            (top2::<0>(h), top2::<-2>(h))
-                        };
-                        let lo = _mm512_or_si512(_mm512_and_si512(wv, mask), tl);
-                        let hi =
-                            _mm512_or_si512(_mm512_and_si512(_mm512_srli_epi16::<4>(wv), mask), th);
-                        let off = b * QK + s * 32 + g * 8;
-                        let dst = if gp == 0 { &mut ia } else { &mut ib };
-                        for i in 0..R {
-                            let x = xq[i].add(off);
-                            dst[i] = _mm512_dpbusd_epi32(dst[i], lo, bcast(x));
-                            dst[i] = _mm512_dpbusd_epi32(dst[i], hi, bcast(x.add(4)));
-                        }
-                    }
-                }
-                let sa = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32) as *const _));
-                let sbv =
-                    _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32 + 16) as *const _));
-                for i in 0..R {
-                    let t = _mm512_add_epi32(
-                        _mm512_mullo_epi32(ia[i], sa),
-                        _mm512_mullo_epi32(ib[i], sbv),
-                    );
-                    sumi[i] = _mm512_add_epi32(sumi[i], t);
-                }
-            }
-            let d = _mm512_load_ps(sb.add(3328) as *const f32);
-            for i in 0..R {
-                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                let f = _mm512_cvtepi32_ps(sumi[i]);
-                acc[i] = _mm512_fmadd_ps(f, _mm512_mul_ps(d, dx), acc[i]);
-            }
-        }
-        for (i, v) in acc.iter().enumerate() {
-            _mm512_storeu_ps(out.add(i * n), *v);
-        }
-    }
-
-    /// Fifth bit of a Q5_0 value moved to bit 4 of each byte: `S` = 4 - bit, for the
-    /// value whose fifth bit sits at `bit` (0..7) of its byte.
-    #[inline(always)]
-    unsafe fn fifth<const S: i32>(h: __m512i) -> __m512i {
-        let m = _mm512_set1_epi8(0x10);
-        let v = match S {
-            4 => _mm512_slli_epi16::<4>(h),
-            3 => _mm512_slli_epi16::<3>(h),
-            2 => _mm512_slli_epi16::<2>(h),
-            1 => _mm512_slli_epi16::<1>(h),
-            0 => h,
-            -1 => _mm512_srli_epi16::<1>(h),
-            -2 => _mm512_srli_epi16::<2>(h),
-            _ => _mm512_srli_epi16::<3>(h),
-        };
-        _mm512_and_si512(v, m)
-    }
-
-    /// Q5_0 (`pairs` 64-value units per row): `R` rows from `r0` against one tile.
-    #[target_feature(enable = "avx512f,avx512bw,avx512vnni,f16c")]
-    pub(super) unsafe fn q5<const R: usize>(
-        w: *const u8,
-        a: &Acts,
-        r0: usize,
-        pairs: usize,
-        n: usize,
-        out: *mut f32,
-    ) {
-        let mask = _mm512_set1_epi8(0x0f);
-        let kb = a.kb;
-        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
-        // Σ (q − 16) x = Σ q x − 16 Σ x, and corr32 holds −128 Σ x per block.
-        let c = |i: usize, blk: usize| {
-            _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk) / 8)
-        };
-        let mut acc = [_mm512_setzero_ps(); R];
-        for b in 0..kb {
-            let mut f = [_mm512_setzero_ps(); R];
-            for p in b * 4..pairs.min(b * 4 + 4) {
-                let unit = w.add(p * super::Q5_PAIR);
-                for half in 0..2 {
-                    let blk = 2 * p + half;
-                    let h = load(unit.add(512 + half * 64));
-                    let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, blk));
-                    for g in 0..4 {
-                        let wv = load(unit.add((half * 4 + g) * 64));
-                        let (fl, fh) = match g {
-                            0 => (fifth::<4>(h), fifth::<3>(h)),
-                            1 => (fifth::<2>(h), fifth::<1>(h)),
-                            2 => (fifth::<0>(h), fifth::<-1>(h)),
-                            _ => (fifth::<-2>(h), fifth::<-3>(h)),
-                        };
-                        let lo = _mm512_or_si512(_mm512_and_si512(wv, mask), fl);
-                        let hi =
-                            _mm512_or_si512(_mm512_and_si512(_mm512_srli_epi16::<4>(wv), mask), fh);
-                        let off = blk * 32 + g * 8;
-                        for i in 0..R {
-                            let x = xq[i].add(off);
-                            ia[i] = _mm512_dpbusd_epi32(ia[i], lo, bcast(x));
-                            ia[i] = _mm512_dpbusd_epi32(ia[i], hi, bcast(x.add(4)));
-                        }
-                    }
-                    let d = _mm512_cvtph_ps(_mm256_load_si256(
-                        unit.add(640 + half * 32) as *const __m256i
-                    ));
-                    for i in 0..R {
-                        f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), d, f[i]);
-                    }
-                }
-            }
-            for i in 0..R {
-                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                acc[i] = _mm512_fmadd_ps(f[i], dx, acc[i]);
-            }
-        }
-        for (i, v) in acc.iter().enumerate() {
-            _mm512_storeu_ps(out.add(i * n), *v);
-        }
-    }
-
-    /// Q8_0 (`nb` 32-value blocks per row): `R` rows from `r0` against one tile.
-    #[target_feature(enable = "avx512f,avx512bw,avx512vnni")]
-    pub(super) unsafe fn q8_0<const R: usize>(
-        w: *const u8,
-        a: &Acts,
-        r0: usize,
-        nb: usize,
-        n: usize,
-        out: *mut f32,
-    ) {
-        let kb = a.kb;
-        let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
-        let c = |i: usize, blk: usize| {
-            _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk))
-        };
-        let mut acc = [_mm512_setzero_ps(); R];
-        for b in 0..kb {
-            let end = nb.min(b * 8 + 8);
-            let mut f = [_mm512_setzero_ps(); R];
-            let mut j = b * 8;
-            while j + 2 <= end {
-                let (pa, pb) = (w.add(j * super::Q8_BLK), w.add((j + 1) * super::Q8_BLK));
-                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, j));
-                let mut ib: [__m512i; R] = std::array::from_fn(|i| c(i, j + 1));
-                for g in 0..8 {
-                    let (wa, wb) = (load(pa.add(g * 64)), load(pb.add(g * 64)));
-                    for i in 0..R {
-                        let x = xq[i].add(j * 32 + g * 4);
-                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(x));
-                        ib[i] = _mm512_dpbusd_epi32(ib[i], wb, bcast(x.add(32)));
-                    }
-                }
-                let da = _mm512_load_ps(pa.add(512) as *const f32);
-                let db = _mm512_load_ps(pb.add(512) as *const f32);
-                for i in 0..R {
-                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), da, f[i]);
-                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ib[i]), db, f[i]);
-                }
-                j += 2;
-            }
-            if j < end {
-                let pa = w.add(j * super::Q8_BLK);
-                let mut ia: [__m512i; R] = std::array::from_fn(|i| c(i, j));
-                for g in 0..8 {
-                    let wa = load(pa.add(g * 64));
-                    for i in 0..R {
-                        ia[i] = _mm512_dpbusd_epi32(ia[i], wa, bcast(xq[i].add(j * 32 + g * 4)));
-                    }
-                }
-                let da = _mm512_load_ps(pa.add(512) as *const f32);
-                for i in 0..R {
-                    f[i] = _mm512_fmadd_ps(_mm512_cvtepi32_ps(ia[i]), da, f[i]);
-                }
-            }
-            for i in 0..R {
-                let dx = _mm512_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                acc[i] = _mm512_fmadd_ps(f[i], dx, acc[i]);
-            }
-        }
-        for (i, v) in acc.iter().enumerate() {
-            _mm512_storeu_ps(out.add(i * n), *v);
-        }
     }
 }
 
@@ -1029,7 +946,7 @@ mod tests {
             .and_then(|t| t.flatten_all())
             .and_then(|t| t.to_vec1::<f32>())
             .expect("dequantize");
-        let a = Acts::quantise(x, m, k, false);
+        let a = Acts::quantise(x, m, k, false, Kernels(Isa::Scalar));
         let mut y = vec![0f64; m * n];
         let mut mag = vec![0f64; m * n];
         for r in 0..m {
@@ -1047,12 +964,12 @@ mod tests {
         (y, mag)
     }
 
+    /// The scalar kernel of `dtype` against `reference`.
     fn check_against_reference(dtype: GgmlDType, n: usize, k: usize, m: usize) {
-        if !available() {
-            return;
-        }
         let qt = quantised(dtype, n, k, 7);
-        let p = Packed::new(&qt).expect("pack").expect("covered");
+        let p = Packed::new(&qt, Kernels(Isa::Scalar))
+            .expect("pack")
+            .expect("covered");
         let x = values(m, k, 11);
         let y = p.forward(&x, m);
         let (want, mag) = reference(&qt, &x, m);
@@ -1069,27 +986,27 @@ mod tests {
     /// product of candle's dequantised weights with the same Q8_K activations, up to
     /// f32 rounding.
     #[test]
-    fn q4k_gemm_matches_dequantised_reference() {
+    fn scalar_q4k_gemm_matches_dequantised_reference() {
         check_against_reference(GgmlDType::Q4K, 48, 512, 6);
     }
 
     /// ggml `block_q6_K`: as for Q4_K.
     #[test]
-    fn q6k_gemm_matches_dequantised_reference() {
+    fn scalar_q6k_gemm_matches_dequantised_reference() {
         check_against_reference(GgmlDType::Q6K, 32, 768, 5);
     }
 
     /// ggml `block_q8_0`, with an inner width (640) that ends in a partial activation
     /// super-block.
     #[test]
-    fn q8_0_gemm_with_partial_superblock_matches_dequantised_reference() {
+    fn scalar_q8_0_gemm_with_partial_superblock_matches_dequantised_reference() {
         check_against_reference(GgmlDType::Q8_0, 32, 640, 7);
     }
 
     /// ggml `block_q5_0` (Gerganov et al., `ggml-quants.c`): its own 5.5-bit tiles, with
     /// an even (896 = 28 blocks) and an odd (864 = 27 blocks) block count per row.
     #[test]
-    fn q5_0_gemm_matches_dequantised_reference() {
+    fn scalar_q5_0_gemm_matches_dequantised_reference() {
         check_against_reference(GgmlDType::Q5_0, 16, 896, 4);
         check_against_reference(GgmlDType::Q5_0, 32, 864, 5);
     }
@@ -1097,7 +1014,7 @@ mod tests {
     /// ggml `block_q4_0` weights become Q8_0 tiles exactly: the reference uses candle's
     /// dequantisation of the original Q4_0 weight.
     #[test]
-    fn q4_0_weights_repack_exactly_as_q8_0() {
+    fn scalar_q4_0_weights_repack_exactly_as_q8_0() {
         check_against_reference(GgmlDType::Q4_0, 16, 320, 3);
     }
 
@@ -1115,7 +1032,9 @@ mod tests {
         ] {
             let n = 32;
             let qt = quantised(dtype, n, k, 6);
-            let p = Packed::new(&qt).expect("pack").expect("covered");
+            let p = Packed::new(&qt, Kernels::best())
+                .expect("pack")
+                .expect("covered");
             let want = qt
                 .dequantize(&Device::Cpu)
                 .and_then(|t| t.flatten_all())
@@ -1134,9 +1053,6 @@ mod tests {
     /// Several weights in one pool call give the bits of separate calls.
     #[test]
     fn fused_weights_equal_separate_calls() {
-        if !available() {
-            return;
-        }
         let k = 512;
         let ws: Vec<Packed> = [
             GgmlDType::Q4K,
@@ -1147,7 +1063,7 @@ mod tests {
         .iter()
         .enumerate()
         .map(|(i, &t)| {
-            Packed::new(&quantised(t, 16 * (i + 1), k, i as u64))
+            Packed::new(&quantised(t, 16 * (i + 1), k, i as u64), Kernels::best())
                 .expect("pack")
                 .expect("covered")
         })
@@ -1179,7 +1095,7 @@ mod tests {
             .and_then(|t| t.flatten_all())
             .and_then(|t| t.to_vec1::<f32>())
             .expect("candle q8k");
-        let a = Acts::quantise(&x, m, k, false);
+        let a = Acts::quantise(&x, m, k, false, Kernels(Isa::Scalar));
         let ours: Vec<f32> = (0..m * k).map(|i| a.d[i / QK] * a.q[i] as f32).collect();
         // Compared as values: ggml's opposite sign turns some zero products into -0.
         assert_eq!(ours, want);
@@ -1190,9 +1106,6 @@ mod tests {
     /// for bit, for every format.
     #[test]
     fn row_result_is_identical_alone_and_in_a_batch_of_37() {
-        if !available() {
-            return;
-        }
         for (dtype, k) in [
             (GgmlDType::Q4K, 512),
             (GgmlDType::Q6K, 256),
@@ -1200,7 +1113,7 @@ mod tests {
             (GgmlDType::Q8_0, 320),
         ] {
             let (n, m) = (32, 37);
-            let p = Packed::new(&quantised(dtype, n, k, 3))
+            let p = Packed::new(&quantised(dtype, n, k, 3), Kernels::best())
                 .expect("pack")
                 .expect("covered");
             let x = values(m, k, 9);
@@ -1219,9 +1132,6 @@ mod tests {
     /// The same bits whether the tiles run on candle's worker pool or on one thread.
     #[test]
     fn pooled_and_single_thread_runs_are_bit_identical() {
-        if !available() {
-            return;
-        }
         for dtype in [
             GgmlDType::Q4K,
             GgmlDType::Q6K,
@@ -1229,7 +1139,7 @@ mod tests {
             GgmlDType::Q8_0,
         ] {
             let (n, k, m) = (256, 512, 37);
-            let p = Packed::new(&quantised(dtype, n, k, 4))
+            let p = Packed::new(&quantised(dtype, n, k, 4), Kernels::best())
                 .expect("pack")
                 .expect("covered");
             let x = values(m, k, 8);
@@ -1245,9 +1155,9 @@ mod tests {
     #[test]
     fn uncovered_shapes_and_types_are_declined() {
         let odd_n = quantised(GgmlDType::Q4K, 24, 256, 1);
-        assert!(Packed::new(&odd_n).expect("pack").is_none());
+        assert!(Packed::new(&odd_n, Kernels::best()).expect("pack").is_none());
         let q4_1 = quantised(GgmlDType::Q4_1, 16, 256, 1);
-        assert!(Packed::new(&q4_1).expect("pack").is_none());
+        assert!(Packed::new(&q4_1, Kernels::best()).expect("pack").is_none());
     }
 
     /// binary16 edge values convert exactly (IEEE 754-2008 encodings).
@@ -1259,5 +1169,165 @@ mod tests {
         assert_eq!(f16_to_f32(0x7bff), 65504.0);
         assert_eq!(f16_to_f32(0x8000).to_bits(), (-0.0f32).to_bits());
         assert!(f16_to_f32(0x7c00).is_infinite());
+    }
+
+    /// `isa`'s kernels, or `None` after saying on the terminal (past the test
+    /// harness's capture) that the test was skipped and why.
+    fn family(isa: Isa, test: &str) -> Option<Kernels> {
+        let k = Kernels::new(isa);
+        if k.is_none() {
+            use std::io::Write;
+            let _ = writeln!(
+                std::io::stderr(),
+                "{test}: skipped: this processor lacks the {isa} instructions"
+            );
+        }
+        k
+    }
+
+    /// Every weight format, with inner widths that end in partial activation
+    /// super-blocks and odd block counts, and row counts that use the four-row and
+    /// the one-row kernels: `isa`'s products, activation quants and gated activations
+    /// equal the scalar kernels' bit for bit.
+    fn products_equal_scalar(isa: Isa, test: &str) {
+        let Some(kernels) = family(isa, test) else {
+            return;
+        };
+        let scalar = Kernels(Isa::Scalar);
+        let up = values(1, 999, 2);
+        for act in [Activation::Silu, Activation::GeluTanh] {
+            let (mut ours, mut reference) = (values(1, 999, 1), values(1, 999, 1));
+            gate(kernels, act, &mut ours, &up);
+            gate(scalar, act, &mut reference, &up);
+            assert_eq!(bits(&ours), bits(&reference), "{isa} {act:?}");
+        }
+        for (dtype, n, k) in [
+            (GgmlDType::Q4K, 48, 768),
+            (GgmlDType::Q6K, 32, 512),
+            (GgmlDType::Q5_0, 32, 864),
+            (GgmlDType::Q5_0, 16, 896),
+            (GgmlDType::Q8_0, 32, 640),
+            (GgmlDType::Q4_0, 16, 320),
+        ] {
+            let qt = quantised(dtype, n, k, 5);
+            let ours = Packed::new(&qt, kernels).expect("pack").expect("covered");
+            let reference = Packed::new(&qt, scalar).expect("pack").expect("covered");
+            for m in [1, 3, 9] {
+                let x = values(m, k, 13 + m as u64);
+                let (a, b) = (
+                    Acts::quantise(&x, m, k, false, kernels),
+                    Acts::quantise(&x, m, k, false, scalar),
+                );
+                assert_eq!((&a.q, bits(&a.d)), (&b.q, bits(&b.d)), "{dtype:?} quants");
+                assert_eq!(
+                    bits(&ours.forward(&x, m)),
+                    bits(&reference.forward(&x, m)),
+                    "{isa} {dtype:?} {n}x{k}, {m} rows"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn avx512_products_equal_scalar() {
+        products_equal_scalar(Isa::Avx512, "avx512_products_equal_scalar");
+    }
+
+    #[test]
+    fn avx2_products_equal_scalar() {
+        products_equal_scalar(Isa::Avx2, "avx2_products_equal_scalar");
+    }
+
+    #[test]
+    fn avx2_vnni_products_equal_scalar() {
+        products_equal_scalar(Isa::AvxVnni, "avx2_vnni_products_equal_scalar");
+    }
+
+    #[test]
+    fn neon_products_equal_scalar() {
+        products_equal_scalar(Isa::Neon, "neon_products_equal_scalar");
+    }
+
+    #[test]
+    fn neon_dot_products_equal_scalar() {
+        products_equal_scalar(Isa::NeonDot, "neon_dot_products_equal_scalar");
+    }
+
+    /// Scaled dot-product attention (Vaswani et al. 2017) from its definition, in f64:
+    /// softmax(q·k · scale) · v over positions `lo..=p` of rows at `stride`.
+    fn textbook(q: &[f32], kv: &KeyValues<'_>, d: usize, scale: f64) -> Vec<f64> {
+        let s: Vec<f64> = (kv.lo..=kv.p)
+            .map(|j| (0..d).map(|i| q[i] as f64 * kv.keys[j * kv.stride + i] as f64).sum::<f64>() * scale)
+            .collect();
+        let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+        let w: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
+        let z: f64 = w.iter().sum();
+        (0..d)
+            .map(|i| (kv.lo..=kv.p).zip(&w).map(|(j, w)| w / z * kv.vals[j * kv.stride + i] as f64).sum())
+            .collect()
+    }
+
+    /// `isa`'s attention of three heads over one key/value head, for head widths its
+    /// vector kernel takes (64, 128, 256, and widths of 8 and 16 lanes) and one it
+    /// hands to the scalar kernel (36), with and without a window start: each head
+    /// within 1e-5 of the definition, and bit for bit the same computed alone.
+    fn attention_matches_definition(isa: Isa, test: &str) {
+        let Some(kernels) = family(isa, test) else {
+            return;
+        };
+        for (d, lo, p) in [(64, 0, 40), (128, 3, 37), (256, 0, 9), (48, 5, 70), (40, 0, 33), (36, 2, 20)] {
+            let stride = d + 8;
+            let keys = values(p + 1, stride, 3);
+            let vals = values(p + 1, stride, 4);
+            let kv = KeyValues { keys: &keys, vals: &vals, stride, lo, p };
+            let q = values(3, d, 5);
+            let scale = 1.0 / (d as f32).sqrt();
+            let (mut out, mut scratch) = (vec![0f32; q.len()], Vec::new());
+            attend(kernels, &q, &kv, d, scale, &mut out, &mut scratch);
+            for (h, (qh, oh)) in q.chunks(d).zip(out.chunks(d)).enumerate() {
+                let want = textbook(qh, &kv, d, scale as f64);
+                for (got, want) in oh.iter().zip(&want) {
+                    assert!((*got as f64 - want).abs() < 1e-5, "{isa} d {d} head {h}: {got} vs {want}");
+                }
+                let mut alone = vec![0f32; d];
+                attend(kernels, qh, &kv, d, scale, &mut alone, &mut scratch);
+                assert_eq!(bits(&alone), bits(oh), "{isa} d {d} head {h} alone");
+            }
+        }
+    }
+
+    #[test]
+    fn scalar_attention_matches_definition() {
+        attention_matches_definition(Isa::Scalar, "scalar_attention_matches_definition");
+    }
+
+    #[test]
+    fn avx512_attention_matches_definition() {
+        attention_matches_definition(Isa::Avx512, "avx512_attention_matches_definition");
+    }
+
+    #[test]
+    fn avx2_attention_matches_definition() {
+        attention_matches_definition(Isa::Avx2, "avx2_attention_matches_definition");
+    }
+
+    #[test]
+    fn neon_attention_matches_definition() {
+        attention_matches_definition(Isa::Neon, "neon_attention_matches_definition");
+    }
+
+    /// A family this processor lacks cannot be asked for: `Kernels::new` refuses it,
+    /// so no packed weight or attention call can reach its instructions.
+    #[test]
+    fn kernels_exist_only_for_families_this_processor_runs() {
+        for isa in Isa::ALL {
+            assert_eq!(Kernels::new(isa).is_some(), isa.runs_here(), "{isa}");
+        }
+        assert!(Kernels::new(Isa::Scalar).is_some());
+        #[cfg(target_arch = "x86_64")]
+        assert!(Kernels::new(Isa::Neon).is_none() && Kernels::new(Isa::NeonDot).is_none());
+        #[cfg(target_arch = "aarch64")]
+        assert!(Kernels::new(Isa::Avx2).is_none() && Kernels::new(Isa::Avx512).is_none());
+        assert!(Kernels::best().isa().runs_here());
     }
 }
