@@ -1,12 +1,13 @@
 //! Probes stage: what pairwise verdicts reveal about the judge and the systems.
 //! Input: `PairRecord`s (every pair judged in both orders), answers, optional human
-//! preferences and labels. Output: position-bias, self-preference and length reports
-//! and a Bradley-Terry ranking. Never runs the model and never reads files.
+//! preferences and labels. Output: position-bias, self-preference and length reports,
+//! the judge's slot prior and a Bradley-Terry ranking. Never runs the model and never reads files.
 
 pub mod injection;
 pub mod length;
 pub mod ranking;
 pub mod selfpref;
+pub mod slot_prior;
 
 use std::collections::BTreeMap;
 
@@ -69,7 +70,7 @@ impl PairOutcome {
 
 /// Identity verdict of one order: the largest of (first, second, tie); equal first
 /// and second count as a tie.
-fn slot_winner(p: SlotProbs, a_first: bool) -> Winner {
+pub(crate) fn slot_winner(p: SlotProbs, a_first: bool) -> Winner {
     if p.tie + EQUAL >= p.first.max(p.second) || (p.first - p.second).abs() <= EQUAL {
         return Winner::Tie;
     }
