@@ -161,7 +161,7 @@ fn normalised(p: SlotProbs) -> Result<SlotProbs, StatsError> {
 }
 
 /// The identity verdict with the highest probability; equal A and B give a tie.
-fn verdict_of(p: IdentityProbs) -> Winner {
+pub fn verdict_of(p: IdentityProbs) -> Winner {
     if p.tie + PROB_TIE >= p.a.max(p.b) || (p.a - p.b).abs() <= PROB_TIE {
         Winner::Tie
     } else if p.a > p.b {

@@ -41,6 +41,7 @@ mod calibration;
 mod card;
 mod ceiling;
 mod items;
+pub mod pair_rules;
 mod pairwise;
 mod text;
 
