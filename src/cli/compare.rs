@@ -33,6 +33,8 @@ use crate::store::{read_records, Manifest};
 
 /// Results file of a comparison run.
 pub const PAIRS_FILE: &str = "pairs.jsonl";
+/// Slot probes of a comparison run (identical and blank answers, one order each).
+pub const PROBES_FILE: &str = "slot-probes.jsonl";
 
 /// Arguments of `assize compare`.
 #[derive(Debug, Clone, Args)]

@@ -13,13 +13,13 @@ use super::common::RubricArg;
 use super::errors::{usage, GateFailed};
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences, AnswerRecord};
-use crate::judge::{GradeRecord, PairRecord};
+use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
 use crate::overlap::{score_pair, OverlapOptions};
 use crate::rubric::Rubric;
 use crate::store::read_records;
 use crate::vet::{
-    gate_failures, report_text, vet, vet_pairs, PairVetReport, Variant, VariantKind, VetOptions,
-    VetReport,
+    gate_failures, report_text, vet, vet_pair_inputs, PairInputs, PairVetReport, Variant,
+    VariantKind, VetOptions, VetReport,
 };
 
 /// Arguments of `assize vet`.
@@ -43,9 +43,12 @@ pub struct VetArgs {
     pub baselines: Option<PathBuf>,
     /// Comparison run folder (holds `pairs.jsonl`)
     ///
-    /// Its verdicts are vetted against `--preferences`.
+    /// Its verdicts are vetted against `--preferences`. Repeat it with the comparison
+    /// runs of other judges on the same pairs to vet them as a panel (the first is the
+    /// primary judge). Slot probes stored in a run folder enter that judge's slot
+    /// prior; the grades of `--grades` feed the pointwise rules.
     #[arg(long, value_name = "DIR", requires = "preferences")]
-    pub pairs: Option<PathBuf>,
+    pub pairs: Vec<PathBuf>,
     /// Human pairwise preferences (question_id, system_a, system_b, rater, preferred)
     #[arg(long, value_name = "FILE")]
     pub preferences: Option<PathBuf>,
@@ -128,6 +131,34 @@ fn baseline_records(
     Ok(out)
 }
 
+/// Each comparison run's pair records and slot probes (none when the run has no probes file).
+pub fn load_comparisons(
+    dirs: &[PathBuf],
+) -> anyhow::Result<(Vec<Vec<PairRecord>>, Vec<Vec<ProbeRecord>>)> {
+    let (mut pairs, mut probes) = (Vec::new(), Vec::new());
+    for dir in dirs {
+        let path = dir.join(super::compare::PAIRS_FILE);
+        if !path.exists() {
+            return Err(usage(
+                format!(
+                    "`{}` holds no comparison results (`{}` is missing)",
+                    dir.display(),
+                    super::compare::PAIRS_FILE
+                ),
+                "pass the run folder that `assize compare` printed",
+            ));
+        }
+        pairs.push(read_records(&path)?);
+        let probe_path = dir.join(super::compare::PROBES_FILE);
+        probes.push(if probe_path.exists() {
+            read_records(&probe_path)?
+        } else {
+            Vec::new()
+        });
+    }
+    Ok((pairs, probes))
+}
+
 /// Compute the vetting reports.
 pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
     let rubric = args.rubric.load_for_run(&args.grades)?;
@@ -180,10 +211,15 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         ..VetOptions::default()
     };
     let pointwise = vet(&variants, &labels, &rubric, &opts)?;
-    let pairwise = match (&args.pairs, &args.preferences) {
-        (Some(dir), Some(p)) => {
-            let pairs: Vec<PairRecord> = read_records(&dir.join(super::compare::PAIRS_FILE))?;
-            Some(vet_pairs(&pairs, &read_preferences(p)?, &opts)?)
+    let pairwise = match &args.preferences {
+        Some(p) if !args.pairs.is_empty() => {
+            let (pairs, probes) = load_comparisons(&args.pairs)?;
+            let inputs = PairInputs {
+                judges: pairs.iter().map(Vec::as_slice).collect(),
+                probes: probes.iter().map(Vec::as_slice).collect(),
+                grades: Some((&primary, &rubric)),
+            };
+            Some(vet_pair_inputs(&inputs, &read_preferences(p)?, &opts)?)
         }
         _ => None,
     };

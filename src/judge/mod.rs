@@ -11,7 +11,7 @@ pub mod records;
 pub mod scripted;
 pub mod steps;
 
-pub use records::{GradeRecord, PairRecord};
+pub use records::{GradeRecord, PairRecord, ProbeKind, ProbeRecord};
 
 use crate::engine::{EngineError, JudgeModel};
 use crate::rubric::forms::Form;

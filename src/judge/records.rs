@@ -67,3 +67,47 @@ impl PairRecord {
         )
     }
 }
+
+/// What a slot probe showed the judge in place of two different answers.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum ProbeKind {
+    /// Both answers blank (a content-free input in Zhao et al. 2021's sense).
+    ContentFree,
+    /// One real answer shown in both slots.
+    IdenticalAnswers,
+}
+
+/// One slot probe: a pair form whose two answers carry no difference, judged once.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ProbeRecord {
+    /// Question id whose form the probe used.
+    pub question_id: String,
+    /// Criterion key, or `overall`.
+    pub criterion: String,
+    /// What stood in both answer slots.
+    pub kind: ProbeKind,
+    /// The system whose answer was shown twice (identical-answer probes only).
+    pub system: Option<String>,
+    /// Probability that Answer 1 is better (renormalised).
+    pub p_first: f64,
+    /// Probability that Answer 2 is better.
+    pub p_second: f64,
+    /// Probability of a tie.
+    pub p_tie: f64,
+    /// Mass on the three verdict labels before renormalising.
+    pub captured_mass: f64,
+}
+
+impl ProbeRecord {
+    /// Key used for resuming: `question_id/criterion/kind/system`.
+    pub fn key(&self) -> String {
+        format!(
+            "{}/{}/{:?}/{}",
+            self.question_id,
+            self.criterion,
+            self.kind,
+            self.system.as_deref().unwrap_or("-")
+        )
+    }
+}

@@ -22,22 +22,13 @@
 
 use serde::Serialize;
 
+pub use crate::judge::ProbeKind;
 use crate::stats::pairwise::{position_bias, JudgedPair, SlotProbs};
 use crate::stats::StatsError;
 
 /// Probabilities are floored here before logs: a label the judge never emits would
 /// otherwise give an infinite ratio.
 const FLOOR: f64 = 1e-9;
-
-/// What a probe showed the judge in place of two real answers.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, serde::Deserialize)]
-#[serde(rename_all = "kebab-case")]
-pub enum ProbeKind {
-    /// Both answers blank (a content-free input in Zhao et al. 2021's sense).
-    ContentFree,
-    /// One real answer shown in both slots.
-    IdenticalAnswers,
-}
 
 /// The judge's prior over (first slot, second slot, tie), summing to 1.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]

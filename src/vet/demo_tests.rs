@@ -154,7 +154,9 @@ fn demo_labels_give_a_complete_report_that_is_stable_for_a_seed() {
     let questions = prefs_questions();
     assert_eq!(p.human_pairs, 3 * questions);
     assert_eq!(p.criteria[0].n_pairs, 3 * questions);
-    assert_eq!(p.criteria[0].methods.len(), 3);
+    // raw readings, calibrated and calibrated with a tie band; no grades, no panel
+    assert_eq!(p.criteria[0].methods.len(), 5);
+    assert!(p.criteria[0].chosen.is_some());
 
     let text = report_text(&r, Some(&p));
     for key in keys {

@@ -52,7 +52,10 @@ pub use agreement::{
 pub use calibration::{TemperatureSummary, VariantCalibration};
 pub use card::{TrustCard, Verdict};
 pub use ceiling::{HumanCeiling, RaterCeiling};
-pub use pairwise::{vet_pairs, MethodAgreement, PairCriterionReport, PairVetReport};
+pub use pairwise::{
+    judged_pairs, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs, MethodAgreement,
+    PairCriterionReport, PairInputs, PairKey, PairVetReport,
+};
 pub use text::report_text;
 
 use serde::Serialize;

@@ -78,6 +78,19 @@ impl PairRule {
         PairRule::SingleOrder,
     ];
 
+    /// Every rule, in the order reports list them (the raw readings first).
+    pub const DISPLAY: [PairRule; 9] = [
+        PairRule::SingleOrder,
+        PairRule::Debiased,
+        PairRule::Conservative,
+        PairRule::Calibrated,
+        PairRule::CalibratedTieBand,
+        PairRule::Pointwise,
+        PairRule::CalibratedPointwise,
+        PairRule::Panel,
+        PairRule::PanelPointwise,
+    ];
+
     /// Display name.
     pub fn name(self) -> &'static str {
         match self {

@@ -149,3 +149,62 @@ fn dummy_report() -> VetReport {
     )
     .expect("vet")
 }
+
+/// A judge that always prefers the first-shown answer, grades that carry the truth,
+/// and a second judge (panel) that copies the first: pointwise and panel rules join
+/// the list, fitted rules are marked out of sample, the raw judge keeps its winner in
+/// no pair, and the choice lands on a rule that reads the grades. Pointwise scores
+/// are rescaled by the scale (1..5): expected 5 and 1 give 1.0 and 0.0.
+#[test]
+fn grades_and_a_panel_add_rules_and_the_choice_reads_the_grades() {
+    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let (mut recs, mut grades, mut prefs) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..12 {
+        let q = format!("q{i:02}");
+        recs.push(pair(&q, "x", "y", Winner::A));
+        recs.push(pair(&q, "y", "x", Winner::A));
+        let x_better = i % 3 != 0;
+        for (sys, good) in [("x", x_better), ("y", !x_better)] {
+            let probs = if good { [0.0, 0.0, 0.0, 0.0, 1.0] } else { [1.0, 0.0, 0.0, 0.0, 0.0] };
+            let mut g = record(&q, "c", Scale::OneToFive, &probs);
+            g.system = sys.into();
+            grades.push(g);
+        }
+        let winner = if x_better { "x" } else { "y" };
+        prefs.push(pref(&q, "r1", Some(winner)));
+        prefs.push(pref(&q, "r2", Some(winner)));
+    }
+    let inputs = PairInputs {
+        judges: vec![&recs, &recs],
+        probes: vec![],
+        grades: Some((&grades, &rb)),
+    };
+    let r = vet_pair_inputs(&inputs, &prefs, &quick()).expect("pairs");
+    let c = &r.criteria[0];
+    let names: Vec<&str> = c.methods.iter().map(|m| m.method.as_str()).collect();
+    assert_eq!(
+        names,
+        [
+            "single order",
+            "debiased",
+            "conservative",
+            "calibrated",
+            "calibrated, tie band",
+            "pointwise",
+            "calibrated + pointwise",
+            "panel",
+            "panel + pointwise"
+        ]
+    );
+    assert!(c.methods.iter().all(|m| m.out_of_sample == m.rule.is_some_and(|r| r.fitted())));
+    close(c.calibration.before.consistency, 0.0, 1e-12);
+    close(c.calibration.before.first_slot_rate, 1.0, 1e-12);
+    let point = &c.methods[5];
+    close(point.accuracy, 1.0, 1e-12);
+    assert!(point.order.is_none(), "order cannot enter pointwise verdicts");
+    let chosen = c.chosen.as_ref().expect("a rule is chosen");
+    assert!(chosen.name.contains("pointwise"), "{}", chosen.name);
+    assert!(chosen.nested_accuracy.expect("several questions") > 0.9);
+    let text = report_text(&dummy_report(), Some(&r));
+    assert!(text.contains("chosen rule") && text.contains("slot prior"), "{text}");
+}

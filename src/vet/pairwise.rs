@@ -1,38 +1,53 @@
 //! Vetting stage, pairwise: does the judge pick the answer humans prefer? Input:
-//! `PairRecord`s (each pair judged in both orders) and human `PreferenceRow`s.
-//! Output: per judged criterion, position bias and the agreement of three verdict
-//! rules with the human majority: single order (the order stored first), debiased
-//! (probabilities averaged over both orders; Wang et al. 2023, balanced position
-//! calibration) and conservative (a win only when both orders agree; Zheng et al.
-//! 2023). Never reads a verdict as a slot: winners are compared by system identity.
+//! `PairRecord`s of one judge or a panel (each pair judged in both orders), optional
+//! slot probes and pointwise grades, and human `PreferenceRow`s. Output: per judged
+//! criterion, the raw judge's position bias, its slot prior with consistency and
+//! first-slot rate before and after dividing it out, the agreement of every verdict
+//! rule (`pair_rules`) with the human majority, and the chosen rule with a nested
+//! out-of-sample estimate of its agreement. Never reads a verdict as a slot: winners
+//! are compared by system identity; never scores a fitted rule on the pairs it was
+//! fitted on.
 //!
 //! Human majority per (question, unordered pair): the option (either system or tie)
 //! with strictly more votes than each other option; no such option means tie. Human
 //! preferences carry no criterion, so every judged criterion (usually `overall`) is
 //! compared with the same majority. Pairs judged in only one order are left out of all
-//! three rules (and counted), so the rules are compared on the same pairs. Categories
-//! for kappa: the alphabetically first system wins, the other wins, tie.
+//! rules (and counted), so the rules are compared on the same pairs. A is the
+//! alphabetically first system; categories for kappa: A wins, B wins, tie. The slot
+//! prior and the scales of the combined strengths come from every judged pair, human
+//! preference or not (they use no label). Intervals are percentile bootstraps over
+//! pairs of the (out-of-sample) verdicts; they leave out the variation of refitting.
 
 use std::collections::BTreeMap;
 
 use serde::Serialize;
 
 use super::agreement::kappa;
+use super::pair_rules::{choose, nested_choice, out_of_sample, PairEvidence, PairRule, Prepared};
 use super::{VetError, VetOptions};
 use crate::data::PreferenceRow;
-use crate::judge::PairRecord;
+use crate::judge::{GradeRecord, PairRecord, ProbeKind, ProbeRecord};
+use crate::probes::slot_prior::{calibrate, order_effect, OrderEffect, SlotCalibration};
+use crate::rubric::Rubric;
 use crate::stats::agreement::{confusion_matrix, Weighting};
 use crate::stats::bootstrap::{bootstrap_interval, BootstrapInterval, IntervalMethod};
 use crate::stats::pairwise::{position_bias, JudgedPair, PositionBias, SlotProbs, Winner};
 
-/// Slot probabilities closer than this count as equal (as in `stats::pairwise`).
-const PROB_TIE: f64 = 1e-12;
-
 /// One verdict rule against the human majority.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct MethodAgreement {
-    /// "single order", "debiased" or "conservative".
+    /// Display name of the rule (see `pair_rules::PairRule::name`).
     pub method: String,
+    /// The rule.
+    pub rule: Option<PairRule>,
+    /// True when the rule has a tie band fitted to human labels: its verdicts were
+    /// cross-fitted over question folds, each fold's band fitted on the other folds.
+    pub out_of_sample: bool,
+    /// The rule's tie band fitted on all compared pairs (what it would use on new pairs).
+    pub tie_band: Option<f64>,
+    /// Consistency and first-slot rate of the rule read from one order at a time;
+    /// missing for the pointwise rule (order cannot enter).
+    pub order: Option<OrderEffect>,
     /// Share of pairs where the rule's verdict equals the human majority (ties included).
     pub accuracy: f64,
     /// Bootstrap percentile interval of the accuracy.
@@ -58,10 +73,37 @@ pub struct PairCriterionReport {
     pub one_order_only: usize,
     /// Judged pairs (both orders) that no human compared.
     pub without_human: usize,
-    /// Position bias of the judge on the compared pairs.
+    /// Pairs left out because a panel member did not judge them in both orders.
+    pub panel_incomplete: usize,
+    /// Position bias of the raw primary judge on the compared pairs.
     pub position_bias: PositionBias,
-    /// Single-order, debiased and conservative verdicts against the human majority.
+    /// The primary judge's slot prior, with consistency and first-slot rate over all
+    /// judged pairs before and after dividing it out.
+    pub calibration: SlotCalibration,
+    /// Every applicable rule against the human majority, in display order.
     pub methods: Vec<MethodAgreement>,
+    /// The rule chosen against the human majority (one-standard-error rule).
+    pub chosen: Option<ChosenRule>,
+    /// Rules left out and why.
+    pub notes: Vec<String>,
+}
+
+/// The rule chosen against human preferences, and how well choosing does out of sample.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ChosenRule {
+    /// The rule.
+    pub rule: PairRule,
+    /// Its display name.
+    pub name: String,
+    /// Its tie band fitted on all compared pairs, if it has one.
+    pub tie_band: Option<f64>,
+    /// Agreement of the whole choice (rule and band picked on the other question folds)
+    /// on held-out folds: what to expect on new pairs. Missing with one question only.
+    pub nested_accuracy: Option<f64>,
+    /// Bootstrap percentile interval of `nested_accuracy`.
+    pub nested_ci: Option<BootstrapInterval>,
+    /// How often each rule was chosen across the outer folds.
+    pub picks: Vec<(String, usize)>,
 }
 
 /// Pairwise vetting results.
@@ -73,11 +115,14 @@ pub struct PairVetReport {
     pub level: f64,
     /// Pairs (question, unordered systems) that humans compared.
     pub human_pairs: usize,
+    /// Judges whose pair records were given (more than one: a panel).
+    pub judges: usize,
     /// One report per judged criterion, sorted by key.
     pub criteria: Vec<PairCriterionReport>,
 }
 
-type PairKey = (String, String, String); // (question, first system alphabetically, second)
+/// (question, first system alphabetically, second).
+pub type PairKey = (String, String, String);
 
 fn key(q: &str, x: &str, y: &str) -> PairKey {
     let (a, b) = if x <= y { (x, y) } else { (y, x) };
@@ -126,18 +171,6 @@ fn human_majority(prefs: &[PreferenceRow]) -> Result<BTreeMap<PairKey, usize>, V
         .collect())
 }
 
-/// The identity winner of one record (A = the record's first-shown system).
-fn slot_winner(r: &PairRecord) -> Winner {
-    if r.p_tie + PROB_TIE >= r.p_first.max(r.p_second) || (r.p_first - r.p_second).abs() <= PROB_TIE
-    {
-        Winner::Tie
-    } else if r.p_first > r.p_second {
-        Winner::A
-    } else {
-        Winner::B
-    }
-}
-
 fn slot_probs(r: &PairRecord) -> SlotProbs {
     SlotProbs {
         first: r.p_first,
@@ -146,24 +179,47 @@ fn slot_probs(r: &PairRecord) -> SlotProbs {
     }
 }
 
-/// Category of an A-oriented winner when A is (or is not) the alphabetically first system.
-fn category(w: Winner, a_is_first: bool) -> usize {
-    match (w, a_is_first) {
-        (Winner::Tie, _) => 2,
-        (Winner::A, true) | (Winner::B, false) => 0,
-        _ => 1,
-    }
+/// What `vet_pair_inputs` reads besides human preferences.
+#[derive(Debug, Clone, Default)]
+pub struct PairInputs<'a> {
+    /// Each judge's pair records; the first is the primary judge, more make a panel.
+    pub judges: Vec<&'a [PairRecord]>,
+    /// Each judge's slot probes, in the order of `judges` (missing: none).
+    pub probes: Vec<&'a [ProbeRecord]>,
+    /// Pointwise grades of the same answers and their rubric, for the pointwise rules.
+    pub grades: Option<(&'a [GradeRecord], &'a Rubric)>,
 }
 
-/// Vets pairwise verdicts against the human majority preference.
+/// Every pair of one criterion judged in both orders by every judge, ready for the rules.
+#[derive(Debug, Clone)]
+pub struct JudgedPairs {
+    /// Criterion key.
+    pub criterion: String,
+    /// (question, A, B) of each pair, A the alphabetically first system.
+    pub keys: Vec<PairKey>,
+    /// The evidence and everything estimated from it without labels.
+    pub prepared: Prepared,
+    /// Pairs the primary judge judged in one order only.
+    pub one_order_only: usize,
+    /// Pairs left out because a panel member did not judge them in both orders.
+    pub panel_incomplete: usize,
+}
+
+/// Vets pairwise verdicts of one judge against the human majority preference.
 pub fn vet_pairs(
     pairs: &[PairRecord],
     prefs: &[PreferenceRow],
     opts: &VetOptions,
 ) -> Result<PairVetReport, VetError> {
-    super::check_options(opts)?;
-    let majority = human_majority(prefs)?;
-    // (criterion, pair) -> records in stored order
+    let inputs = PairInputs {
+        judges: vec![pairs],
+        ..PairInputs::default()
+    };
+    vet_pair_inputs(&inputs, prefs, opts)
+}
+
+/// Records of one judge grouped by (criterion, pair), each list in stored order.
+fn group(pairs: &[PairRecord]) -> Result<BTreeMap<(String, PairKey), Vec<&PairRecord>>, VetError> {
     let mut grouped: BTreeMap<(String, PairKey), Vec<&PairRecord>> = BTreeMap::new();
     let mut problems = Vec::new();
     for r in pairs {
@@ -180,16 +236,10 @@ pub fn vet_pairs(
             continue;
         }
         let list = grouped
-            .entry((
-                r.criterion.clone(),
-                key(&r.question_id, &r.first, &r.second),
-            ))
+            .entry((r.criterion.clone(), key(&r.question_id, &r.first, &r.second)))
             .or_default();
         if list.iter().any(|o| o.first == r.first) {
-            problems.push(format!(
-                "`{}`: judged more than once in this order",
-                r.key()
-            ));
+            problems.push(format!("`{}`: judged more than once in this order", r.key()));
             continue;
         }
         list.push(r);
@@ -197,78 +247,147 @@ pub fn vet_pairs(
     if !problems.is_empty() {
         return Err(VetError::BadPairs { problems });
     }
-    let mut by_criterion: BTreeMap<String, PairCriterionReport> = BTreeMap::new();
-    let mut units: BTreeMap<String, Vec<(JudgedPair, bool, usize)>> = BTreeMap::new();
-    let mut counts: BTreeMap<String, (usize, usize)> = BTreeMap::new();
-    for ((criterion, k), recs) in &grouped {
-        let c = counts.entry(criterion.clone()).or_default();
-        if recs.len() < 2 {
-            c.0 += 1;
+    Ok(grouped)
+}
+
+/// Both orders of a pair as (A shown first, B shown first), when both were judged.
+fn both_orders(recs: &[&PairRecord], k: &PairKey) -> Option<(SlotProbs, SlotProbs)> {
+    let a_first = recs.iter().find(|r| r.first == k.1)?;
+    let b_first = recs.iter().find(|r| r.first == k.2)?;
+    Some((slot_probs(a_first), slot_probs(b_first)))
+}
+
+/// Each answer's pointwise score on `criterion`, rescaled to 0..1 by its scale; for
+/// `overall`, the mean over the rubric criteria the answer was graded on.
+fn pointwise_scores(
+    grades: &[GradeRecord],
+    rubric: &Rubric,
+    criterion: &str,
+) -> BTreeMap<(String, String), f64> {
+    let mut sums: BTreeMap<(String, String), (f64, usize)> = BTreeMap::new();
+    for g in grades {
+        if criterion != "overall" && g.criterion != criterion {
             continue;
         }
-        let Some(&human) = majority.get(k) else {
-            c.1 += 1;
+        let Some(c) = rubric.criterion(&g.criterion) else { continue };
+        let v = c.scale.values();
+        let (lo, hi) = (v[0], v[v.len() - 1]);
+        if !g.expected.is_finite() || hi <= lo {
+            continue;
+        }
+        let e = sums.entry((g.question_id.clone(), g.system.clone())).or_default();
+        e.0 += (g.expected - lo) / (hi - lo);
+        e.1 += 1;
+    }
+    sums.into_iter().map(|(k, (s, n))| (k, s / n as f64)).collect()
+}
+
+/// Joins every judge's records (and grades) into evidence per criterion. Pairs the
+/// primary judge saw in one order only are counted and left out.
+pub fn judged_pairs(inputs: &PairInputs) -> Result<Vec<JudgedPairs>, VetError> {
+    let groups = inputs
+        .judges
+        .iter()
+        .map(|j| group(j))
+        .collect::<Result<Vec<_>, _>>()?;
+    let Some(primary) = groups.first() else {
+        return Ok(Vec::new());
+    };
+    let mut by_criterion: BTreeMap<String, (Vec<PairKey>, Vec<PairEvidence>, usize, usize)> =
+        BTreeMap::new();
+    for ((criterion, k), recs) in primary {
+        let entry = by_criterion.entry(criterion.clone()).or_default();
+        let Some(first) = both_orders(recs, k) else {
+            entry.2 += 1;
             continue;
         };
-        let (orig, swap) = (recs[0], recs[1]);
-        // In the swapped record A (orig.first) is shown second, so its slot winner flips.
-        let swapped = match slot_winner(swap) {
-            Winner::A => Winner::B,
-            Winner::B => Winner::A,
-            Winner::Tie => Winner::Tie,
-        };
-        let jp = JudgedPair {
-            original: slot_winner(orig),
-            swapped,
-            original_probs: Some(slot_probs(orig)),
-            swapped_probs: Some(slot_probs(swap)),
-        };
-        units
-            .entry(criterion.clone())
-            .or_default()
-            .push((jp, orig.first == k.1, human));
+        let mut judges = vec![first];
+        for g in &groups[1..] {
+            match g.get(&(criterion.clone(), k.clone())).and_then(|r| both_orders(r, k)) {
+                Some(o) => judges.push(o),
+                None => break,
+            }
+        }
+        if judges.len() < groups.len() {
+            entry.3 += 1;
+            continue;
+        }
+        entry.0.push(k.clone());
+        entry.1.push(PairEvidence {
+            question_id: k.0.clone(),
+            judges,
+            points: None,
+        });
     }
-    for (criterion, list) in units {
-        let judged: Vec<JudgedPair> = list.iter().map(|u| u.0).collect();
-        let bias = position_bias(&judged).map_err(|source| VetError::Stats {
-            what: format!("position bias on `{criterion}`"),
+    let mut out = Vec::new();
+    for (criterion, (keys, mut evidence, one_order_only, panel_incomplete)) in by_criterion {
+        if keys.is_empty() {
+            continue;
+        }
+        if let Some((grades, rubric)) = inputs.grades {
+            let scores = pointwise_scores(grades, rubric, &criterion);
+            for (e, k) in evidence.iter_mut().zip(&keys) {
+                let a = scores.get(&(k.0.clone(), k.1.clone()));
+                let b = scores.get(&(k.0.clone(), k.2.clone()));
+                e.points = a.zip(b).map(|(a, b)| (*a, *b));
+            }
+        }
+        let probes: Vec<Vec<(ProbeKind, SlotProbs)>> = inputs
+            .probes
+            .iter()
+            .map(|ps| {
+                ps.iter()
+                    .filter(|p| p.criterion == criterion)
+                    .map(|p| {
+                        let sp = SlotProbs {
+                            first: p.p_first,
+                            second: p.p_second,
+                            tie: p.p_tie,
+                        };
+                        (p.kind, sp)
+                    })
+                    .collect()
+            })
+            .collect();
+        let prepared = Prepared::new(evidence, &probes).map_err(|source| VetError::Stats {
+            what: format!("the slot prior on `{criterion}`"),
             source,
         })?;
-        let human: Vec<usize> = list.iter().map(|u| u.2).collect();
-        let orient = |ws: &[Winner]| -> Vec<usize> {
-            ws.iter()
-                .zip(&list)
-                .map(|(&w, u)| category(w, u.1))
-                .collect()
-        };
-        let single = orient(&judged.iter().map(|j| j.original).collect::<Vec<_>>());
-        let conservative = orient(&bias.conservative);
-        let debiased = orient(bias.debiased.as_deref().unwrap_or(&bias.conservative));
-        let methods = [
-            ("single order", single),
-            ("debiased", debiased),
-            ("conservative", conservative),
-        ]
-        .into_iter()
-        .map(|(m, v)| method_agreement(m, &human, &v, opts))
-        .collect::<Result<_, _>>()?;
-        let (one_order_only, without_human) = counts.get(&criterion).copied().unwrap_or_default();
-        by_criterion.insert(
-            criterion.clone(),
-            PairCriterionReport {
-                criterion,
-                n_pairs: list.len(),
-                human_ties: human.iter().filter(|&&h| h == 2).count(),
-                one_order_only,
-                without_human,
-                position_bias: bias,
-                methods,
-            },
-        );
+        out.push(JudgedPairs {
+            criterion,
+            keys,
+            prepared,
+            one_order_only,
+            panel_incomplete,
+        });
     }
-    if by_criterion.is_empty() {
+    Ok(out)
+}
+
+/// Vets pairwise verdicts (one judge or a panel, optionally with pointwise grades)
+/// against the human majority preference: every rule, the chosen one, the slot prior.
+pub fn vet_pair_inputs(
+    inputs: &PairInputs,
+    prefs: &[PreferenceRow],
+    opts: &VetOptions,
+) -> Result<PairVetReport, VetError> {
+    super::check_options(opts)?;
+    let majority = human_majority(prefs)?;
+    let judged = judged_pairs(inputs)?;
+    let mut criteria = Vec::new();
+    for jp in &judged {
+        let labelled: Vec<usize> = (0..jp.keys.len())
+            .filter(|&i| majority.contains_key(&jp.keys[i]))
+            .collect();
+        if labelled.is_empty() {
+            continue;
+        }
+        criteria.push(criterion_report(jp, &labelled, &majority, opts)?);
+    }
+    if criteria.is_empty() {
+        let pairs: usize = judged.iter().map(|j| j.keys.len()).sum();
         return Err(VetError::NoPairOverlap {
-            judged: grouped.len(),
+            judged: pairs,
             preferred: majority.len(),
         });
     }
@@ -276,8 +395,148 @@ pub fn vet_pairs(
         resamples: opts.resamples,
         level: opts.level,
         human_pairs: majority.len(),
-        criteria: by_criterion.into_values().collect(),
+        judges: inputs.judges.len(),
+        criteria,
     })
+}
+
+/// The raw judge's position bias on the labelled pairs (A = the alphabetically first system).
+fn raw_position_bias(p: &Prepared, labelled: &[usize], criterion: &str) -> Result<PositionBias, VetError> {
+    let judged: Vec<JudgedPair> = labelled
+        .iter()
+        .map(|&i| {
+            let (o, s) = p.evidence[i].judges[0];
+            JudgedPair {
+                original: p.verdict(PairRule::SingleOrder, i, 0.0, Some(0)),
+                swapped: p.verdict(PairRule::SingleOrder, i, 0.0, Some(1)),
+                original_probs: Some(o),
+                swapped_probs: Some(s),
+            }
+        })
+        .collect();
+    position_bias(&judged).map_err(|source| VetError::Stats {
+        what: format!("position bias on `{criterion}`"),
+        source,
+    })
+}
+
+fn criterion_report(
+    jp: &JudgedPairs,
+    labelled: &[usize],
+    majority: &BTreeMap<PairKey, usize>,
+    opts: &VetOptions,
+) -> Result<PairCriterionReport, VetError> {
+    let p = &jp.prepared;
+    let criterion = &jp.criterion;
+    // Human category per evidence index (2 = tie where unlabelled; never read there).
+    let human: Vec<usize> = jp.keys.iter().map(|k| majority.get(k).copied().unwrap_or(2)).collect();
+    let stats = |what: &str| {
+        let what = format!("{what} on `{criterion}`");
+        move |source| VetError::Stats { what, source }
+    };
+    let pairs: Vec<(SlotProbs, SlotProbs)> = p.evidence.iter().map(|e| e.judges[0]).collect();
+    let calibration = SlotCalibration {
+        prior: p.priors[0],
+        before: order_effect(&pairs, |x| x).map_err(stats("the raw order effect"))?,
+        after: order_effect(&pairs, |x| calibrate(x, &p.priors[0]))
+            .map_err(stats("the calibrated order effect"))?,
+    };
+    let rules: Vec<PairRule> = PairRule::DISPLAY.into_iter().filter(|r| p.supports(*r)).collect();
+    let mut notes = Vec::new();
+    let graded = p.evidence.iter().filter(|e| e.points.is_some()).count();
+    if graded < p.evidence.len() {
+        notes.push(format!(
+            "pointwise rules left out: {graded} of {} judged pairs have pointwise grades of both answers; grade every compared answer with `--grades`",
+            p.evidence.len()
+        ));
+    }
+    let mut methods = Vec::new();
+    for &rule in &rules {
+        let Some(v) = out_of_sample(p, rule, labelled, &human, opts.seed) else {
+            notes.push(format!(
+                "`{}` left out: its tie band needs pairs on at least two questions to be scored out of sample",
+                rule.name()
+            ));
+            continue;
+        };
+        let band = rule.fitted().then(|| p.fit_band(rule, labelled, &human));
+        let judge: Vec<usize> = labelled.iter().map(|i| v[i]).collect();
+        let truth: Vec<usize> = labelled.iter().map(|&i| human[i]).collect();
+        let mut m = method_agreement(rule.name(), &truth, &judge, opts)?;
+        m.rule = Some(rule);
+        m.out_of_sample = rule.fitted();
+        m.tie_band = band;
+        m.order = rule_order_effect(p, rule, band.unwrap_or(0.0), labelled);
+        methods.push(m);
+    }
+    let chosen = choose(p, &rules, labelled, &human, opts.seed).map(|rule| {
+        let nested = nested_choice(p, &rules, labelled, &human, opts.seed);
+        let (nested_accuracy, nested_ci, picks) = match nested {
+            Some((held, picks)) => {
+                let truth: Vec<usize> = held.keys().map(|&i| human[i]).collect();
+                let judge: Vec<usize> = held.values().copied().collect();
+                let m = method_agreement("chosen", &truth, &judge, opts).ok();
+                (
+                    m.as_ref().map(|m| m.accuracy),
+                    m.and_then(|m| m.accuracy_ci),
+                    picks.into_iter().map(|(r, n)| (r.name().to_string(), n)).collect(),
+                )
+            }
+            None => (None, None, Vec::new()),
+        };
+        ChosenRule {
+            rule,
+            name: rule.name().to_string(),
+            tie_band: rule.fitted().then(|| p.fit_band(rule, labelled, &human)),
+            nested_accuracy,
+            nested_ci,
+            picks,
+        }
+    });
+    Ok(PairCriterionReport {
+        criterion: criterion.clone(),
+        n_pairs: labelled.len(),
+        human_ties: labelled.iter().filter(|&&i| human[i] == 2).count(),
+        one_order_only: jp.one_order_only,
+        without_human: jp.keys.len() - labelled.len(),
+        panel_incomplete: jp.panel_incomplete,
+        position_bias: raw_position_bias(p, labelled, criterion)?,
+        calibration,
+        methods,
+        chosen,
+        notes,
+    })
+}
+
+/// Consistency and first-slot rate of a rule's verdicts read from one order at a time;
+/// `None` for the pointwise rule, where order cannot enter.
+fn rule_order_effect(p: &Prepared, rule: PairRule, band: f64, idx: &[usize]) -> Option<OrderEffect> {
+    if rule == PairRule::Pointwise {
+        return None;
+    }
+    let judged: Vec<JudgedPair> = idx
+        .iter()
+        .map(|&i| JudgedPair {
+            original: p.verdict(rule, i, band, Some(0)),
+            swapped: p.verdict(rule, i, band, Some(1)),
+            original_probs: None,
+            swapped_probs: None,
+        })
+        .collect();
+    let b = position_bias(&judged).ok()?;
+    Some(OrderEffect {
+        consistency: b.positional_consistency,
+        first_slot_rate: b.first_slot_win_rate,
+    })
+}
+
+/// Verdicts of `rule` (tie band `band`) on every judged pair, by identity of A and B.
+pub fn rule_verdicts(jp: &JudgedPairs, rule: PairRule, band: f64) -> Vec<(PairKey, Winner)> {
+    jp.keys
+        .iter()
+        .enumerate()
+        .map(|(i, k)| (k.clone(), jp.prepared.verdict(rule, i, band, None)))
+        .collect()
 }
 
 fn method_agreement(
@@ -309,6 +568,10 @@ fn method_agreement(
     let all: Vec<usize> = (0..n).collect();
     Ok(MethodAgreement {
         method: method.to_string(),
+        rule: None,
+        out_of_sample: false,
+        tie_band: None,
+        order: None,
         accuracy: acc(&all).unwrap_or(0.0),
         accuracy_ci: ci(&acc),
         kappa: kap(&all),

@@ -328,33 +328,105 @@ fn calibration(s: &mut String, c: &CriterionReport) {
 fn pairs(s: &mut String, p: &PairVetReport) {
     let _ = writeln!(
         s,
-        "\n== pairwise verdicts against the human majority ({} compared pairs, {} resamples, {:.0}% intervals)",
+        "\n== pairwise verdicts against the human majority ({} compared pairs, {} judge{}, {} resamples, {:.0}% intervals)",
         p.human_pairs,
+        p.judges,
+        if p.judges == 1 { "" } else { "s (panel)" },
         p.resamples,
         p.level * 100.0
     );
     for c in &p.criteria {
         let _ = writeln!(
             s,
-            "\n  `{}`: {} pairs judged in both orders ({} human ties); left out: {} judged in one order, {} without human preference",
-            c.criterion, c.n_pairs, c.human_ties, c.one_order_only, c.without_human
+            "\n  `{}`: {} pairs judged in both orders ({} human ties); left out: {} judged in one order, {} without human preference{}",
+            c.criterion,
+            c.n_pairs,
+            c.human_ties,
+            c.one_order_only,
+            c.without_human,
+            if c.panel_incomplete > 0 {
+                format!(", {} missing from a panel member", c.panel_incomplete)
+            } else {
+                String::new()
+            }
         );
-        let _ = writeln!(s, "    position: {}", c.position_bias.verdict_line);
+        let _ = writeln!(s, "    position (raw judge): {}", c.position_bias.verdict_line);
+        slot_prior(s, c);
         let _ = writeln!(
             s,
-            "    {:<14} {:>8} {:<18} {:>7} 95% CI",
-            "rule", "accuracy", "95% CI", "kappa"
+            "    {:<24} {:>9} {:<18} {:>7} {:<18} {:>11} {:>10}",
+            "rule", "agreement", "95% CI", "kappa", "95% CI", "consistency", "first slot"
         );
         for m in &c.methods {
+            let (cons, first) = m.order.map_or(("order-free".to_string(), "-".to_string()), |o| {
+                (format!("{:.2}", o.consistency), format!("{:.2}", o.first_slot_rate))
+            });
             let _ = writeln!(
                 s,
-                "    {:<14} {:>8.3} {:<18} {:>7} {}",
+                "    {:<24} {:>9.3} {:<18} {:>7} {:<18} {:>11} {:>10}{}",
                 m.method,
                 m.accuracy,
                 ci(m.accuracy_ci.as_ref()),
                 num(m.kappa),
-                ci(m.kappa_ci.as_ref())
+                ci(m.kappa_ci.as_ref()),
+                cons,
+                first,
+                if m.out_of_sample { "  (tie band fitted, scored out of sample)" } else { "" }
             );
         }
+        for n in &c.notes {
+            let _ = writeln!(s, "    note: {n}");
+        }
+        if let Some(ch) = &c.chosen {
+            let _ = writeln!(
+                s,
+                "    chosen rule: {}{} (highest agreement, or within one standard error of it and listed earlier in the preference order)",
+                ch.name,
+                ch.tie_band.map_or(String::new(), |b| format!(", tie band {b:.3}"))
+            );
+            match ch.nested_accuracy {
+                Some(a) => {
+                    let picks: Vec<String> =
+                        ch.picks.iter().map(|(r, n)| format!("{r} {n}x")).collect();
+                    let _ = writeln!(
+                        s,
+                        "    choosing out of sample (rule picked on other questions, scored on held-out ones): agreement {a:.3} {}; picked {}",
+                        ci(ch.nested_ci.as_ref()),
+                        picks.join(", ")
+                    );
+                    let _ = writeln!(
+                        s,
+                        "    caution: the chosen rule's own row is the best of {} and so flatters it; expect the out-of-sample figure on new pairs",
+                        c.methods.len()
+                    );
+                }
+                None => {
+                    let _ = writeln!(
+                        s,
+                        "    caution: pairs on one question only: the choice cannot be scored out of sample; its row flatters it"
+                    );
+                }
+            }
+        }
     }
+}
+
+fn slot_prior(s: &mut String, c: &super::PairCriterionReport) {
+    let k = &c.calibration;
+    let _ = writeln!(
+        s,
+        "    slot prior (Zhao et al. 2021 calibration, from {} pairs, {} identical-answer and {} content-free probes): first {:.3}, second {:.3}, tie {:.3}{}",
+        k.prior.from_pairs,
+        k.prior.from_identical,
+        k.prior.from_content_free,
+        k.prior.first,
+        k.prior.second,
+        k.prior.tie,
+        if k.prior.tie_estimated { "" } else { " (tie prior not identified without content-free probes: left neutral)" }
+    );
+    let _ = writeln!(
+        s,
+        "    same winner in both orders: {:.2} raw, {:.2} calibrated; first-shown answer wins {:.2} raw, {:.2} calibrated",
+        k.before.consistency, k.after.consistency, k.before.first_slot_rate, k.after.first_slot_rate
+    );
 }
