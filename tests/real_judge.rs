@@ -117,6 +117,7 @@ fn compare_args(answers: PathBuf, run_dir: PathBuf, criterion: Option<&str>) -> 
         shard: None,
         limit: None,
         templates: None,
+        slot_probes: 2,
         output: OutputArgs {
             json: true,
             quiet: true,

@@ -212,6 +212,7 @@ fn generate(dir: &Path) {
         shard: None,
         limit: Some(ITEMS / 2),
         templates: None,
+        slot_probes: 0,
         output: OutputArgs {
             json: true,
             quiet: true,

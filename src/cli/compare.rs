@@ -20,16 +20,17 @@ use crate::data::{
     PreferenceRow,
 };
 use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
-use crate::judge::pairwise::{judge_both_orders, OVERALL_QUESTION};
-use crate::judge::{Backend, GradeRecord, PairRecord};
+use crate::judge::pairwise::{judge_both_orders, judge_probe, OVERALL_QUESTION};
+use crate::judge::{Backend, GradeRecord, PairRecord, ProbeKind, ProbeRecord};
 use crate::probes::length::{length_probe, LengthProbe};
 use crate::probes::ranking::{rank, Ranking};
 use crate::probes::selfpref::{self_preference, SelfPreference};
-use crate::probes::{pair_outcomes, PairOutcome};
+use crate::probes::{pair_outcomes, set_verdicts, PairOutcome};
 use crate::rubric::forms::Forms;
 use crate::rubric::{Need, Rubric};
 use crate::stats::pairwise::{position_bias, PositionBias};
 use crate::store::{read_records, Manifest};
+use crate::vet::{ranking_rule, vet_pair_inputs, PairInputs, RankingRule, VetError, VetOptions};
 
 /// Results file of a comparison run.
 pub const PAIRS_FILE: &str = "pairs.jsonl";
@@ -84,6 +85,12 @@ pub struct CompareArgs {
     /// Folder with form templates (`system.j2`, `grade.j2`, `pair.j2`) replacing the built-in ones
     #[arg(long, value_name = "DIR")]
     pub templates: Option<PathBuf>,
+    /// Probe the judge's slot prior on this many questions (two forms each: blank answers, one answer shown twice; 0: none)
+    ///
+    /// The prior is also estimated from the pairs themselves (both orders); only the
+    /// blank-answer probes identify the prior of a tie (Zhao et al. 2021).
+    #[arg(long, value_name = "N", default_value_t = 8)]
+    pub slot_probes: usize,
     #[command(flatten)]
     pub output: OutputArgs,
 }
@@ -103,6 +110,10 @@ pub struct CompareReport {
     pub computed: usize,
     /// Position bias over all pairs.
     pub position: Option<PositionBias>,
+    /// Slot probes judged by this invocation (the rest were resumed).
+    pub probes_computed: usize,
+    /// The verdict rule the ranking uses, with the judge's slot prior before and after.
+    pub rule: Option<RankingRule>,
     /// Ranking of the systems (or why none could be made).
     pub ranking: Result<Ranking, String>,
     /// Length effect per pair of systems.
@@ -280,12 +291,8 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
     })
 }
 
-/// The comparison job: one unit per pair of answers, producing both orders.
-pub fn open_compare_job(
-    args: &CompareArgs,
-    s: &CompareSetup,
-    model: &ModelId,
-) -> anyhow::Result<Job<(AnswerRecord, AnswerRecord)>> {
+/// Where a comparison's records go and what they depend on.
+fn compare_spec(args: &CompareArgs, s: &CompareSetup, model: &ModelId) -> JobSpec {
     let mut inputs = std::collections::BTreeMap::new();
     inputs.insert("answers".to_string(), shown_path(&args.answers));
     if s.rubric.is_some() {
@@ -311,6 +318,25 @@ pub fn open_compare_job(
         Some(d) => d.clone(),
         None => default_run_dir("compare", &shard_identity(&manifest, args.shard)),
     };
+    JobSpec {
+        dir,
+        manifest,
+        results: PAIRS_FILE,
+        what: "comparing",
+        quiet: args.output.quiet,
+        shard: args.shard,
+        slow_append: None,
+    }
+}
+
+/// The comparison job: one unit per pair of answers, producing both orders.
+pub fn open_compare_job(
+    args: &CompareArgs,
+    s: &CompareSetup,
+    model: &ModelId,
+) -> anyhow::Result<Job<(AnswerRecord, AnswerRecord)>> {
+    let spec = compare_spec(args, s, model);
+    let dir = spec.dir.clone();
     let c = &s.criterion;
     let units = s
         .pairs
@@ -325,23 +351,91 @@ pub fn open_compare_job(
             data: (a.clone(), b.clone()),
         })
         .collect();
-    let spec = JobSpec {
-        dir: dir.clone(),
-        manifest,
-        results: PAIRS_FILE,
-        what: "comparing",
-        quiet: args.output.quiet,
-        shard: args.shard,
-        slow_append: None,
-    };
     Job::open(spec, units).with_context(|| format!("cannot use run folder `{}`", dir.display()))
+}
+
+/// Slot probes: on each of the first `--slot-probes` questions, blank answers and the
+/// alphabetically first system's answer shown twice.
+fn probe_units(args: &CompareArgs, s: &CompareSetup) -> Vec<Unit<(ProbeKind, AnswerRecord)>> {
+    let mut seen = HashSet::new();
+    let firsts = s
+        .pairs
+        .iter()
+        .map(|(a, _)| a)
+        .filter(|a| seen.insert(a.question_id.clone()))
+        .take(args.slot_probes);
+    let mut units = Vec::new();
+    for a in firsts {
+        for kind in [ProbeKind::ContentFree, ProbeKind::IdenticalAnswers] {
+            let record = ProbeRecord {
+                question_id: a.question_id.clone(),
+                criterion: s.criterion.clone(),
+                kind,
+                system: (kind == ProbeKind::IdenticalAnswers).then(|| a.system.clone()),
+                p_first: 0.0,
+                p_second: 0.0,
+                p_tie: 0.0,
+                captured_mass: 0.0,
+            };
+            units.push(Unit {
+                key: record.key(),
+                input: input_hash(&(kind, a)),
+                records: vec![record.key()],
+                data: (kind, a.clone()),
+            });
+        }
+    }
+    units
+}
+
+/// Whether some slot probe of this comparison is missing from its run folder.
+pub fn probes_pending(args: &CompareArgs, s: &CompareSetup, dir: &std::path::Path) -> anyhow::Result<bool> {
+    let path = dir.join(PROBES_FILE);
+    let done: HashSet<String> = if path.exists() {
+        read_records::<ProbeRecord>(&path)?.iter().map(ProbeRecord::key).collect()
+    } else {
+        HashSet::new()
+    };
+    Ok(probe_units(args, s).iter().any(|u| !done.contains(&u.key)))
+}
+
+/// Judge the slot probes not yet in the run folder; returns all of them and how many were computed.
+fn run_probes(
+    args: &CompareArgs,
+    s: &CompareSetup,
+    spec: JobSpec,
+    backend: Option<&dyn Backend>,
+) -> anyhow::Result<(Vec<ProbeRecord>, usize)> {
+    let spec = JobSpec {
+        results: PROBES_FILE,
+        what: "probing slots",
+        shard: None,
+        ..spec
+    };
+    let dir = spec.dir.clone();
+    let job = Job::open(spec, probe_units(args, s))
+        .with_context(|| format!("cannot use run folder `{}`", dir.display()))?;
+    if job.remaining() > 0 && backend.is_none() {
+        return Ok((Vec::new(), 0));
+    }
+    let outcome = job.run(
+        |(kind, a)| {
+            let backend = backend.expect("a judge is loaded when work remains");
+            Ok(vec![judge_probe(
+                backend, &s.forms, a, *kind, &s.criterion, &s.question, s.show_ref, s.show_ctx,
+            )?])
+        },
+        ProbeRecord::key,
+    )?;
+    Ok((outcome.records, outcome.computed))
 }
 
 /// Judge all pairs not yet in the run folder and build the report.
 pub fn compare_run(args: &CompareArgs, backend: &dyn Backend) -> anyhow::Result<CompareReport> {
     let setup = compare_setup(args)?;
-    let job = open_compare_job(args, &setup, &ModelId::of(backend))?;
-    finish_compare(args, &setup, job, Some(backend))
+    let model = ModelId::of(backend);
+    let job = open_compare_job(args, &setup, &model)?;
+    finish_compare(args, &setup, job, &model, Some(backend))
 }
 
 /// Run a comparison job; `backend` may be `None` only when nothing remains.
@@ -349,6 +443,7 @@ pub fn finish_compare(
     args: &CompareArgs,
     s: &CompareSetup,
     job: Job<(AnswerRecord, AnswerRecord)>,
+    model: &ModelId,
     backend: Option<&dyn Backend>,
 ) -> anyhow::Result<CompareReport> {
     let dir = job.dir().to_path_buf();
@@ -394,11 +489,16 @@ pub fn finish_compare(
             "shorten those answers or raise `--max-context`, then run the same command again to finish",
         ));
     }
+    let (probes, probes_computed) = if args.shard.is_none() && args.slot_probes > 0 {
+        run_probes(args, s, compare_spec(args, s, model), backend)?
+    } else {
+        (Vec::new(), 0)
+    };
     let criterion = s.criterion.clone();
     let answers = &s.answers;
     let records = outcome.records;
     let model_path = backend.map_or_else(|| job_model(&dir), |b| b.model_path());
-    let outcomes: Vec<PairOutcome> = pair_outcomes(&records)?;
+    let mut outcomes: Vec<PairOutcome> = pair_outcomes(&records)?;
     let judged: Vec<_> = outcomes.iter().map(PairOutcome::judged).collect();
     let judge_name = args.judge_name.clone().unwrap_or_else(|| {
         std::path::Path::new(&model_path)
@@ -406,6 +506,16 @@ pub fn finish_compare(
             .map(|s| s.to_string_lossy().into_owned())
             .unwrap_or_default()
     });
+    let inputs = PairInputs {
+        judges: vec![&records],
+        probes: vec![&probes],
+        grades: s.grades_labels.as_ref().map(|(g, _, r)| (g.as_slice(), r)),
+    };
+    let rule = chosen_rule(args, &inputs, s.preferences.as_deref(), &criterion)?;
+    if let Some(r) = &rule {
+        set_verdicts(&mut outcomes, &r.verdicts);
+    }
+    let rule_name = rule.as_ref().map_or("debiased", |r| r.name.as_str()).to_string();
     let self_pref = self_preference(
         &judge_name,
         &outcomes,
@@ -423,7 +533,9 @@ pub fn finish_compare(
         pairs: outcomes.len(),
         computed: outcome.computed,
         position: if judged.is_empty() { None } else { Some(position_bias(&judged)?) },
-        ranking: rank(&outcomes, args.resamples, args.seed).map_err(|e| {
+        probes_computed,
+        rule,
+        ranking: rank(&outcomes, &rule_name, args.resamples, args.seed).map_err(|e| {
             format!("no ranking: {e}; compare more systems against each other so every system both wins and loses somewhere")
         }),
         length: length_probe(&outcomes, answers),
@@ -431,6 +543,30 @@ pub fn finish_compare(
         low_mass: records.iter().filter(|r| r.captured_mass < 0.5).count(),
         outcomes,
     })
+}
+
+/// The ranking's verdict rule: chosen against `prefs` when they overlap the pairs,
+/// else the calibrated rule.
+fn chosen_rule(
+    args: &CompareArgs,
+    inputs: &PairInputs,
+    prefs: Option<&[crate::data::PreferenceRow]>,
+    criterion: &str,
+) -> anyhow::Result<Option<RankingRule>> {
+    let opts = VetOptions {
+        resamples: args.resamples,
+        seed: args.seed,
+        ..VetOptions::default()
+    };
+    let vetted = match prefs {
+        Some(p) => match vet_pair_inputs(inputs, p, &opts) {
+            Ok(v) => Some(v),
+            Err(VetError::NoPairOverlap { .. }) => None,
+            Err(e) => return Err(e.into()),
+        },
+        None => None,
+    };
+    Ok(ranking_rule(inputs, criterion, vetted.as_ref())?)
 }
 
 /// The judge model recorded in a run folder's manifest.
@@ -448,7 +584,10 @@ pub fn run(args: CompareArgs) -> anyhow::Result<ExitCode> {
     let setup = compare_setup(&args)?;
     let model_id = ModelId::resolve(&args.model)?;
     let job = open_compare_job(&args, &setup, &model_id)?;
-    let judge = if job.remaining() > 0 {
+    let probing = args.shard.is_none()
+        && args.slot_probes > 0
+        && probes_pending(&args, &setup, job.dir())?;
+    let judge = if job.remaining() > 0 || probing {
         Some(load_judge(&args.model, args.output.quiet)?)
     } else {
         None
@@ -457,6 +596,7 @@ pub fn run(args: CompareArgs) -> anyhow::Result<ExitCode> {
         &args,
         &setup,
         job,
+        &model_id,
         judge.as_ref().map(|j| j as &dyn Backend),
     )?;
     if args.output.json {
@@ -495,9 +635,35 @@ pub fn compare_text(r: &CompareReport) -> String {
             p.verdict_line
         ));
     }
+    if let Some(rule) = &r.rule {
+        let k = &rule.calibration;
+        s.push_str(&format!(
+            "\nslot prior (Zhao et al. 2021 calibration, from {} pairs, {} identical-answer and {} blank-answer probes): first {:.3}, second {:.3}, tie {:.3}{}\n",
+            k.prior.from_pairs,
+            k.prior.from_identical,
+            k.prior.from_content_free,
+            k.prior.first,
+            k.prior.second,
+            k.prior.tie,
+            if k.prior.tie_estimated { "" } else { " (tie prior left neutral)" }
+        ));
+        s.push_str(&format!(
+            "  same winner in both orders: {:.2} raw, {:.2} calibrated; first-shown answer wins {:.2} raw, {:.2} calibrated\n",
+            k.before.consistency, k.after.consistency, k.before.first_slot_rate, k.after.first_slot_rate
+        ));
+        s.push_str(&format!(
+            "  verdict rule for the ranking: {}{}\n",
+            rule.name,
+            if rule.chosen_against_humans {
+                " (chosen against the human preferences; see `assize vet --pairs`)"
+            } else {
+                " (default; pass `--preferences` to choose a rule against human preferences)"
+            }
+        ));
+    }
     match &r.ranking {
         Ok(k) => {
-            s.push_str("\nchance of beating a system of average strength (Bradley-Terry fit of the debiased verdicts, Hunter 2004; 95% bootstrap interval over questions)\n");
+            s.push_str(&format!("\nchance of beating a system of average strength (Bradley-Terry fit of the {} verdicts, Hunter 2004; 95% bootstrap interval over questions)\n", k.rule));
             if let Some(p) = &k.prior {
                 s.push_str(&format!("  note: {p}\n"));
             }

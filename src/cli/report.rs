@@ -175,10 +175,17 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
         Some(dir) => {
             let path = results_file(dir, super::compare::PAIRS_FILE, "compare")?;
             let records: Vec<PairRecord> = read_records(&path)?;
+            let probe_path = dir.join(super::compare::PROBES_FILE);
+            let probes = if probe_path.exists() {
+                read_records(&probe_path)?
+            } else {
+                Vec::new()
+            };
             Some(CompareInput {
                 dir: dir.display().to_string(),
                 model: manifest_model(dir),
                 records,
+                probes,
             })
         }
         None => None,

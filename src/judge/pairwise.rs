@@ -1,9 +1,10 @@
 //! Pairwise judging: two answers to one question, judged in both orders, with the
 //! verdict read as a distribution over Answer 1 / Answer 2 / tie at the verdict slot.
 //! Input: two answer records and the criterion question. Output: two `PairRecord`s
-//! (one per order), recorded by system identity. Never aggregates: `probes` does.
+//! (one per order), recorded by system identity; slot probes (blank or identical
+//! answers, one order) as `ProbeRecord`s. Never aggregates: `probes` does.
 
-use super::{Backend, PairRecord};
+use super::{Backend, PairRecord, ProbeKind, ProbeRecord};
 use crate::data::AnswerRecord;
 use crate::judge::grade::JudgeError;
 use crate::rubric::forms::{Forms, VERDICT_LABELS};
@@ -45,4 +46,47 @@ pub fn judge_both_orders(
         }
     };
     Ok([make(a, b, &lp[0]), make(b, a, &lp[1])])
+}
+
+/// What a content-free probe shows in both answer slots (Zhao et al. 2021 use "N/A"
+/// among their content-free inputs).
+pub const CONTENT_FREE_ANSWER: &str = "N/A";
+
+/// Judge one slot probe of `answer`'s question: both slots blank (`ContentFree`) or
+/// `answer` shown twice (`IdenticalAnswers`), one order, read like a pair.
+#[allow(clippy::too_many_arguments)]
+pub fn judge_probe(
+    backend: &dyn Backend,
+    forms: &Forms,
+    answer: &AnswerRecord,
+    kind: ProbeKind,
+    criterion: &str,
+    question: &str,
+    show_reference: bool,
+    show_context: bool,
+) -> Result<ProbeRecord, JudgeError> {
+    let shown = match kind {
+        ProbeKind::ContentFree => AnswerRecord {
+            answer: CONTENT_FREE_ANSWER.to_string(),
+            ..answer.clone()
+        },
+        ProbeKind::IdenticalAnswers => answer.clone(),
+    };
+    let form = forms.pair(&shown, &shown, question, show_reference, show_context)?;
+    let labels: Vec<String> = VERDICT_LABELS.iter().map(|s| s.to_string()).collect();
+    let item = format!("{} (slot probe, {kind:?})", answer.question_id);
+    let lp = backend.score_forms(&item, &[form], &[labels])?;
+    let p: Vec<f64> = lp[0].iter().map(|l| l.exp()).collect();
+    let mass: f64 = p.iter().sum();
+    let norm = if mass > 0.0 { mass } else { 1.0 };
+    Ok(ProbeRecord {
+        question_id: answer.question_id.clone(),
+        criterion: criterion.to_string(),
+        kind,
+        system: (kind == ProbeKind::IdenticalAnswers).then(|| answer.system.clone()),
+        p_first: p[0] / norm,
+        p_second: p[1] / norm,
+        p_tie: p[2] / norm,
+        captured_mass: mass,
+    })
 }

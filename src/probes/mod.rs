@@ -45,6 +45,9 @@ pub struct PairOutcome {
     pub debiased_winner: Winner,
     /// Winner only if both orders agree, else tie (Zheng et al. 2023).
     pub conservative_winner: Winner,
+    /// Winner under the verdict rule the ranking uses: the debiased winner unless
+    /// [`set_verdicts`] applied another rule.
+    pub verdict: Winner,
 }
 
 impl PairOutcome {
@@ -141,10 +144,30 @@ pub fn pair_outcomes(records: &[PairRecord]) -> Result<Vec<PairOutcome>, StatsEr
             swapped_winner: sw,
             debiased,
             debiased_winner: identity_winner(debiased),
+            verdict: identity_winner(debiased),
             conservative_winner: if ow == sw { ow } else { Winner::Tie },
         });
     }
     Ok(out)
+}
+
+/// Sets each outcome's ranking verdict from verdicts keyed by (question, alphabetically
+/// first system, second) and oriented to the first; outcomes without one keep theirs.
+pub fn set_verdicts(
+    outcomes: &mut [PairOutcome],
+    verdicts: &BTreeMap<(String, String, String), Winner>,
+) {
+    for o in outcomes {
+        let flipped = o.a > o.b;
+        let (lo, hi) = if flipped { (&o.b, &o.a) } else { (&o.a, &o.b) };
+        if let Some(&w) = verdicts.get(&(o.question_id.clone(), lo.clone(), hi.clone())) {
+            o.verdict = match (w, flipped) {
+                (Winner::A, true) => Winner::B,
+                (Winner::B, true) => Winner::A,
+                (w, _) => w,
+            };
+        }
+    }
 }
 
 #[cfg(test)]

@@ -1,4 +1,5 @@
-//! Rankings of systems from debiased pairwise verdicts: Bradley-Terry maximum
+//! Rankings of systems from pairwise verdicts under a named rule (each outcome's
+//! `verdict`): Bradley-Terry maximum
 //! likelihood (Hunter 2004, MM algorithm; ties as half wins) presented as each
 //! system's modelled chance of beating a system of average strength, with seeded
 //! bootstrap intervals over questions, and the head-to-head verdict counts. Input:
@@ -22,11 +23,11 @@ use crate::stats::StatsError;
 pub struct RankingRow {
     /// System name.
     pub system: String,
-    /// Debiased wins against any other system.
+    /// Wins against any other system under the ranking's rule.
     pub wins: usize,
-    /// Debiased ties.
+    /// Ties under the ranking's rule.
     pub ties: usize,
-    /// Debiased losses.
+    /// Losses under the ranking's rule.
     pub losses: usize,
     /// Bradley-Terry strength (all strengths sum to 1).
     pub strength: f64,
@@ -40,7 +41,7 @@ pub struct RankingRow {
 }
 
 impl RankingRow {
-    /// Debiased verdicts this system took part in.
+    /// Verdicts (under the ranking's rule) this system took part in.
     pub fn comparisons(&self) -> usize {
         self.wins + self.ties + self.losses
     }
@@ -54,6 +55,8 @@ impl RankingRow {
 /// The ranking of all systems.
 #[derive(Debug, Clone, Serialize)]
 pub struct Ranking {
+    /// The verdict rule behind the wins, ties and losses.
+    pub rule: String,
     /// Systems, strongest first.
     pub rows: Vec<RankingRow>,
     /// `matrix[i][j]` = [wins, ties, losses] of system i against j (order of `systems`).
@@ -90,7 +93,7 @@ fn wins_matrix(outcomes: &[&PairOutcome], systems: &[String]) -> Vec<Vec<f64>> {
     let mut w = vec![vec![0.0; systems.len()]; systems.len()];
     for o in outcomes {
         let (a, b) = (idx(&o.a), idx(&o.b));
-        match o.debiased_winner {
+        match o.verdict {
             Winner::A => w[a][b] += 1.0,
             Winner::B => w[b][a] += 1.0,
             Winner::Tie => {
@@ -103,7 +106,12 @@ fn wins_matrix(outcomes: &[&PairOutcome], systems: &[String]) -> Vec<Vec<f64>> {
 }
 
 /// Rank systems; `Err` names the systems when no finite estimate exists.
-pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ranking, StatsError> {
+pub fn rank(
+    outcomes: &[PairOutcome],
+    rule: &str,
+    resamples: usize,
+    seed: u64,
+) -> Result<Ranking, StatsError> {
     let systems: Vec<String> = outcomes
         .iter()
         .flat_map(|o| [o.a.clone(), o.b.clone()])
@@ -130,7 +138,7 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
     for o in outcomes {
         let a = systems.iter().position(|x| *x == o.a).expect("listed");
         let b = systems.iter().position(|x| *x == o.b).expect("listed");
-        let (ra, rb) = match o.debiased_winner {
+        let (ra, rb) = match o.verdict {
             Winner::A => (0, 2),
             Winner::B => (2, 0),
             Winner::Tie => (1, 1),
@@ -185,6 +193,7 @@ pub fn rank(outcomes: &[PairOutcome], resamples: usize, seed: u64) -> Result<Ran
     }
     rows.sort_by(|x, y| y.strength.total_cmp(&x.strength));
     Ok(Ranking {
+        rule: rule.to_string(),
         rows,
         matrix,
         systems,
@@ -221,6 +230,7 @@ mod tests {
             },
             debiased_winner: w,
             conservative_winner: w,
+            verdict: w,
         }
     }
 
@@ -234,7 +244,7 @@ mod tests {
             outcome("q3", "mid", "low", Winner::A),
             outcome("q4", "mid", "low", Winner::B),
         ];
-        let r = rank(&o, 50, 1).expect("ranking");
+        let r = rank(&o, "debiased", 50, 1).expect("ranking");
         assert!(r.prior.is_some());
         assert_eq!(r.rows[0].system, "best");
         assert_eq!(r.rows[0].wins, 2);
@@ -251,6 +261,6 @@ mod tests {
             outcome("q3", "c", "d", Winner::A),
             outcome("q4", "c", "d", Winner::B),
         ];
-        assert!(rank(&o, 10, 1).is_err());
+        assert!(rank(&o, "debiased", 10, 1).is_err());
     }
 }

@@ -325,6 +325,7 @@ mod tests {
             },
             debiased_winner: winner,
             conservative_winner: winner,
+            verdict: winner,
         }
     }
 

@@ -10,12 +10,15 @@ use super::*;
 use crate::judge::anchors::consensus_index;
 use crate::judge::grade::summarize;
 use crate::probes::length::length_probe;
-use crate::probes::pair_outcomes;
+use crate::probes::{pair_outcomes, set_verdicts};
 use crate::probes::ranking::rank;
 use crate::probes::selfpref::self_preference;
 use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
 use crate::stats::pairwise::position_bias;
-use crate::vet::{vet, vet_pairs, CriterionReport, Variant, VariantKind, VetError, VetOptions};
+use crate::vet::{
+    ranking_rule, vet, vet_pair_inputs, CriterionReport, PairInputs, PairVetReport, RankingRule,
+    Variant, VariantKind, VetError, VetOptions,
+};
 
 fn stats_err<E: std::error::Error + Send + Sync + 'static>(
     what: impl Into<String>,
@@ -309,7 +312,7 @@ fn pairwise(
         .filter(|r| r.criterion == criterion)
         .cloned()
         .collect();
-    let outcomes = pair_outcomes(&records).map_err(stats_err("the pair outcomes"))?;
+    let mut outcomes = pair_outcomes(&records).map_err(stats_err("the pair outcomes"))?;
     let judged: Vec<_> = outcomes.iter().map(|o| o.judged()).collect();
     let position = if judged.is_empty() {
         None
@@ -325,7 +328,12 @@ fn pairwise(
             verdict_line: p.verdict_line,
         })
     };
-    let (ranking, ranking_note) = match rank(&outcomes, inp.resamples, inp.seed) {
+    let (rule, vetted_rules) = report_rule(inp, &records, &criterion, opts)?;
+    if let Some(r) = &rule {
+        set_verdicts(&mut outcomes, &r.verdicts);
+    }
+    let rule_name = rule.as_ref().map_or("debiased", |r| r.name.as_str());
+    let (ranking, ranking_note) = match rank(&outcomes, rule_name, inp.resamples, inp.seed) {
         Ok(r) => (Some(r), None),
         Err(e) => (None, Some(format!("no ranking: {e}"))),
     };
@@ -362,9 +370,7 @@ fn pairwise(
         )
     });
     let (mut human, mut human_pairs) = (Vec::new(), 0);
-    if let Some(prefs) = inp.preferences {
-        match vet_pairs(&records, prefs, opts) {
-            Ok(v) => {
+    if let Some(v) = &vetted_rules {
                 if let Some(k) = v.criteria.iter().find(|k| k.criterion == criterion) {
                     human_pairs = k.n_pairs;
                     human = k
@@ -378,10 +384,8 @@ fn pairwise(
                         })
                         .collect();
                 }
-            }
-            Err(e @ VetError::NoPairOverlap { .. }) => notes.push(e.to_string()),
-            Err(e) => return Err(stats_err("the pairwise vetting")(e)),
-        }
+    } else if inp.preferences.is_some() {
+        notes.push("no judged pair was compared by humans: the ranking uses the calibrated rule".into());
     }
     Ok(PairwiseSection {
         dir: c.dir.clone(),
@@ -393,6 +397,7 @@ fn pairwise(
             .filter(|r| r.captured_mass < PAIR_LOW_MASS)
             .count(),
         position,
+        rule,
         ranking,
         ranking_note,
         length,
@@ -401,6 +406,32 @@ fn pairwise(
         human_pairs,
         notes,
     })
+}
+
+/// The ranking's verdict rule: chosen against the human preferences (with the first
+/// grading run feeding the pointwise rules) when they overlap the pairs, else calibrated.
+fn report_rule(
+    inp: &Inputs,
+    records: &[PairRecord],
+    criterion: &str,
+    opts: &VetOptions,
+) -> Result<(Option<RankingRule>, Option<PairVetReport>), ReportError> {
+    let inputs = PairInputs {
+        judges: vec![records],
+        probes: vec![inp.compare.map_or(&[][..], |c| c.probes.as_slice())],
+        grades: inp.runs.first().map(|r| (r.records.as_slice(), inp.rubric)),
+    };
+    let vetted = match inp.preferences {
+        Some(prefs) => match vet_pair_inputs(&inputs, prefs, opts) {
+            Ok(v) => Some(v),
+            Err(VetError::NoPairOverlap { .. }) => None,
+            Err(e) => return Err(stats_err("the pairwise vetting")(e)),
+        },
+        None => None,
+    };
+    let rule = ranking_rule(&inputs, criterion, vetted.as_ref())
+        .map_err(stats_err("the ranking's verdict rule"))?;
+    Ok((rule, vetted))
 }
 
 /// Grades with low captured mass, and grades whose expected score is at least

@@ -198,6 +198,27 @@ fn pairwise(s: &mut String, r: &Report) {
             pos.verdict_line
         );
     }
+    if let Some(r) = &p.rule {
+        let k = &r.calibration;
+        let _ = writeln!(
+            s,
+            "Verdict rule: **{}** ({}). Judge's slot prior: first {}, second {}, tie {}{}; same winner in both orders {} raw, {} calibrated; first-shown answer wins {} raw, {} calibrated.\n",
+            r.name,
+            if r.chosen_against_humans {
+                "chosen against the human preferences"
+            } else {
+                "default, no human preferences to choose with"
+            },
+            num(k.prior.first, 3),
+            num(k.prior.second, 3),
+            num(k.prior.tie, 3),
+            if k.prior.tie_estimated { "" } else { " (tie prior left neutral)" },
+            num(k.before.consistency, 2),
+            num(k.after.consistency, 2),
+            num(k.before.first_slot_rate, 2),
+            num(k.after.first_slot_rate, 2)
+        );
+    }
     match (&p.ranking, &p.ranking_note) {
         (Some(k), _) => {
             if let Some(prior) = &k.prior {

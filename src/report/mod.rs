@@ -19,7 +19,8 @@ use serde::Serialize;
 
 use crate::data::{AnswerRecord, LabelRow, PreferenceRow};
 use crate::judge::grade::SummaryRow;
-use crate::judge::{GradeRecord, PairRecord};
+use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
+use crate::vet::RankingRule;
 use crate::probes::length::LengthProbe;
 use crate::probes::ranking::Ranking;
 use crate::probes::selfpref::SelfPreference;
@@ -58,6 +59,8 @@ pub struct CompareInput {
     pub model: String,
     /// The run's pair records.
     pub records: Vec<PairRecord>,
+    /// The run's slot probes (empty when it has none).
+    pub probes: Vec<ProbeRecord>,
 }
 
 /// Everything a report is assembled from.
@@ -346,7 +349,10 @@ pub struct PairwiseSection {
     pub low_mass: usize,
     /// Position bias over all pairs.
     pub position: Option<Position>,
-    /// Bradley-Terry ranking of debiased verdicts, when one can be made.
+    /// The verdict rule behind the ranking (chosen against human preferences when
+    /// they overlap the pairs, else calibrated), with the judge's slot prior.
+    pub rule: Option<RankingRule>,
+    /// Bradley-Terry ranking of the rule's verdicts, when one can be made.
     pub ranking: Option<Ranking>,
     /// Why there is no ranking, when there is none.
     pub ranking_note: Option<String>,

@@ -54,7 +54,7 @@ pub use card::{TrustCard, Verdict};
 pub use ceiling::{HumanCeiling, RaterCeiling};
 pub use pairwise::{
     judged_pairs, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs, MethodAgreement,
-    PairCriterionReport, PairInputs, PairKey, PairVetReport,
+    PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule, ranking_rule,
 };
 pub use text::report_text;
 

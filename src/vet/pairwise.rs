@@ -430,17 +430,7 @@ fn criterion_report(
     let criterion = &jp.criterion;
     // Human category per evidence index (2 = tie where unlabelled; never read there).
     let human: Vec<usize> = jp.keys.iter().map(|k| majority.get(k).copied().unwrap_or(2)).collect();
-    let stats = |what: &str| {
-        let what = format!("{what} on `{criterion}`");
-        move |source| VetError::Stats { what, source }
-    };
-    let pairs: Vec<(SlotProbs, SlotProbs)> = p.evidence.iter().map(|e| e.judges[0]).collect();
-    let calibration = SlotCalibration {
-        prior: p.priors[0],
-        before: order_effect(&pairs, |x| x).map_err(stats("the raw order effect"))?,
-        after: order_effect(&pairs, |x| calibrate(x, &p.priors[0]))
-            .map_err(stats("the calibrated order effect"))?,
-    };
+    let calibration = primary_calibration(p, criterion)?;
     let rules: Vec<PairRule> = PairRule::DISPLAY.into_iter().filter(|r| p.supports(*r)).collect();
     let mut notes = Vec::new();
     let graded = p.evidence.iter().filter(|e| e.points.is_some()).count();
@@ -505,6 +495,21 @@ fn criterion_report(
         methods,
         chosen,
         notes,
+    })
+}
+
+/// The primary judge's prior with its order effect before and after, over all judged pairs.
+fn primary_calibration(p: &Prepared, criterion: &str) -> Result<SlotCalibration, VetError> {
+    let pairs: Vec<(SlotProbs, SlotProbs)> = p.evidence.iter().map(|e| e.judges[0]).collect();
+    let stats = |what: &str| {
+        let what = format!("{what} on `{criterion}`");
+        move |source| VetError::Stats { what, source }
+    };
+    Ok(SlotCalibration {
+        prior: p.priors[0],
+        before: order_effect(&pairs, |x| x).map_err(stats("the raw order effect"))?,
+        after: order_effect(&pairs, |x| calibrate(x, &p.priors[0]))
+            .map_err(stats("the calibrated order effect"))?,
     })
 }
 
@@ -581,4 +586,50 @@ fn method_agreement(
             source,
         })?,
     })
+}
+
+/// The verdict rule a ranking uses and its verdicts on every judged pair of a criterion.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RankingRule {
+    /// The rule.
+    pub rule: PairRule,
+    /// Its display name.
+    pub name: String,
+    /// Its tie band, if it has one.
+    pub tie_band: Option<f64>,
+    /// True when chosen against human preferences; false: the label-free default
+    /// (calibrated), because no human preferences were given or none overlapped.
+    pub chosen_against_humans: bool,
+    /// The primary judge's slot prior with consistency and first-slot rate before and
+    /// after dividing it out, over all judged pairs.
+    pub calibration: SlotCalibration,
+    /// Verdict per pair (question, alphabetically first system, second), oriented to the first.
+    #[serde(skip)]
+    pub verdicts: BTreeMap<PairKey, Winner>,
+}
+
+/// The rule chosen in `vetted` for `criterion`, or the calibrated rule when there is no
+/// choice, applied to every pair of `inputs` judged in both orders. `None` when no
+/// pair of the criterion was judged in both orders.
+pub fn ranking_rule(
+    inputs: &PairInputs,
+    criterion: &str,
+    vetted: Option<&PairVetReport>,
+) -> Result<Option<RankingRule>, VetError> {
+    let Some(jp) = judged_pairs(inputs)?.into_iter().find(|j| j.criterion == criterion) else {
+        return Ok(None);
+    };
+    let chosen = vetted
+        .and_then(|v| v.criteria.iter().find(|c| c.criterion == criterion))
+        .and_then(|c| c.chosen.as_ref());
+    let (rule, band) = chosen.map_or((PairRule::Calibrated, None), |c| (c.rule, c.tie_band));
+    let calibration = primary_calibration(&jp.prepared, criterion)?;
+    Ok(Some(RankingRule {
+        rule,
+        name: rule.name().to_string(),
+        tie_band: band,
+        chosen_against_humans: chosen.is_some(),
+        calibration,
+        verdicts: rule_verdicts(&jp, rule, band.unwrap_or(0.0)).into_iter().collect(),
+    }))
 }
