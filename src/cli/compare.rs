@@ -652,8 +652,12 @@ pub fn compare_text(r: &CompareReport) -> String {
             k.before.consistency, k.after.consistency, k.before.first_slot_rate, k.after.first_slot_rate
         ));
         s.push_str(&format!(
-            "  verdict rule for the ranking: {}{}\n",
+            "  verdict rule for the ranking: {} ({}){}\n",
             rule.name,
+            rule.order.map_or("order cannot enter".to_string(), |o| format!(
+                "same winner in both orders {:.2}, first-shown answer wins {:.2}",
+                o.consistency, o.first_slot_rate
+            )),
             if rule.chosen_against_humans {
                 " (chosen against the human preferences; see `assize vet --pairs`)"
             } else {

@@ -143,7 +143,11 @@ pub fn collect(r: &Report, have_labels: bool) -> Vec<Caution> {
         if let Some(p) = pw.position.as_ref().filter(|p| p.caution) {
             add(
                 CautionKind::PositionBias,
-                format!("strong position bias: {}; a verdict from one answer order would mislead, so the ranking averages both orders", p.verdict_line),
+                format!(
+                    "strong position bias: {}; a verdict from one answer order would mislead, so the ranking uses the `{}` rule",
+                    p.verdict_line,
+                    pw.rule.as_ref().map_or("debiased", |r| r.name.as_str())
+                ),
             );
         }
         if let Some(sp) = &pw.self_preference {

@@ -603,6 +603,9 @@ pub struct RankingRule {
     /// The primary judge's slot prior with consistency and first-slot rate before and
     /// after dividing it out, over all judged pairs.
     pub calibration: SlotCalibration,
+    /// Consistency and first-slot rate of the rule itself read one order at a time,
+    /// over all judged pairs; missing for the pointwise rule (order cannot enter).
+    pub order: Option<OrderEffect>,
     /// Verdict per pair (question, alphabetically first system, second), oriented to the first.
     #[serde(skip)]
     pub verdicts: BTreeMap<PairKey, Winner>,
@@ -624,7 +627,9 @@ pub fn ranking_rule(
         .and_then(|c| c.chosen.as_ref());
     let (rule, band) = chosen.map_or((PairRule::Calibrated, None), |c| (c.rule, c.tie_band));
     let calibration = primary_calibration(&jp.prepared, criterion)?;
+    let all: Vec<usize> = (0..jp.keys.len()).collect();
     Ok(Some(RankingRule {
+        order: rule_order_effect(&jp.prepared, rule, band.unwrap_or(0.0), &all),
         rule,
         name: rule.name().to_string(),
         tie_band: band,

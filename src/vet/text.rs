@@ -384,6 +384,18 @@ fn pairs(s: &mut String, p: &PairVetReport) {
                 ch.name,
                 ch.tie_band.map_or(String::new(), |b| format!(", tie band {b:.3}"))
             );
+            if let Some(m) = c.methods.iter().find(|m| m.rule == Some(ch.rule)) {
+                let _ = writeln!(
+                    s,
+                    "    order effect: raw judge {:.2} same winner in both orders, first-shown answer wins {:.2}; chosen rule {}",
+                    c.calibration.before.consistency,
+                    c.calibration.before.first_slot_rate,
+                    m.order.map_or("order-free (pointwise grades)".to_string(), |o| format!(
+                        "{:.2} and {:.2}",
+                        o.consistency, o.first_slot_rate
+                    ))
+                );
+            }
             match ch.nested_accuracy {
                 Some(a) => {
                     let picks: Vec<String> =
