@@ -377,7 +377,11 @@ fn pairwise(
                         .methods
                         .iter()
                         .map(|m| HumanAgreement {
-                            method: m.method.clone(),
+                            method: if m.out_of_sample {
+                                format!("{} (tie band scored out of sample)", m.method)
+                            } else {
+                                m.method.clone()
+                            },
                             accuracy: m.accuracy,
                             accuracy_ci: m.accuracy_ci.as_ref().map(|i| (i.lower, i.upper)),
                             kappa: m.kappa,
