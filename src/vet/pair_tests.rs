@@ -157,7 +157,7 @@ fn dummy_report() -> VetReport {
 /// are rescaled by the scale (1..5): expected 5 and 1 give 1.0 and 0.0.
 #[test]
 fn grades_and_a_panel_add_rules_and_the_choice_reads_the_grades() {
-    let rb = rubric(&[("c", Scale::OneToFive)]);
+    let rb = rubric(&[("c", Scale::points(1, 5))]);
     let (mut recs, mut grades, mut prefs) = (Vec::new(), Vec::new(), Vec::new());
     for i in 0..12 {
         let q = format!("q{i:02}");
@@ -166,7 +166,7 @@ fn grades_and_a_panel_add_rules_and_the_choice_reads_the_grades() {
         let x_better = i % 3 != 0;
         for (sys, good) in [("x", x_better), ("y", !x_better)] {
             let probs = if good { [0.0, 0.0, 0.0, 0.0, 1.0] } else { [1.0, 0.0, 0.0, 0.0, 0.0] };
-            let mut g = record(&q, "c", Scale::OneToFive, &probs);
+            let mut g = record(&q, "c", Scale::points(1, 5), &probs);
             g.system = sys.into();
             grades.push(g);
         }
