@@ -147,7 +147,7 @@ pub fn fit_logistic(
     })
 }
 
-fn softplus(x: f64) -> f64 {
+pub(crate) fn softplus(x: f64) -> f64 {
     x.max(0.0) + (-x.abs()).exp().ln_1p()
 }
 
@@ -180,7 +180,7 @@ fn score_and_information(
 }
 
 /// Solves A·x = b by Gaussian elimination with partial pivoting; None if singular.
-fn solve(a: &[Vec<f64>], b: &[f64]) -> Option<Vec<f64>> {
+pub(crate) fn solve(a: &[Vec<f64>], b: &[f64]) -> Option<Vec<f64>> {
     let n = b.len();
     let mut m: Vec<Vec<f64>> = a
         .iter()
