@@ -5,6 +5,7 @@
 //! `data` + `rubric` -> forms -> `engine` (token probabilities) -> `judge` (verdicts)
 //! -> `stats` / `probes` -> `report`. See ARCHITECTURE.md.
 
+pub mod calibrate;
 pub mod cli;
 pub mod data;
 pub mod engine;

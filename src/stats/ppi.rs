@@ -169,6 +169,21 @@ pub fn ppi_mean(
     ppi_mean_with_lambda(labels, judged, unlabelled, Some(1.0), alpha)
 }
 
+/// Cross-prediction-powered mean (Zrnic & Candes 2024, "Cross-prediction-powered
+/// inference", PNAS 121): the predictor is fitted K-fold on the labelled items, so
+/// `out_of_fold[i]` comes from the model that did not see item i and
+/// `unlabelled_mean[j]` is the fold models' average on unlabelled item j. Then
+/// θ̂ = mean(f̄(X̃)) + mean(Y − f_oof(X)) with SE² = Var(f̄(X̃))/N + Var(Y − f_oof)/n
+/// (ddof = 0): the PPI formula on these inputs, which is why it delegates to it.
+pub fn cross_ppi_mean(
+    labels: &[f64],
+    out_of_fold: &[f64],
+    unlabelled_mean: &[f64],
+    alpha: f64,
+) -> Result<MeanEstimate, StatsError> {
+    ppi_mean_with_lambda(labels, out_of_fold, unlabelled_mean, Some(1.0), alpha)
+}
+
 /// Classical mean of the human labels with a normal interval, SE = sd(ddof = 0)/√n
 /// (ppi-python 0.2.3 `classical_mean_ci`).
 pub fn classical_mean(labels: &[f64], alpha: f64) -> Result<MeanEstimate, StatsError> {

@@ -52,6 +52,7 @@ pub use agreement::{
 pub use calibration::{TemperatureSummary, VariantCalibration};
 pub use card::{TrustCard, Verdict};
 pub use ceiling::{HumanCeiling, RaterCeiling};
+pub(crate) use items::nearest_position;
 pub use pairwise::{
     judged_pairs, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs, MethodAgreement,
     PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule, ranking_rule,
