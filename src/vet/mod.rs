@@ -44,6 +44,7 @@ mod items;
 pub mod pair_rules;
 mod pairwise;
 mod text;
+mod variants;
 
 pub use agreement::{
     CategoricalAgreement, CorrelationSummary, IntervalPair, RaterKappa, ScoreError,
@@ -58,6 +59,10 @@ pub use pairwise::{
     PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule, ranking_rule,
 };
 pub use text::report_text;
+pub use variants::{
+    choose_variant, cross_fitted_records, Candidate, CandidateSource, CriterionChoice,
+    VariantChoice, VariantScore,
+};
 
 use serde::Serialize;
 
@@ -437,3 +442,5 @@ mod pair_tests;
 mod tests;
 #[cfg(test)]
 mod trust_tests;
+#[cfg(test)]
+mod variant_tests;
