@@ -14,6 +14,7 @@ pub mod compare;
 pub mod csv_out;
 pub mod errors;
 pub mod estimate;
+pub mod evidence;
 pub mod grade;
 pub mod injection;
 pub mod merge;

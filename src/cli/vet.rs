@@ -11,15 +11,18 @@ use serde::Serialize;
 
 use super::common::RubricArg;
 use super::errors::{usage, GateFailed};
+use super::evidence::{Evidence, PanelArgs, PRIMARY};
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences, AnswerRecord};
+use crate::calibrate::{FeatureTable, MappingFile, MAPPING_FORMAT};
 use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
 use crate::overlap::{score_pair, OverlapOptions};
 use crate::rubric::Rubric;
 use crate::store::read_records;
 use crate::vet::{
-    gate_failures, report_text, vet, vet_pair_inputs, PairInputs, PairVetReport, Variant,
-    VariantKind, VetOptions, VetReport,
+    choice_text, choose_variant, cross_fitted_records, fit_mappings, gate_failures, report_text,
+    vet, vet_pair_inputs, Candidate, CandidateSource, PairInputs, PairVetReport, Variant,
+    VariantChoice, VariantKind, VetOptions, VetReport,
 };
 
 /// Arguments of `assize vet`.
@@ -65,6 +68,15 @@ pub struct VetArgs {
     #[arg(long, value_name = "FILE")]
     pub csv: Option<PathBuf>,
     #[command(flatten)]
+    pub panel: PanelArgs,
+    /// Add label-calibrated variants (the judge alone, and the panel), cross-fitted so
+    /// every figure shown for them is out of sample
+    #[arg(long)]
+    pub calibrate: bool,
+    /// Fit the calibration on all labelled items and save it here, with what it was fitted on
+    #[arg(long, value_name = "FILE", requires = "calibrate")]
+    pub save_calibration: Option<PathBuf>,
+    #[command(flatten)]
     pub output: OutputArgs,
 }
 
@@ -77,6 +89,21 @@ pub struct VetOutput {
     pub pairwise: Option<PairVetReport>,
     /// Criteria that failed `--min-kappa`.
     pub gate_failures: Vec<String>,
+    /// Every variant out of sample and the best per criterion (nested cross-validation).
+    pub variant_choice: VariantChoice,
+    /// Panel members and items left out of the panel, when `--panel` was given.
+    pub panel: Option<PanelSummary>,
+    /// Methods chosen for calibrated variants, and why something was not calibrated.
+    pub calibration_notes: Vec<String>,
+}
+
+/// The panel as vetted.
+#[derive(Debug, Serialize)]
+pub struct PanelSummary {
+    /// Member names; `judge` is the `--grades` run.
+    pub members: Vec<String>,
+    /// Items (question/system/criterion) some member did not grade, left out of the panel.
+    pub incomplete: Vec<String>,
 }
 
 fn load_grades(dir: &std::path::Path) -> anyhow::Result<Vec<GradeRecord>> {
@@ -164,7 +191,8 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
     let rubric = args.rubric.load_for_run(&args.grades)?;
     let answers = args.baselines.as_deref().map(read_answers).transpose()?;
     let labels = read_labels_checked(&args.labels, &rubric.scales(), answers.as_deref(), OtherCriteria::Refuse)?;
-    let primary = load_grades(&args.grades)?;
+    let evidence = Evidence::load(&args.grades, &args.panel, args.baselines.as_deref())?;
+    let primary = &evidence.runs[0].records;
     let mut extra = Vec::new();
     for v in &args.variant {
         let Some((name, dir)) = v.split_once('=') else {
@@ -179,21 +207,53 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         Some(answers) => baseline_records(answers, &rubric)?,
         None => Vec::new(),
     };
-    let mut variants = vec![
-        Variant {
-            name: "expected score".into(),
-            records: &primary,
-            kind: VariantKind::ExpectedScore,
-        },
-        Variant {
-            name: "argmax label".into(),
-            records: &primary,
-            kind: VariantKind::Argmax,
-        },
+    let opts = VetOptions {
+        resamples: args.resamples,
+        seed: args.seed,
+        folds: args.panel.folds,
+        ..VetOptions::default()
+    };
+    let panel = evidence.panel()?;
+    let tables: Vec<(String, FeatureTable)> = if args.calibrate {
+        let mut t = vec![(format!("calibrated {PRIMARY}"), evidence.table(false))];
+        if panel.is_some() {
+            t.push(("calibrated panel".to_string(), evidence.table(true)));
+        }
+        t
+    } else {
+        Vec::new()
+    };
+    let mut calibration_notes: Vec<String> = evidence.overlap_note.iter().cloned().collect();
+    let mut calibrated = Vec::new();
+    for (name, table) in &tables {
+        let (recs, notes) = cross_fitted_records(table, Some(PRIMARY), &labels, &rubric, &opts)?;
+        calibration_notes.extend(notes.into_iter().map(|n| format!("{name} {n}")));
+        calibrated.push((name.clone(), recs));
+    }
+    let mut fixed: Vec<(String, &[GradeRecord], VariantKind)> = vec![
+        ("expected score".into(), primary, VariantKind::ExpectedScore),
+        ("argmax label".into(), primary, VariantKind::Argmax),
     ];
     for (name, recs) in &extra {
-        variants.push(Variant {
+        fixed.push((name.clone(), recs, VariantKind::ExpectedScore));
+    }
+    for r in evidence.runs.iter().skip(1) {
+        fixed.push((r.name.clone(), &r.records, VariantKind::ExpectedScore));
+    }
+    if let Some(p) = &panel {
+        fixed.push(("panel mean".into(), &p.records, VariantKind::ExpectedScore));
+    }
+    let mut variants: Vec<Variant> = fixed
+        .iter()
+        .map(|(name, records, kind)| Variant {
             name: name.clone(),
+            records,
+            kind: *kind,
+        })
+        .collect();
+    for (name, recs) in &calibrated {
+        variants.push(Variant {
+            name: format!("{name} (oos)"),
             records: recs,
             kind: VariantKind::ExpectedScore,
         });
@@ -205,11 +265,46 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
             kind: VariantKind::Baseline,
         });
     }
-    let opts = VetOptions {
-        resamples: args.resamples,
-        seed: args.seed,
-        ..VetOptions::default()
-    };
+    let mut candidates: Vec<Candidate> = fixed
+        .iter()
+        .map(|(name, records, kind)| Candidate {
+            name: name.clone(),
+            source: CandidateSource::Fixed(records, *kind),
+        })
+        .collect();
+    for (name, table) in &tables {
+        candidates.push(Candidate {
+            name: name.clone(),
+            source: CandidateSource::Calibrated {
+                table,
+                isotonic_source: Some(PRIMARY.into()),
+            },
+        });
+    }
+    let variant_choice = choose_variant(&candidates, &labels, &rubric, &opts)?;
+    if let (Some(path), Some((_, table))) = (&args.save_calibration, tables.last()) {
+        let file = MappingFile {
+            format: MAPPING_FORMAT,
+            rubric: rubric.name.clone(),
+            sources: evidence.fingerprints(tables.len() > 1),
+            overlap: evidence.overlap_names(),
+            mappings: fit_mappings(
+                table,
+                Some(PRIMARY),
+                &labels,
+                &rubric,
+                &opts,
+                &variant_choice,
+                &tables.last().expect("checked").0,
+            )?,
+        };
+        crate::store::write_atomic(path, serde_json::to_string_pretty(&file)?.as_bytes())?;
+        calibration_notes.push(format!(
+            "saved `{}` (fitted on all labelled items) to `{}`",
+            tables.last().map_or("", |t| t.0.as_str()),
+            path.display()
+        ));
+    }
     let pointwise = vet(&variants, &labels, &rubric, &opts)?;
     let pairwise = match &args.preferences {
         Some(p) if !args.pairs.is_empty() => {
@@ -231,6 +326,12 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         pointwise,
         pairwise,
         gate_failures: gate,
+        variant_choice,
+        panel: panel.map(|p| PanelSummary {
+            members: p.members,
+            incomplete: p.incomplete.into_iter().map(|i| i.key).collect(),
+        }),
+        calibration_notes,
     })
 }
 
@@ -244,6 +345,17 @@ pub fn run(args: VetArgs) -> anyhow::Result<ExitCode> {
         print_json(&out)?;
     } else {
         print!("{}", report_text(&out.pointwise, out.pairwise.as_ref()));
+        print!("{}", choice_text(&out.variant_choice));
+        if let Some(p) = &out.panel {
+            println!(
+                "panel: {} (mean of the members' score distributions, Verga et al. 2024); {} item(s) left out because a member did not grade them",
+                p.members.join(", "),
+                p.incomplete.len()
+            );
+        }
+        for n in &out.calibration_notes {
+            println!("calibration: {n}");
+        }
     }
     if !out.gate_failures.is_empty() {
         return Err(GateFailed(format!(

@@ -53,15 +53,16 @@ pub use agreement::{
 pub use calibration::{TemperatureSummary, VariantCalibration};
 pub use card::{TrustCard, Verdict};
 pub use ceiling::{HumanCeiling, RaterCeiling};
+#[cfg(test)]
 pub(crate) use items::nearest_position;
 pub use pairwise::{
     judged_pairs, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs, MethodAgreement,
     PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule, ranking_rule,
 };
-pub use text::report_text;
+pub use text::{choice_text, report_text};
 pub use variants::{
-    choose_variant, cross_fitted_records, Candidate, CandidateSource, CriterionChoice,
-    VariantChoice, VariantScore,
+    choose_variant, cross_fitted_records, fit_mappings, Candidate, CandidateSource,
+    CriterionChoice, VariantChoice, VariantScore,
 };
 
 use serde::Serialize;

@@ -87,14 +87,14 @@ fn criterion(s: &mut String, c: &CriterionReport) {
     let _ = writeln!(s, "\n  variants against the human consensus");
     let _ = writeln!(
         s,
-        "  {:<20} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
+        "  {:<24} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
         "variant", "n", "kappa_q", "95% CI", "spearman", "MAE"
     );
     for v in &c.variants {
         let kq = v.categorical.as_ref();
         let _ = writeln!(
             s,
-            "  {:<20} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
+            "  {:<24} {:>4}  {:>7} {:<18}  {:>8}  {:>6}",
             v.variant,
             v.n_items,
             num(kq.and_then(|k| k.kappa_quadratic)),
@@ -441,4 +441,59 @@ fn slot_prior(s: &mut String, c: &super::PairCriterionReport) {
         "    same winner in both orders: {:.2} raw, {:.2} calibrated; first-shown answer wins {:.2} raw, {:.2} calibrated",
         k.before.consistency, k.after.consistency, k.before.first_slot_rate, k.after.first_slot_rate
     );
+}
+
+/// The out-of-sample variant comparison and the chosen variant, per criterion.
+pub fn choice_text(c: &super::VariantChoice) -> String {
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        "\nvariants compared on the same labelled items (quadratic kappa with the human consensus, percentile interval)"
+    );
+    let _ = writeln!(
+        s,
+        "calibrated variants are fitted on human labels: each item's figure comes from a model fitted without its question (cross-fitting), so it is out of sample"
+    );
+    for k in &c.criteria {
+        let _ = writeln!(
+            s,
+            "\n`{}`: {} items, {} folds grouped by question",
+            k.criterion, k.items, k.folds
+        );
+        let _ = writeln!(
+            s,
+            "  {:<28} {:>8} {:>18} {:>9} {:>6}  how",
+            "variant", "kappa_q", "interval", "spearman", "MAE"
+        );
+        for v in &k.variants {
+            let _ = writeln!(
+                s,
+                "  {:<28} {:>8} {:>18} {:>9} {:>6.2}  {}",
+                v.variant,
+                num(v.kappa_quadratic),
+                ci(v.kappa_quadratic_ci.percentile.as_ref()),
+                num(v.spearman),
+                v.mae,
+                v.methods
+                    .as_deref()
+                    .map_or("as graded".to_string(), |m| format!("calibrated: {m}"))
+            );
+        }
+        let _ = writeln!(
+            s,
+            "  best on these items: {} (picked and scored on the same items, so its figure is optimistic)",
+            k.best.as_deref().map_or("none".to_string(), |b| format!("`{b}`"))
+        );
+        let _ = writeln!(
+            s,
+            "  choose, then use (nested cross-validation: picked on the other folds, scored on the held-out one): kappa {} {}; picked per fold: {}",
+            num(k.nested_kappa_quadratic),
+            ci(k.nested_kappa_ci.percentile.as_ref()),
+            k.chosen_per_fold.join(", ")
+        );
+    }
+    for k in &c.skipped {
+        let _ = writeln!(s, "\nnot compared: {k}");
+    }
+    s
 }

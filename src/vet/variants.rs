@@ -14,10 +14,11 @@ use std::collections::BTreeMap;
 use serde::Serialize;
 
 use super::agreement::{interval_pair, kappa, IntervalPair};
-use super::items::{group_labels, judge_table, nearest_position, CriterionLabels};
+use super::items::{group_labels, judge_table, nearest_position, CriterionLabels, LabelledItem};
 use super::{Variant, VariantKind, VetError, VetOptions};
 use crate::calibrate::{
-    calibrated_record, choose_and_fit, cross_fit, group_folds, FeatureTable, Method, Target,
+    calibrated_record, choose_and_fit, cross_fit, group_folds, FeatureTable, Method, SavedMapping,
+    Target,
 };
 use crate::data::LabelRow;
 use crate::judge::GradeRecord;
@@ -251,6 +252,13 @@ pub fn choose_variant(
         let idx: Vec<usize> = (0..lab.items.len())
             .filter(|&i| s.iter().all(|x| x.covers(i)))
             .collect();
+        if idx.is_empty() {
+            skipped.push(format!(
+                "`{}`: no labelled item is graded by every variant",
+                lab.key
+            ));
+            continue;
+        }
         let it = Items {
             y: idx.iter().map(|&i| lab.items[i].consensus).collect(),
             groups: idx
@@ -370,7 +378,8 @@ fn argmax(values: impl Iterator<Item = Option<f64>>) -> Option<usize> {
 }
 
 /// A calibrated variant's records on the labelled items, each from the fold model
-/// that did not see it, for the detailed vetting tables; plus the methods per criterion.
+/// that did not see it, for the detailed vetting tables; plus the methods per
+/// criterion. With `isotonic_source`, only criteria that source graded are calibrated.
 pub fn cross_fitted_records(
     table: &FeatureTable,
     isotonic_source: Option<&str>,
@@ -399,6 +408,9 @@ pub fn cross_fitted_records(
             .map(|k| lab.items[k.0].question_id.clone())
             .collect();
         let iso = isotonic_source.and_then(|s| table.column(&format!("{s}/{}/expected", lab.key)));
+        if isotonic_source.is_some() && iso.is_none() {
+            continue;
+        }
         let target = Target {
             values: lab.values.clone(),
         };
@@ -431,4 +443,59 @@ pub fn cross_fitted_records(
         }
     }
     Ok((records, notes))
+}
+
+/// The calibration fitted on every labelled item, one mapping per criterion, to save
+/// and apply to new runs; each carries the out-of-sample kappa that `choice` measured
+/// for the variant named `variant`.
+pub fn fit_mappings(
+    table: &FeatureTable,
+    isotonic_source: Option<&str>,
+    labels: &[LabelRow],
+    rubric: &Rubric,
+    opts: &VetOptions,
+    choice: &VariantChoice,
+    variant: &str,
+) -> Result<Vec<SavedMapping>, VetError> {
+    let mut out = Vec::new();
+    for lab in &group_labels(labels, rubric)? {
+        let keyed: Vec<(&[f64], &LabelledItem)> = lab
+            .items
+            .iter()
+            .filter_map(|it| {
+                table
+                    .rows
+                    .get(&(it.question_id.clone(), it.system.clone()))
+                    .map(|r| (r.as_slice(), it))
+            })
+            .collect();
+        let rows: Vec<&[f64]> = keyed.iter().map(|k| k.0).collect();
+        let y: Vec<usize> = keyed.iter().map(|k| k.1.consensus).collect();
+        let g: Vec<String> = keyed.iter().map(|k| k.1.question_id.clone()).collect();
+        let iso = isotonic_source.and_then(|s| table.column(&format!("{s}/{}/expected", lab.key)));
+        if isotonic_source.is_some() && iso.is_none() {
+            continue;
+        }
+        let target = Target {
+            values: lab.values.clone(),
+        };
+        let calibrator =
+            choose_and_fit(&Method::candidates(iso), &rows, &y, &g, &target, opts.seed)
+                .map_err(stat_err(&format!("the calibration of `{}`", lab.key)))?;
+        let oos = choice
+            .criteria
+            .iter()
+            .find(|c| c.criterion == lab.key)
+            .and_then(|c| c.variants.iter().find(|v| v.variant == variant))
+            .and_then(|v| v.kappa_quadratic);
+        out.push(SavedMapping {
+            criterion: lab.key.clone(),
+            scale: lab.labels.clone(),
+            features: table.names.clone(),
+            labelled_items: rows.len(),
+            out_of_sample_kappa: oos,
+            calibrator,
+        });
+    }
+    Ok(out)
 }
