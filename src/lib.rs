@@ -9,6 +9,7 @@ pub mod calibrate;
 pub mod cli;
 pub mod data;
 pub mod engine;
+pub mod guard;
 pub mod jobs;
 pub mod judge;
 pub mod overlap;

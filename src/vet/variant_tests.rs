@@ -28,7 +28,7 @@ fn setup() -> (Vec<LabelRow>, Vec<GradeRecord>, FeatureTable) {
             rng.random_range(0..5)
         };
         probs[seen] = 0.8;
-        good.push(record(&qid, "c", Scale::OneToFive, &probs));
+        good.push(record(&qid, "c", Scale::points(1, 5), &probs));
         let noise: Vec<f64> = (0..6).map(|_| rng.random::<f64>()).collect();
         rows.insert((qid, "sys".to_string()), noise);
     }
@@ -50,7 +50,7 @@ fn opts() -> VetOptions {
 #[test]
 fn real_signal_is_chosen_over_calibrated_noise_and_noise_scores_near_zero() {
     let (labels, good, table) = setup();
-    let r = rubric(&[("c", Scale::OneToFive)]);
+    let r = rubric(&[("c", Scale::points(1, 5))]);
     let cands = [
         Candidate {
             name: "judge".into(),
@@ -82,7 +82,7 @@ fn real_signal_is_chosen_over_calibrated_noise_and_noise_scores_near_zero() {
 #[test]
 fn cross_fitted_records_cover_the_labelled_items_once() {
     let (labels, _, table) = setup();
-    let r = rubric(&[("c", Scale::OneToFive)]);
+    let r = rubric(&[("c", Scale::points(1, 5))]);
     let (recs, notes) = cross_fitted_records(&table, None, &labels, &r, &opts()).unwrap();
     assert_eq!(recs.len(), 30);
     assert_eq!(notes.len(), 1);
