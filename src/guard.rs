@@ -190,6 +190,39 @@ pub fn screen(answer: &str) -> Screening {
     Screening { flags, cleaned }
 }
 
+/// What grading does with an answer that addresses the grader.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, clap::ValueEnum)]
+pub enum ScreenMode {
+    /// Grade it as written and list it in the summary
+    Flag,
+    /// Grade it with the flagged sentences removed
+    Strip,
+    /// Do not grade it
+    Skip,
+}
+
+impl ScreenMode {
+    /// What happened to a flagged answer, in plain words.
+    pub fn action(self) -> &'static str {
+        match self {
+            ScreenMode::Flag => "graded as written",
+            ScreenMode::Strip => "graded with the flagged sentences removed",
+            ScreenMode::Skip => "not graded",
+        }
+    }
+}
+
+/// An answer the screen flagged, as listed in reports.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FlaggedAnswer {
+    /// `question_id/system`.
+    pub item: String,
+    /// Line of the answers file.
+    pub line: usize,
+    /// The flagged sentences and why.
+    pub flags: Vec<Flag>,
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

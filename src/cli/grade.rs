@@ -13,6 +13,7 @@ use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, Mod
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, AnswerRecord, OtherCriteria};
+use crate::guard::{screen, FlaggedAnswer, ScreenMode};
 use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::anchors::AnchorPool;
 use crate::judge::grade::{grade_item, summarize, GradeOptions, SummaryRow};
@@ -52,6 +53,9 @@ pub struct GradeArgs {
     /// Anchors shown per criterion
     #[arg(long, value_name = "N", default_value_t = 3)]
     pub anchor_count: usize,
+    /// What to do with answers containing text aimed at the grader (flagged before grading)
+    #[arg(long, value_enum, value_name = "MODE", default_value = "flag")]
+    pub screen: ScreenMode,
     /// Flag records whose captured probability mass is below this
     #[arg(long, value_name = "P", default_value_t = 0.5, value_parser = super::values::probability)]
     pub low_mass: f64,
@@ -99,6 +103,10 @@ pub struct GradeReport {
     pub low_mass: Vec<String>,
     /// Items that could not be graded, with the reason.
     pub failed: Vec<FailedItem>,
+    /// Answers that address the grader, and what `--screen` did with them.
+    pub flagged: Vec<FlaggedAnswer>,
+    /// The `--screen` mode.
+    pub screen: ScreenMode,
 }
 
 /// An item that could not be graded.
@@ -112,6 +120,8 @@ pub struct FailedItem {
 
 /// Everything a grading run needs, loaded and checked.
 pub struct Prepared {
+    /// Answers the screen flagged as addressing the grader (before `--screen` acted).
+    pub flagged: Vec<FlaggedAnswer>,
     /// Answers in file order (after `--max-answers`).
     pub answers: Vec<AnswerRecord>,
     /// Rubric after `--criteria`.
@@ -131,6 +141,7 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
     if let Some(n) = args.limit {
         answers.truncate(n);
     }
+    let flagged = screen_answers(&mut answers, args.screen);
     let mut rubric = args.rubric.load()?;
     if !args.criteria.is_empty() {
         rubric.select(&args.criteria)?;
@@ -154,6 +165,7 @@ pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
         None => None,
     };
     let p = Prepared {
+        flagged,
         answers,
         rubric,
         forms,
@@ -253,6 +265,11 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, model: &ModelId) -> anyhow::Resu
         format!("prefix_reuse={}", !args.no_prefix_reuse),
         format!("generate_steps={}", args.generate_steps),
     ];
+    // Only a screen that changes what is graded enters the manifest, so runs made
+    // before the option existed still resume.
+    if args.screen != ScreenMode::Flag {
+        options.push(format!("screen={:?}", args.screen).to_lowercase());
+    }
     let mut inputs = std::collections::BTreeMap::new();
     inputs.insert("answers".to_string(), shown_path(&args.answers));
     inputs.insert("rubric".to_string(), shown_path(&args.rubric.named()));
@@ -416,6 +433,8 @@ pub fn finish_run(
             .map(GradeRecord::key)
             .collect(),
         summary,
+        flagged: p.flagged.clone(),
+        screen: args.screen,
         failed: outcome
             .failed
             .into_iter()
@@ -465,6 +484,7 @@ fn with_generated_steps(
         }
     }
     Ok(Prepared {
+        flagged: p.flagged.clone(),
         answers: p.answers.clone(),
         rubric,
         forms: match &p.templates_dir {
@@ -557,6 +577,29 @@ pub fn summary_text(r: &GradeReport) -> String {
             row.low_mass
         ));
     }
+    if !r.flagged.is_empty() {
+        s.push_str(&format!(
+            "\ncaution: {} answer(s) contain text aimed at the grader ({}):\n",
+            r.flagged.len(),
+            r.screen.action()
+        ));
+        for f in &r.flagged {
+            let why: Vec<String> = f
+                .flags
+                .iter()
+                .map(|g| format!("{}: \"{}\"", g.rule.describe(), g.sentence))
+                .collect();
+            s.push_str(&format!(
+                "  {} (line {}): {}\n",
+                f.item,
+                f.line,
+                why.join("; ")
+            ));
+        }
+        if r.screen == ScreenMode::Flag {
+            s.push_str("  fix: grade them with `--screen strip` (flagged sentences removed) or `--screen skip`\n");
+        }
+    }
     if !r.low_mass.is_empty() {
         s.push_str(&format!(
             "\ncaution: {} record(s) have low captured mass: the judge did not answer in the form's labels there, so their scores are unreliable (see `low_mass` in {})\n",
@@ -565,4 +608,30 @@ pub fn summary_text(r: &GradeReport) -> String {
         ));
     }
     s
+}
+
+/// Screens every answer for text aimed at the grader; with `strip` the flagged
+/// sentences are removed, with `skip` the answer is dropped from the run.
+pub fn screen_answers(answers: &mut Vec<AnswerRecord>, mode: ScreenMode) -> Vec<FlaggedAnswer> {
+    let mut flagged = Vec::new();
+    answers.retain_mut(|a| {
+        let s = screen(&a.answer);
+        if s.flags.is_empty() {
+            return true;
+        }
+        flagged.push(FlaggedAnswer {
+            item: format!("{}/{}", a.question_id, a.system),
+            line: a.line,
+            flags: s.flags,
+        });
+        match mode {
+            ScreenMode::Flag => true,
+            ScreenMode::Strip => {
+                a.answer = s.cleaned;
+                true
+            }
+            ScreenMode::Skip => false,
+        }
+    });
+    flagged
 }

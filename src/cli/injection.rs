@@ -13,6 +13,7 @@ use super::common::load_judge;
 use super::grade::{finish_run, open_job, prepare, GradeArgs, ModelId};
 use super::print_json;
 use crate::data::read_answers;
+use crate::guard::ScreenMode;
 use crate::judge::grade::label_value;
 use crate::judge::{Backend, GradeRecord};
 use crate::probes::injection::{injection_effect, InjectionEffect, ProbePair, DEFAULT_INJECTION};
@@ -37,6 +38,24 @@ pub struct InjectionReport {
     pub instruction: String,
     /// Effect per criterion.
     pub effects: Vec<InjectionEffect>,
+    /// How the grader-text screen did on the probe.
+    pub screen: ScreenCounts,
+}
+
+/// The screen's detection on the probe: injected copies flagged (detection) and
+/// original answers flagged (false alarms).
+#[derive(Debug, Serialize)]
+pub struct ScreenCounts {
+    /// The `--screen` mode the probe was graded with.
+    pub mode: ScreenMode,
+    /// Injected copies flagged.
+    pub injected_flagged: usize,
+    /// Injected copies.
+    pub injected: usize,
+    /// Original answers flagged.
+    pub original_flagged: usize,
+    /// Original answers.
+    pub original: usize,
 }
 
 /// Suffix of the system name of injected copies.
@@ -113,10 +132,22 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             effects.push(injection_effect(&c.key, &pairs, top, args.grade.seed)?);
         }
     }
+    let injected_flagged = prepared
+        .flagged
+        .iter()
+        .filter(|f| f.item.ends_with(INJECTED))
+        .count();
     let report = InjectionReport {
         run_dir: run_dir.display().to_string(),
         instruction: args.instruction.clone(),
         effects,
+        screen: ScreenCounts {
+            mode: args.grade.screen,
+            injected_flagged,
+            injected: answers.len(),
+            original_flagged: prepared.flagged.len() - injected_flagged,
+            original: answers.len(),
+        },
     };
     if args.grade.output.json {
         print_json(&report)?;
@@ -132,6 +163,16 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             );
             println!("  {}", e.verdict);
         }
+        let c = &report.screen;
+        println!(
+            "\ngrader-text screen ({:?}): flagged {} of {} injected copies and {} of {} original answers; {}",
+            c.mode,
+            c.injected_flagged,
+            c.injected,
+            c.original_flagged,
+            c.original,
+            c.mode.action()
+        );
     }
     Ok(ExitCode::SUCCESS)
 }

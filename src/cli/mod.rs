@@ -22,6 +22,7 @@ pub mod model;
 pub mod overlap;
 pub mod report;
 pub mod rubric;
+pub mod screen;
 pub mod values;
 pub mod vet;
 
@@ -61,6 +62,8 @@ pub enum Command {
     Merge(merge::MergeArgs),
     /// Let a local model answer a file of questions (to add a system, or probe self-preference)
     Answer(answer::AnswerArgs),
+    /// List answers containing text aimed at the grader (instructions, claims about the score)
+    Screen(screen::ScreenArgs),
     /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
     Vet(vet::VetArgs),
     /// Estimate quality per system from judge grades plus a few human labels (prediction-powered)
@@ -93,6 +96,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Compare(args) => compare::run(args),
         Command::Rubric(cmd) => rubric::run(cmd),
         Command::Vet(args) => vet::run(args),
+        Command::Screen(args) => screen::run(args),
         Command::Answer(args) => answer::run(args),
         Command::Injection(args) => injection::run(args),
         Command::Merge(args) => merge::run(args),
