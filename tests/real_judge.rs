@@ -80,6 +80,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         anchors: None,
         anchor_count: 3,
         low_mass: 0.5,
+        screen: assize::guard::ScreenMode::Flag,
         seed: 7,
         run_dir: Some(run_dir),
         shard: None,

@@ -165,8 +165,8 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
         }
         let c = &report.screen;
         println!(
-            "\ngrader-text screen ({:?}): flagged {} of {} injected copies and {} of {} original answers; {}",
-            c.mode,
+            "\ngrader-text screen ({}): flagged {} of {} injected copies and {} of {} original answers; {}",
+            format!("{:?}", c.mode).to_lowercase(),
             c.injected_flagged,
             c.injected,
             c.original_flagged,

@@ -70,6 +70,11 @@ pub struct ReportArgs {
     /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
+    #[command(flatten)]
+    pub panel: super::evidence::PanelArgs,
+    /// Add label-calibrated variants and the out-of-sample variant comparison (needs `--labels`)
+    #[arg(long, requires = "labels")]
+    pub calibrate: bool,
     /// Bootstrap resamples per interval
     #[arg(long, value_name = "N", default_value_t = 2000, value_parser = super::values::at_least_one)]
     pub resamples: usize,
@@ -232,7 +237,8 @@ fn write(path: &Path, text: &str, what: &str) -> anyhow::Result<()> {
 
 /// Run `assize report`.
 pub fn run(args: ReportArgs) -> anyhow::Result<ExitCode> {
-    let r = build_report(&args)?;
+    let mut r = build_report(&args)?;
+    r.variants = variant_section(&args)?;
     if let Some(p) = &args.html {
         write(p, &report::html::render(&r)?, "HTML")?;
     }
@@ -273,4 +279,40 @@ mod tests {
         ]);
         assert_eq!(n, vec!["run (1)", "run (2)", "other"]);
     }
+}
+
+/// The out-of-sample variant comparison of `vet`, when `--panel` or `--calibrate` asks
+/// for it and labels are given; the first grading run is the primary judge.
+fn variant_section(args: &ReportArgs) -> anyhow::Result<Option<report::VariantSection>> {
+    let Some(labels) = &args.labels else {
+        return Ok(None);
+    };
+    if !args.calibrate && args.panel.panel.is_empty() {
+        return Ok(None);
+    }
+    let vet_args = super::vet::VetArgs {
+        grades: args.grades[0].clone(),
+        labels: labels.clone(),
+        rubric: args.rubric.clone(),
+        variant: Vec::new(),
+        baselines: args.answers.clone(),
+        pairs: None,
+        preferences: None,
+        min_kappa: None,
+        resamples: args.resamples,
+        seed: args.seed,
+        panel: args.panel.clone(),
+        calibrate: args.calibrate,
+        save_calibration: None,
+        output: super::OutputArgs {
+            json: true,
+            quiet: true,
+        },
+    };
+    let out = super::vet::vet_run(&vet_args)?;
+    Ok(Some(report::VariantSection {
+        panel_members: out.panel.map(|p| p.members).unwrap_or_default(),
+        choice: out.variant_choice,
+        notes: out.calibration_notes,
+    }))
 }

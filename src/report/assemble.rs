@@ -93,6 +93,7 @@ pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
         deltas,
         pairwise,
         flagged,
+        variants: None,
     };
     report.cautions = super::cautions::collect(&report, inp.labels.is_some());
     Ok(report)

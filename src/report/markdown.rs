@@ -348,6 +348,44 @@ fn flagged(s: &mut String, r: &Report) {
 }
 
 /// The report as Markdown.
+fn variants(s: &mut String, r: &Report) {
+    let Some(v) = &r.variants else { return };
+    let _ = writeln!(s, "\n### Variants compared out of sample\n\nQuadratic kappa with the human consensus on the same labelled items, 95% percentile interval; calibrated variants are cross-fitted (each item scored by a model fitted without its question).{}\n", if v.panel_members.is_empty() { String::new() } else { format!(" Panel: {}.", v.panel_members.join(", ")) });
+    for c in &v.choice.criteria {
+        let _ = writeln!(s, "**{}** ({} items)\n\n| variant | kappa_q [95% CI] | Spearman | MAE | how |\n|---|---|---|---|---|", c.criterion, c.items);
+        for x in &c.variants {
+            let ci = x
+                .kappa_quadratic_ci
+                .percentile
+                .as_ref()
+                .map_or(String::new(), |p| {
+                    format!(" [{}, {}]", num(p.lower, 2), num(p.upper, 2))
+                });
+            let how = x
+                .methods
+                .as_deref()
+                .map_or("as graded".to_string(), |m| format!("calibrated: {m}"));
+            let _ = writeln!(
+                s,
+                "| {} | {}{ci} | {} | {} | {} |",
+                cell(&x.variant),
+                opt(x.kappa_quadratic, 2),
+                opt(x.spearman, 2),
+                num(x.mae, 2),
+                cell(&how)
+            );
+        }
+        let nested = c
+            .nested_kappa_ci
+            .percentile
+            .as_ref()
+            .map_or(String::new(), |p| {
+                format!(" [{}, {}]", num(p.lower, 2), num(p.upper, 2))
+            });
+        let _ = writeln!(s, "\nBest on these items: `{}` (optimistic); picked on other folds, used on the held-out one: kappa {}{nested}.\n", c.best.as_deref().unwrap_or("none"), opt(c.nested_kappa_quadratic, 2));
+    }
+}
+
 pub fn render(r: &Report) -> String {
     let mut s = String::new();
     let _ = writeln!(s, "## assize report: rubric `{}`\n", r.rubric);
@@ -388,6 +426,7 @@ pub fn render(r: &Report) -> String {
     trust_table(&mut s, r);
     pairwise(&mut s, r);
     self_preference(&mut s, r);
+    variants(&mut s, r);
     flagged(&mut s, r);
     let _ = writeln!(
         s,

@@ -147,6 +147,20 @@ pub struct Report {
     pub pairwise: Option<PairwiseSection>,
     /// Items with low captured mass or a judge-human dispute, over all runs.
     pub flagged: Vec<FlaggedItem>,
+    /// Judge variants (members, panel, calibrated) compared out of sample, with the
+    /// chosen one per criterion; present when the report was asked for panels or calibration.
+    pub variants: Option<VariantSection>,
+}
+
+/// The out-of-sample variant comparison as shown in the report.
+#[derive(Debug, Clone, Serialize)]
+pub struct VariantSection {
+    /// Panel members (`judge` is the first grading run), empty without a panel.
+    pub panel_members: Vec<String>,
+    /// Every variant per criterion, the best one, and the nested cross-validation figure.
+    pub choice: crate::vet::VariantChoice,
+    /// Methods chosen for calibrated variants, and what was left out.
+    pub notes: Vec<String>,
 }
 
 /// A rubric criterion as shown.

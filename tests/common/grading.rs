@@ -33,6 +33,7 @@ pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
         anchors: None,
         anchor_count: 3,
         low_mass: 0.5,
+        screen: assize::guard::ScreenMode::Flag,
         seed: 7,
         run_dir: Some(run_dir.to_path_buf()),
         shard: None,
