@@ -517,3 +517,63 @@ fn vet_gate_fails_with_exit_code_one() {
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     assert_eq!(v["gate_failures"], serde_json::json!([]));
 }
+
+/// A calibration saved by `vet` applies to the run it was fitted on and is refused,
+/// with the difference named, for a run made with another judge model.
+#[test]
+fn saved_calibration_applies_to_its_setup_and_refuses_another_judge() {
+    let fx = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/report");
+    let tmp = tempfile::tempdir().expect("tmp");
+    let cal = tmp.path().join("cal.json");
+    let before = fx.join("before");
+    let labels = fx.join("labels.csv");
+    let o = run(&[
+        "vet",
+        "--grades",
+        before.to_str().unwrap(),
+        "--labels",
+        labels.to_str().unwrap(),
+        "--calibrate",
+        "--folds",
+        "2",
+        "--resamples",
+        "50",
+        "--save-calibration",
+        cal.to_str().unwrap(),
+        "--json",
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let out = tmp.path().join("calibrated");
+    let o = run(&[
+        "calibrate",
+        "--mapping",
+        cal.to_str().unwrap(),
+        "--grades",
+        before.to_str().unwrap(),
+        "--run-dir",
+        out.to_str().unwrap(),
+    ]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert!(out.join("grades.jsonl").exists());
+    let other = tmp.path().join("other");
+    std::fs::create_dir_all(&other).unwrap();
+    std::fs::copy(before.join("grades.jsonl"), other.join("grades.jsonl")).unwrap();
+    let m = std::fs::read_to_string(before.join("manifest.json")).unwrap();
+    let m = m.replace(&"0".repeat(64), &"1".repeat(64));
+    std::fs::write(other.join("manifest.json"), m).unwrap();
+    let o = run(&[
+        "calibrate",
+        "--mapping",
+        cal.to_str().unwrap(),
+        "--grades",
+        other.to_str().unwrap(),
+        "--run-dir",
+        tmp.path().join("refused").to_str().unwrap(),
+    ]);
+    assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("model sha256 `111111111111`"),
+        "{}",
+        stderr(&o)
+    );
+}

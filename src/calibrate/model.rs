@@ -192,8 +192,8 @@ pub(crate) fn squared_error(p: &Prediction, y: usize, target: &Target) -> f64 {
 }
 
 /// Picks the candidate with the lowest cross-validated squared error on these rows
-/// (folds by `groups`, seeded), then fits it on all of them. With one candidate, no
-/// inner cross-validation is run.
+/// (up to 3 folds by `groups`, seeded), then fits it on all of them. With one
+/// candidate or one group, the first candidate is fitted without cross-validation.
 pub fn choose_and_fit(
     candidates: &[Method],
     rows: &[&[f64]],
@@ -202,10 +202,14 @@ pub fn choose_and_fit(
     target: &Target,
     seed: u64,
 ) -> Result<Calibrator, StatsError> {
-    let best = if candidates.len() == 1 {
+    let mut distinct: Vec<&String> = groups.iter().collect();
+    distinct.sort();
+    distinct.dedup();
+    // With fewer than two questions there is nothing to cross-validate on.
+    let best = if candidates.len() == 1 || distinct.len() < 2 {
         candidates[0]
     } else {
-        let folds = group_folds(groups, 3, seed)?;
+        let folds = group_folds(groups, distinct.len().min(3), seed)?;
         let mut best: Option<(f64, Method)> = None;
         for m in candidates {
             if let Some(err) = cv_error(*m, rows, y, &folds, target) {

@@ -54,7 +54,7 @@ pub struct EstimateArgs {
     #[arg(long)]
     pub calibrate: bool,
     /// Answers file: adds reference-overlap scores to the calibration's evidence
-    #[arg(long, value_name = "FILE", requires = "calibrate")]
+    #[arg(long = "answers", short = 'a', value_name = "FILE", requires = "calibrate")]
     pub baselines: Option<PathBuf>,
     #[command(flatten)]
     pub panel: PanelArgs,

@@ -9,6 +9,7 @@ use std::process::ExitCode;
 use clap::{Parser, Subcommand};
 
 pub mod answer;
+pub mod calibrate;
 pub mod common;
 pub mod compare;
 pub mod csv_out;
@@ -66,6 +67,8 @@ pub enum Command {
     Screen(screen::ScreenArgs),
     /// Check a judge against human labels: agreement, human ceiling, calibration, trust cards
     Vet(vet::VetArgs),
+    /// Apply a saved calibration (`vet --save-calibration`) to new grading runs of the same setup
+    Calibrate(calibrate::CalibrateArgs),
     /// Estimate quality per system from judge grades plus a few human labels (prediction-powered)
     Estimate(estimate::EstimateArgs),
     /// Reference-based text metrics (ROUGE, BLEU, chrF, edit distance, token F1) per answer and system
@@ -97,6 +100,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Rubric(cmd) => rubric::run(cmd),
         Command::Vet(args) => vet::run(args),
         Command::Screen(args) => screen::run(args),
+        Command::Calibrate(args) => calibrate::run(args),
         Command::Answer(args) => answer::run(args),
         Command::Injection(args) => injection::run(args),
         Command::Merge(args) => merge::run(args),
