@@ -301,6 +301,7 @@ fn variant_section(args: &ReportArgs) -> anyhow::Result<Option<report::VariantSe
         min_kappa: None,
         resamples: args.resamples,
         seed: args.seed,
+        csv: None,
         panel: args.panel.clone(),
         calibrate: args.calibrate,
         save_calibration: None,
