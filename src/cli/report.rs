@@ -296,7 +296,7 @@ fn variant_section(args: &ReportArgs) -> anyhow::Result<Option<report::VariantSe
         rubric: args.rubric.clone(),
         variant: Vec::new(),
         baselines: args.answers.clone(),
-        pairs: None,
+        pairs: Vec::new(),
         preferences: None,
         min_kappa: None,
         resamples: args.resamples,
