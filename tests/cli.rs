@@ -550,7 +550,7 @@ fn saved_calibration_applies_to_its_setup_and_refuses_another_judge() {
         cal.to_str().unwrap(),
         "--grades",
         before.to_str().unwrap(),
-        "--run-dir",
+        "--out-dir",
         out.to_str().unwrap(),
     ]);
     assert!(o.status.success(), "{}", stderr(&o));
@@ -567,7 +567,7 @@ fn saved_calibration_applies_to_its_setup_and_refuses_another_judge() {
         cal.to_str().unwrap(),
         "--grades",
         other.to_str().unwrap(),
-        "--run-dir",
+        "--out-dir",
         tmp.path().join("refused").to_str().unwrap(),
     ]);
     assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));

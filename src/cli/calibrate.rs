@@ -14,7 +14,6 @@ use super::errors::usage;
 use super::evidence::{Evidence, PanelArgs};
 use super::{print_json, OutputArgs};
 use crate::calibrate::MappingFile;
-use crate::rubric::load_rubric;
 use crate::store::{write_atomic, Manifest, MANIFEST};
 
 /// Arguments of `assize calibrate`.
@@ -23,20 +22,19 @@ pub struct CalibrateArgs {
     /// Calibration file written by `assize vet --save-calibration`
     #[arg(long, value_name = "FILE")]
     pub mapping: PathBuf,
-    /// Grading run of the primary judge (the one `vet --grades` had)
+    /// Grading run folder (holds `grades.jsonl`)
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
-    /// Answers file, when the calibration used reference-overlap features
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long = "answers", short = 'a', value_name = "FILE")]
     pub baselines: Option<PathBuf>,
-    /// Rubric the grades were made with
-    #[arg(long, short = 'r', value_name = "RUBRIC", default_value = "support")]
-    pub rubric: PathBuf,
+    #[command(flatten)]
+    pub rubric: super::common::RubricArg,
     #[command(flatten)]
     pub panel: PanelArgs,
     /// Folder to write the calibrated grades into (`grades.jsonl` and `manifest.json`)
     #[arg(long, value_name = "DIR")]
-    pub run_dir: PathBuf,
+    pub out_dir: PathBuf,
     #[command(flatten)]
     pub output: OutputArgs,
 }
@@ -66,7 +64,7 @@ pub fn run(args: CalibrateArgs) -> anyhow::Result<ExitCode> {
             "write one with `assize vet --calibrate --save-calibration FILE`",
         )
     })?;
-    let rubric = load_rubric(&args.rubric)?;
+    let rubric = args.rubric.load_for_run(&args.grades)?;
     let evidence = Evidence::load(&args.grades, &args.panel, args.baselines.as_deref())?;
     let panel = evidence.runs.len() > 1;
     let differences = mapping.differences(
@@ -86,14 +84,14 @@ pub fn run(args: CalibrateArgs) -> anyhow::Result<ExitCode> {
     }
     let table = evidence.table(panel);
     let records = mapping.apply(&table)?;
-    std::fs::create_dir_all(&args.run_dir)?;
+    std::fs::create_dir_all(&args.out_dir)?;
     let mut lines = String::new();
     for r in &records {
         lines.push_str(&serde_json::to_string(r)?);
         lines.push('\n');
     }
     write_atomic(
-        &args.run_dir.join(super::grade::GRADES_FILE),
+        &args.out_dir.join(super::grade::GRADES_FILE),
         lines.as_bytes(),
     )?;
     let manifest_path = args.grades.join(MANIFEST);
@@ -103,11 +101,11 @@ pub fn run(args: CalibrateArgs) -> anyhow::Result<ExitCode> {
         .options
         .push(format!("calibration={}", args.mapping.display()));
     write_atomic(
-        &args.run_dir.join(MANIFEST),
+        &args.out_dir.join(MANIFEST),
         serde_json::to_string_pretty(&manifest)?.as_bytes(),
     )?;
     let report = CalibrateReport {
-        run_dir: args.run_dir.display().to_string(),
+        run_dir: args.out_dir.display().to_string(),
         records: records.len(),
         criteria: mapping
             .mappings

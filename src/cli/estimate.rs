@@ -48,12 +48,11 @@ pub struct EstimateArgs {
     /// Seed of every random draw
     #[arg(long, value_name = "N", default_value_t = 7)]
     pub seed: u64,
-    /// Also estimate with label-calibrated predictions, cross-fitted on the labelled
-    /// items (cross-prediction-powered inference, Zrnic & Candes 2024): the panel's
-    /// evidence with `--panel`, else the judge's
+    /// Add label-calibrated grades, cross-fitted on the labelled items so every figure
+    /// shown for them is out of sample (needs `--labels`)
     #[arg(long)]
     pub calibrate: bool,
-    /// Answers file: adds reference-overlap scores to the calibration's evidence
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long = "answers", short = 'a', value_name = "FILE", requires = "calibrate")]
     pub baselines: Option<PathBuf>,
     #[command(flatten)]

@@ -72,7 +72,8 @@ pub struct ReportArgs {
     pub seed: u64,
     #[command(flatten)]
     pub panel: super::evidence::PanelArgs,
-    /// Add label-calibrated variants and the out-of-sample variant comparison (needs `--labels`)
+    /// Add label-calibrated grades, cross-fitted on the labelled items so every figure
+    /// shown for them is out of sample (needs `--labels`)
     #[arg(long, requires = "labels")]
     pub calibrate: bool,
     /// Bootstrap resamples per interval

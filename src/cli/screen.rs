@@ -16,7 +16,7 @@ use crate::guard::{FlaggedAnswer, ScreenMode};
 /// Arguments of `assize screen`.
 #[derive(Debug, Clone, Args)]
 pub struct ScreenArgs {
-    /// Answers to screen (JSONL or CSV, as for `grade`)
+    /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
     #[arg(long, short = 'a', value_name = "FILE")]
     pub answers: PathBuf,
     #[command(flatten)]

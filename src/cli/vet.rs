@@ -69,8 +69,8 @@ pub struct VetArgs {
     pub csv: Option<PathBuf>,
     #[command(flatten)]
     pub panel: PanelArgs,
-    /// Add label-calibrated variants (the judge alone, and the panel), cross-fitted so
-    /// every figure shown for them is out of sample
+    /// Add label-calibrated grades, cross-fitted on the labelled items so every figure
+    /// shown for them is out of sample (needs `--labels`)
     #[arg(long)]
     pub calibrate: bool,
     /// Fit the calibration on all labelled items and save it here, with what it was fitted on
