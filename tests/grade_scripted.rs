@@ -3,11 +3,11 @@
 //! resume after a crash and the run manifest. The real-model tests are in
 //! `tests/real_judge.rs`; these do not replace them.
 
+mod common;
+
 use std::path::PathBuf;
 
-use assize::cli::common::{ModelArgs, RubricArg};
 use assize::cli::grade::{grade_run, prepare, GradeArgs};
-use assize::cli::OutputArgs;
 use assize::judge::scripted::ScriptedJudge;
 use assize::judge::GradeRecord;
 use assize::store::read_records;
@@ -16,36 +16,11 @@ fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
+/// The shared grading arguments on the demo answers, first six answers only.
 fn args(run_dir: PathBuf) -> GradeArgs {
     GradeArgs {
-        answers: root().join("demo-data/answers.jsonl"),
-        rubric: RubricArg {
-            path: Some(root().join("judge-templates/rubrics/quick.toml")),
-        },
-        criteria: vec![],
-        model: ModelArgs {
-            model: "scripted".into(),
-            threads: 1,
-            context: None,
-        },
-        reasoning: false,
-        generate_steps: false,
-        reasoning_tokens: 32,
-        anchors: None,
-        anchor_count: 3,
-        low_mass: 0.5,
-        screen: assize::guard::ScreenMode::Flag,
-        seed: 7,
-        run_dir: Some(run_dir),
-        shard: None,
         limit: Some(6),
-        no_prefix_reuse: false,
-        templates: None,
-        csv: None,
-        output: OutputArgs {
-            json: true,
-            quiet: true,
-        },
+        ..common::grading::grade_args(&root().join("demo-data/answers.jsonl"), &run_dir)
     }
 }
 
