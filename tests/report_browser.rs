@@ -1,8 +1,8 @@
 //! Real-browser test of the HTML report: headless Chromium (Debian's `chromium`
 //! package, `/usr/bin/chromium`, or `$ASSIZE_CHROMIUM`) opens the report from disk,
 //! dumps the DOM and takes a screenshot. The test checks that every chart is drawn
-//! (SVG elements with their ids and classes), that the flagged items are browsable
-//! `<details>` elements, and that the page requested nothing from the network.
+//! (SVG elements with their ids and classes), that the flagged items and every graded
+//! answer are browsable `<details>` elements, and that the page requested nothing from the network.
 //!
 //! Chromium itself phones home at start-up (update checks, clock, account probes)
 //! even with background networking disabled; those requests carry no page initiator
@@ -216,6 +216,15 @@ fn html_report_draws_its_charts_in_a_browser_without_touching_the_network() {
         3,
         "one <details> per flagged item"
     );
+    // The per-item view: one <details> per graded answer (12), flagged or not, each
+    // with its table of grades (3 criteria x 2 runs = 6 rows).
+    let items: Vec<&str> = dom.split("<details class=\"item").skip(1).collect();
+    assert_eq!(items.len(), 12, "one <details> per graded answer");
+    for item in &items {
+        let table = &item[..item.find("</table>").expect("a grade table")];
+        assert_eq!(table.matches("<tr>").count(), 1 + 6, "{table}");
+    }
+    assert!(dom.contains("id=\"only-flagged\""), "the flag filter is there");
 
     let shot = work.path().join("report.png");
     browse(

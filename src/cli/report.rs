@@ -17,7 +17,7 @@ use super::OutputArgs;
 use super::errors::usage;
 use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences};
 use crate::judge::{GradeRecord, PairRecord};
-use crate::report::{self, CompareInput, Inputs, Report, RunInput};
+use crate::report::{self, CompareInput, GradeSet, Inputs, Report, RunInput};
 use crate::store::{read_records, Manifest, MANIFEST};
 
 /// Arguments of `assize report`.
@@ -162,8 +162,9 @@ fn now() -> String {
     rfc3339(secs)
 }
 
-/// Load every input and assemble the report.
-pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
+/// Load every input and assemble the report; `extra` are the grade sets shown beside
+/// the runs in the per-item view.
+pub fn build_report(args: &ReportArgs, extra: &[GradeSet]) -> anyhow::Result<Report> {
     let rubric = args.rubric.load_for_run(&args.grades[0])?;
     let names = run_names(&args.grades);
     let mut runs = Vec::new();
@@ -217,6 +218,7 @@ pub fn build_report(args: &ReportArgs) -> anyhow::Result<Report> {
         judge_name: args.judge_name.as_deref(),
         seed: args.seed,
         resamples: args.resamples,
+        extra,
     };
     let mut r = report::build(&inputs).map_err(|e| match e {
         report::ReportError::UnknownCriterion { .. } => {
@@ -238,8 +240,12 @@ fn write(path: &Path, text: &str, what: &str) -> anyhow::Result<()> {
 
 /// Run `assize report`.
 pub fn run(args: ReportArgs) -> anyhow::Result<ExitCode> {
-    let mut r = build_report(&args)?;
-    r.variants = variant_section(&args)?;
+    let (variants, extra) = match variant_section(&args)? {
+        Some((section, sets)) => (Some(section), sets),
+        None => (None, Vec::new()),
+    };
+    let mut r = build_report(&args, &extra)?;
+    r.variants = variants;
     if let Some(p) = &args.html {
         write(p, &report::html::render(&r)?, "HTML")?;
     }
@@ -283,8 +289,11 @@ mod tests {
 }
 
 /// The out-of-sample variant comparison of `vet`, when `--panel` or `--calibrate` asks
-/// for it and labels are given; the first grading run is the primary judge.
-fn variant_section(args: &ReportArgs) -> anyhow::Result<Option<report::VariantSection>> {
+/// for it and labels are given; the first grading run is the primary judge. Also
+/// returns the panel's and the calibrated grades for the per-item view.
+fn variant_section(
+    args: &ReportArgs,
+) -> anyhow::Result<Option<(report::VariantSection, Vec<GradeSet>)>> {
     let Some(labels) = &args.labels else {
         return Ok(None);
     };
@@ -312,9 +321,10 @@ fn variant_section(args: &ReportArgs) -> anyhow::Result<Option<report::VariantSe
         },
     };
     let out = super::vet::vet_run(&vet_args)?;
-    Ok(Some(report::VariantSection {
+    let section = report::VariantSection {
         panel_members: out.panel.map(|p| p.members).unwrap_or_default(),
         choice: out.variant_choice,
         notes: out.calibration_notes,
-    }))
+    };
+    Ok(Some((section, out.grade_sets)))
 }

@@ -15,7 +15,9 @@ use super::evidence::{Evidence, PanelArgs, PRIMARY};
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences, AnswerRecord};
 use crate::calibrate::{FeatureTable, MappingFile, MAPPING_FORMAT};
+use crate::judge::panel::Panel;
 use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
+use crate::report::{GradeSet, SourceKind};
 use crate::overlap::{score_pair, OverlapOptions};
 use crate::rubric::Rubric;
 use crate::store::read_records;
@@ -95,6 +97,10 @@ pub struct VetOutput {
     pub panel: Option<PanelSummary>,
     /// Methods chosen for calibrated variants, and why something was not calibrated.
     pub calibration_notes: Vec<String>,
+    /// Panel members', the panel's and the calibrated out-of-fold grades, for the
+    /// report's per-item view (not printed).
+    #[serde(skip)]
+    pub grade_sets: Vec<GradeSet>,
 }
 
 /// The panel as vetted.
@@ -322,7 +328,9 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         .min_kappa
         .map(|k| gate_failures(&pointwise, k))
         .unwrap_or_default();
+    let grade_sets = grade_sets(&evidence, panel.as_ref(), calibrated);
     Ok(VetOutput {
+        grade_sets,
         pointwise,
         pairwise,
         gate_failures: gate,
@@ -333,6 +341,34 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         }),
         calibration_notes,
     })
+}
+
+/// The grade sets beside the primary run: panel members, the panel, calibrated ones.
+fn grade_sets(
+    evidence: &Evidence,
+    panel: Option<&Panel<GradeRecord>>,
+    calibrated: Vec<(String, Vec<GradeRecord>)>,
+) -> Vec<GradeSet> {
+    let set = |name: &str, kind, records: &[GradeRecord]| GradeSet {
+        name: name.to_string(),
+        kind,
+        records: records.to_vec(),
+    };
+    let mut sets: Vec<GradeSet> = evidence
+        .runs
+        .iter()
+        .skip(1)
+        .map(|r| set(&r.name, SourceKind::PanelMember, &r.records))
+        .collect();
+    if let Some(p) = panel {
+        sets.push(set("panel mean", SourceKind::Panel, &p.records));
+    }
+    sets.extend(calibrated.into_iter().map(|(name, records)| GradeSet {
+        name: format!("{name} (out of fold)"),
+        kind: SourceKind::Calibrated,
+        records,
+    }));
+    sets
 }
 
 /// Run `assize vet`.

@@ -7,6 +7,7 @@
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use super::*;
+use crate::guard::screen;
 use crate::judge::anchors::consensus_index;
 use crate::judge::grade::summarize;
 use crate::probes::length::length_probe;
@@ -80,6 +81,7 @@ pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
         None => None,
     };
     let flagged = flagged(inp);
+    let items = items(inp, &criteria);
     let mut report = Report {
         schema: SCHEMA.to_string(),
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
@@ -93,6 +95,7 @@ pub fn build(inp: &Inputs) -> Result<Report, ReportError> {
         deltas,
         pairwise,
         flagged,
+        items,
         variants: None,
     };
     report.cautions = super::cautions::collect(&report, inp.labels.is_some());
@@ -439,55 +442,71 @@ fn report_rule(
     Ok((rule, vetted))
 }
 
-/// Grades with low captured mass, and grades whose expected score is at least
-/// [`DISPUTE_POINTS`] from the human consensus (lower median, as in `vet`).
-fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
-    let mut labels: HashMap<(&str, &str, &str), Vec<HumanScore>> = HashMap::new();
+/// Every human score per (question, system, criterion), sorted by rater.
+fn human_scores(inp: &Inputs) -> HashMap<(String, String, String), Vec<HumanScore>> {
+    let mut labels: HashMap<(String, String, String), Vec<HumanScore>> = HashMap::new();
     for l in inp.labels.unwrap_or_default() {
         labels
-            .entry((&l.question_id, &l.system, &l.criterion))
+            .entry((l.question_id.clone(), l.system.clone(), l.criterion.clone()))
             .or_default()
             .push(HumanScore {
                 rater: l.rater.clone(),
                 score: l.score.clone(),
             });
     }
-    let answers: HashMap<(&str, &str), &AnswerRecord> = inp
-        .answers
+    for v in labels.values_mut() {
+        v.sort_by(|a, b| a.rater.cmp(&b.rater));
+    }
+    labels
+}
+
+/// The human consensus label of one item (lower median, as in `vet`).
+fn consensus_label(c: &crate::rubric::Criterion, human: &[HumanScore]) -> Option<usize> {
+    let positions: Vec<usize> = human
+        .iter()
+        .filter_map(|h| c.scale.index_of(&h.score))
+        .collect();
+    consensus_index(&positions)
+}
+
+/// At least [`DISPUTE_POINTS`] between the judge's expected score and the consensus.
+fn is_disputed(r: &GradeRecord, c: &crate::rubric::Criterion, consensus: Option<usize>) -> bool {
+    consensus.is_some_and(|i| (r.expected - c.scale.values()[i]).abs() >= DISPUTE_POINTS - 1e-9)
+}
+
+fn answers_by_item<'a>(inp: &Inputs<'a>) -> HashMap<(&'a str, &'a str), &'a AnswerRecord> {
+    inp.answers
         .unwrap_or_default()
         .iter()
         .map(|a| ((a.question_id.as_str(), a.system.as_str()), a))
-        .collect();
+        .collect()
+}
+
+fn item_key(r: &GradeRecord) -> (String, String, String) {
+    (r.question_id.clone(), r.system.clone(), r.criterion.clone())
+}
+
+/// Grades with low captured mass, and grades whose expected score is at least
+/// [`DISPUTE_POINTS`] from the human consensus (lower median, as in `vet`).
+fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
+    let labels = human_scores(inp);
+    let answers = answers_by_item(inp);
     let mut out = Vec::new();
     for run in inp.runs {
         let mut records: Vec<&GradeRecord> = run.records.iter().collect();
-        records.sort_by_key(|r| (r.question_id.clone(), r.system.clone(), r.criterion.clone()));
+        records.sort_by_key(|r| item_key(r));
         for r in records {
             let Some(c) = inp.rubric.criterion(&r.criterion) else {
                 continue;
             };
-            let mut human = labels
-                .get(&(
-                    r.question_id.as_str(),
-                    r.system.as_str(),
-                    r.criterion.as_str(),
-                ))
-                .cloned()
-                .unwrap_or_default();
-            human.sort_by(|a, b| a.rater.cmp(&b.rater));
-            let positions: Vec<usize> = human
-                .iter()
-                .filter_map(|h| c.scale.index_of(&h.score))
-                .collect();
-            let consensus = consensus_index(&positions);
+            let human = labels.get(&item_key(r)).cloned().unwrap_or_default();
+            let consensus = consensus_label(c, &human);
             let mut reasons = Vec::new();
             if r.low_mass {
                 reasons.push("low_mass".to_string());
             }
-            if let Some(i) = consensus {
-                if (r.expected - c.scale.values()[i]).abs() >= DISPUTE_POINTS - 1e-9 {
-                    reasons.push("disputed".to_string());
-                }
+            if is_disputed(r, c, consensus) {
+                reasons.push("disputed".to_string());
             }
             if reasons.is_empty() {
                 continue;
@@ -512,6 +531,95 @@ fn flagged(inp: &Inputs) -> Vec<FlaggedItem> {
         }
     }
     out
+}
+
+/// What makes an answer worth a look, over all its grades.
+fn item_flags(criteria: &[ItemCriterion], screened: bool) -> Vec<String> {
+    let grades = || criteria.iter().flat_map(|c| &c.grades);
+    [
+        ("low_mass", grades().any(|g| g.low_mass)),
+        ("disputed", grades().any(|g| g.disputed)),
+        ("screened", screened),
+    ]
+    .iter()
+    .filter(|f| f.1)
+    .map(|f| f.0.to_string())
+    .collect()
+}
+
+/// Every answer any run graded, ordered by question and system, with every grade of
+/// every run and further grade set per criterion, the human scores and the screen's
+/// findings on the answer text.
+fn items(inp: &Inputs, criteria: &[CriterionInfo]) -> Vec<ItemView> {
+    let sources: Vec<(&str, SourceKind, &[GradeRecord])> = inp
+        .runs
+        .iter()
+        .map(|r| (r.name.as_str(), SourceKind::Run, r.records.as_slice()))
+        .chain(
+            inp.extra
+                .iter()
+                .map(|g| (g.name.as_str(), g.kind, g.records.as_slice())),
+        )
+        .collect();
+    let mut grades: BTreeMap<(String, String), BTreeMap<String, Vec<ItemGrade>>> = BTreeMap::new();
+    for r in inp.runs.iter().flat_map(|run| &run.records) {
+        grades.entry((r.question_id.clone(), r.system.clone())).or_default();
+    }
+    let labels = human_scores(inp);
+    for (name, kind, records) in sources {
+        for r in records {
+            let Some(per_item) = grades.get_mut(&(r.question_id.clone(), r.system.clone())) else {
+                continue;
+            };
+            let Some(c) = inp.rubric.criterion(&r.criterion) else {
+                continue;
+            };
+            let human = labels.get(&item_key(r)).map_or(&[][..], Vec::as_slice);
+            per_item.entry(r.criterion.clone()).or_default().push(ItemGrade {
+                source: name.to_string(),
+                kind,
+                expected: r.expected,
+                argmax: r.argmax.clone(),
+                probabilities: r.probabilities.clone(),
+                captured_mass: (kind != SourceKind::Calibrated).then_some(r.captured_mass),
+                low_mass: r.low_mass,
+                disputed: is_disputed(r, c, consensus_label(c, human)),
+            });
+        }
+    }
+    let answers = answers_by_item(inp);
+    grades
+        .into_iter()
+        .map(|((question_id, system), mut per_item)| {
+            let answer = answers.get(&(question_id.as_str(), system.as_str()));
+            let criteria: Vec<ItemCriterion> = criteria
+                .iter()
+                .filter_map(|info| {
+                    let grades = per_item.remove(&info.key)?;
+                    let c = inp.rubric.criterion(&info.key)?;
+                    let key = (question_id.clone(), system.clone(), info.key.clone());
+                    let human_scores = labels.get(&key).cloned().unwrap_or_default();
+                    Some(ItemCriterion {
+                        criterion: info.key.clone(),
+                        human_consensus: consensus_label(c, &human_scores)
+                            .map(|i| c.scale.labels()[i].clone()),
+                        human_scores,
+                        grades,
+                    })
+                })
+                .collect();
+            let screen = answer.map(|a| screen(&a.answer).flags).unwrap_or_default();
+            ItemView {
+                flags: item_flags(&criteria, !screen.is_empty()),
+                screen,
+                question: answer.map(|a| a.question.clone()),
+                answer: answer.map(|a| a.answer.clone()),
+                question_id,
+                system,
+                criteria,
+            }
+        })
+        .collect()
 }
 
 #[cfg(test)]
@@ -556,6 +664,10 @@ mod tests {
     }
 
     fn build_with(runs: &[RunInput], labels: Option<&[LabelRow]>) -> Report {
+        build_full(runs, labels, &[])
+    }
+
+    fn build_full(runs: &[RunInput], labels: Option<&[LabelRow]>, extra: &[GradeSet]) -> Report {
         let rubric = load_rubric(
             &std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
                 .join("judge-templates/rubrics/quick.toml"),
@@ -571,6 +683,7 @@ mod tests {
             judge_name: None,
             seed: 7,
             resamples: 200,
+            extra,
         };
         build(&inputs).expect("report")
     }
@@ -655,5 +768,44 @@ mod tests {
             .iter()
             .any(|c| c.kind == CautionKind::LowCapturedMass));
         assert!(!r.cautions.iter().any(|c| c.kind == CautionKind::NoLabels));
+    }
+
+    /// The per-item view holds every answer, flagged or not, with one grade per run
+    /// and per further grade set; a calibrated grade has no captured mass, and a grade
+    /// 2 points from the consensus is disputed in whichever source it is.
+    #[test]
+    fn every_answer_shows_every_source_grade_with_its_flags() {
+        let base = vec![rec("q1", 4.9, false), rec("q2", 3.0, true)];
+        let later = vec![rec("q1", 2.5, false), rec("q2", 3.0, false)];
+        let calibrated = GradeSet {
+            name: "calibrated judge (out of fold)".into(),
+            kind: SourceKind::Calibrated,
+            records: vec![rec("q1", 4.5, false)],
+        };
+        let labels = [label("q1", "a", "5"), label("q1", "b", "5")];
+        let r = build_full(
+            &[run("before", base), run("after", later)],
+            Some(&labels),
+            &[calibrated],
+        );
+        assert_eq!(r.items.len(), 2);
+        let q1 = &r.items[0].criteria[0];
+        let got: Vec<(&str, SourceKind, Option<f64>, bool)> = q1
+            .grades
+            .iter()
+            .map(|g| (g.source.as_str(), g.kind, g.captured_mass, g.disputed))
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ("before", SourceKind::Run, Some(0.9), false),
+                ("after", SourceKind::Run, Some(0.9), true),
+                ("calibrated judge (out of fold)", SourceKind::Calibrated, None, false),
+            ]
+        );
+        assert_eq!(q1.human_consensus.as_deref(), Some("5"));
+        assert_eq!(r.items[0].flags, vec!["disputed".to_string()]);
+        assert_eq!(r.items[1].flags, vec!["low_mass".to_string()]);
+        assert!(r.items[1].criteria[0].human_scores.is_empty());
     }
 }

@@ -86,6 +86,34 @@ pub struct Inputs<'a> {
     pub seed: u64,
     /// Bootstrap resamples per interval.
     pub resamples: usize,
+    /// Further grade sets shown only in the per-item view: panel members, the panel
+    /// mean, calibrated out-of-fold predictions.
+    pub extra: &'a [GradeSet],
+}
+
+/// A set of grades shown beside the runs' in the per-item view.
+#[derive(Debug, Clone)]
+pub struct GradeSet {
+    /// Display name.
+    pub name: String,
+    /// What the grades are.
+    pub kind: SourceKind,
+    /// The grades.
+    pub records: Vec<GradeRecord>,
+}
+
+/// Where a grade in the per-item view comes from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SourceKind {
+    /// A grading run given with `--grades`.
+    Run,
+    /// A panel member's grading run.
+    PanelMember,
+    /// The panel: mean of the members' distributions.
+    Panel,
+    /// Label-calibrated grades, each predicted by a model fitted without its question.
+    Calibrated,
 }
 
 /// Why a report could not be assembled or rendered.
@@ -147,6 +175,8 @@ pub struct Report {
     pub pairwise: Option<PairwiseSection>,
     /// Items with low captured mass or a judge-human dispute, over all runs.
     pub flagged: Vec<FlaggedItem>,
+    /// Every graded answer with every grade of every run and grade set, flagged or not.
+    pub items: Vec<ItemView>,
     /// Judge variants (members, panel, calibrated) compared out of sample, with the
     /// chosen one per criterion; present when the report was asked for panels or calibration.
     pub variants: Option<VariantSection>,
@@ -446,6 +476,60 @@ pub struct FlaggedItem {
     pub question: Option<String>,
     /// Answer text, when the answers were given.
     pub answer: Option<String>,
+}
+
+/// One answer with every grade it got.
+#[derive(Debug, Clone, Serialize)]
+pub struct ItemView {
+    /// Question id.
+    pub question_id: String,
+    /// System.
+    pub system: String,
+    /// Question text, when the answers were given.
+    pub question: Option<String>,
+    /// Answer text, when the answers were given.
+    pub answer: Option<String>,
+    /// Sentences the screen finds addressing the grader (needs the answers; empty when clean).
+    pub screen: Vec<crate::guard::Flag>,
+    /// `low_mass`, `disputed` and `screened` when any grade or the screen says so.
+    pub flags: Vec<String>,
+    /// One entry per report criterion the answer was graded on, in `criteria` order.
+    pub criteria: Vec<ItemCriterion>,
+}
+
+/// One criterion of one answer: every grade and the human scores.
+#[derive(Debug, Clone, Serialize)]
+pub struct ItemCriterion {
+    /// Criterion key.
+    pub criterion: String,
+    /// Every human score of the item, by rater.
+    pub human_scores: Vec<HumanScore>,
+    /// Human consensus label (lower median), when labelled.
+    pub human_consensus: Option<String>,
+    /// Runs first (in `runs` order), then the further grade sets.
+    pub grades: Vec<ItemGrade>,
+}
+
+/// One grade as the per-item view shows it.
+#[derive(Debug, Clone, Serialize)]
+pub struct ItemGrade {
+    /// Run or grade-set name.
+    pub source: String,
+    /// What the source is.
+    pub kind: SourceKind,
+    /// Probability-weighted score.
+    pub expected: f64,
+    /// Most likely label.
+    pub argmax: String,
+    /// Probability of each scale label (same order as the criterion's labels).
+    pub probabilities: Vec<f64>,
+    /// Probability the judge put on the scale labels; `null` for calibrated grades,
+    /// which are distributions over the scale by construction.
+    pub captured_mass: Option<f64>,
+    /// Captured mass was below the run's threshold.
+    pub low_mass: bool,
+    /// At least [`DISPUTE_POINTS`] from the human consensus.
+    pub disputed: bool,
 }
 
 /// One human score.
