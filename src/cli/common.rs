@@ -64,11 +64,11 @@ impl RubricArg {
                 Some((name, text)) => {
                     let shown = PathBuf::from(name.unwrap_or_else(|| "(recorded rubric)".into()));
                     parse_rubric(&shown, &text).map_err(|e| {
-                            anyhow::Error::new(e).context(usage(
-                                format!("the rubric recorded in `{}` cannot be read", run.display()),
-                                "name the rubric the run was graded with (`--rubric`)",
-                            ))
-                        })
+                        anyhow::Error::new(e).context(usage(
+                            format!("the rubric recorded in `{}` cannot be read", run.display()),
+                            "name the rubric the run was graded with (`--rubric`)",
+                        ))
+                    })
                 }
                 None => {
                     eprintln!(
@@ -83,11 +83,9 @@ impl RubricArg {
         if let Some((_, text)) = recorded {
             let theirs = parse_rubric(path, &text).ok();
             let same_scales = theirs.is_some_and(|t| {
-                t.criteria.iter().all(|c| {
-                    named
-                        .criterion(&c.key)
-                        .is_none_or(|n| n.scale == c.scale)
-                })
+                t.criteria
+                    .iter()
+                    .all(|c| named.criterion(&c.key).is_none_or(|n| n.scale == c.scale))
             });
             if !same_scales {
                 return Err(usage(

@@ -212,39 +212,43 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
         Some(d) => Forms::from_dir(d)?,
         None => Forms::builtin()?,
     };
-    let (criterion, question, show_ref, show_ctx, rubric) = match one_criterion(&args.criterion, "compare")? {
-        Some(k) => {
-            let rubric = args.rubric.load()?;
-            let c = rubric.criterion(k).ok_or_else(|| {
-                usage(
-                    format!("rubric `{}` has no criterion `{k}`", args.rubric.named().display()),
-                    format!(
-                        "use one of: {}",
-                        rubric
-                            .criteria
-                            .iter()
-                            .map(|c| c.key.as_str())
-                            .collect::<Vec<_>>()
-                            .join(", ")
-                    ),
+    let (criterion, question, show_ref, show_ctx, rubric) =
+        match one_criterion(&args.criterion, "compare")? {
+            Some(k) => {
+                let rubric = args.rubric.load()?;
+                let c = rubric.criterion(k).ok_or_else(|| {
+                    usage(
+                        format!(
+                            "rubric `{}` has no criterion `{k}`",
+                            args.rubric.named().display()
+                        ),
+                        format!(
+                            "use one of: {}",
+                            rubric
+                                .criteria
+                                .iter()
+                                .map(|c| c.key.as_str())
+                                .collect::<Vec<_>>()
+                                .join(", ")
+                        ),
+                    )
+                })?;
+                (
+                    k.clone(),
+                    format!("{} Which answer does better on this?", c.question),
+                    c.needs.contains(&Need::Reference),
+                    c.needs.contains(&Need::Context),
+                    Some((rubric.text.clone(), rubric.sha256.clone())),
                 )
-            })?;
-            (
-                k.clone(),
-                format!("{} Which answer does better on this?", c.question),
-                c.needs.contains(&Need::Reference),
-                c.needs.contains(&Need::Context),
-                Some((rubric.text.clone(), rubric.sha256.clone())),
-            )
-        }
-        None => (
-            "overall".to_string(),
-            OVERALL_QUESTION.to_string(),
-            true,
-            true,
-            None,
-        ),
-    };
+            }
+            None => (
+                "overall".to_string(),
+                OVERALL_QUESTION.to_string(),
+                true,
+                true,
+                None,
+            ),
+        };
     let pairs = pairs_to_judge(&answers, &args.systems, args.limit);
     if pairs.is_empty() {
         return Err(usage(
@@ -267,12 +271,8 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
         (Some(g), Some(l)) => {
             let recs: Vec<GradeRecord> = read_records(&g.join(super::grade::GRADES_FILE))?;
             let rubric = args.rubric.load_for_run(g)?;
-            let labels = read_labels_checked(
-                l,
-                &rubric.scales(),
-                Some(&answers),
-                OtherCriteria::Refuse,
-            )?;
+            let labels =
+                read_labels_checked(l, &rubric.scales(), Some(&answers), OtherCriteria::Refuse)?;
             Some((recs, labels, rubric))
         }
         _ => None,
@@ -389,10 +389,17 @@ fn probe_units(args: &CompareArgs, s: &CompareSetup) -> Vec<Unit<(ProbeKind, Ans
 }
 
 /// Whether some slot probe of this comparison is missing from its run folder.
-pub fn probes_pending(args: &CompareArgs, s: &CompareSetup, dir: &std::path::Path) -> anyhow::Result<bool> {
+pub fn probes_pending(
+    args: &CompareArgs,
+    s: &CompareSetup,
+    dir: &std::path::Path,
+) -> anyhow::Result<bool> {
     let path = dir.join(PROBES_FILE);
     let done: HashSet<String> = if path.exists() {
-        read_records::<ProbeRecord>(&path)?.iter().map(ProbeRecord::key).collect()
+        read_records::<ProbeRecord>(&path)?
+            .iter()
+            .map(ProbeRecord::key)
+            .collect()
     } else {
         HashSet::new()
     };
@@ -422,7 +429,14 @@ fn run_probes(
         |(kind, a)| {
             let backend = backend.expect("a judge is loaded when work remains");
             Ok(vec![judge_probe(
-                backend, &s.forms, a, *kind, &s.criterion, &s.question, s.show_ref, s.show_ctx,
+                backend,
+                &s.forms,
+                a,
+                *kind,
+                &s.criterion,
+                &s.question,
+                s.show_ref,
+                s.show_ctx,
             )?])
         },
         ProbeRecord::key,
@@ -515,7 +529,10 @@ pub fn finish_compare(
     if let Some(r) = &rule {
         set_verdicts(&mut outcomes, &r.verdicts);
     }
-    let rule_name = rule.as_ref().map_or("debiased", |r| r.name.as_str()).to_string();
+    let rule_name = rule
+        .as_ref()
+        .map_or("debiased", |r| r.name.as_str())
+        .to_string();
     let self_pref = self_preference(
         &judge_name,
         &outcomes,
@@ -584,9 +601,8 @@ pub fn run(args: CompareArgs) -> anyhow::Result<ExitCode> {
     let setup = compare_setup(&args)?;
     let model_id = ModelId::resolve(&args.model)?;
     let job = open_compare_job(&args, &setup, &model_id)?;
-    let probing = args.shard.is_none()
-        && args.slot_probes > 0
-        && probes_pending(&args, &setup, job.dir())?;
+    let probing =
+        args.shard.is_none() && args.slot_probes > 0 && probes_pending(&args, &setup, job.dir())?;
     let judge = if job.remaining() > 0 || probing {
         Some(load_judge(&args.model, args.output.quiet)?)
     } else {
@@ -654,10 +670,11 @@ pub fn compare_text(r: &CompareReport) -> String {
         s.push_str(&format!(
             "  verdict rule for the ranking: {} ({}){}\n",
             rule.name,
-            rule.order.map_or("order cannot enter".to_string(), |o| format!(
-                "same winner in both orders {:.2}, first-shown answer wins {:.2}",
-                o.consistency, o.first_slot_rate
-            )),
+            rule.order
+                .map_or("order cannot enter".to_string(), |o| format!(
+                    "same winner in both orders {:.2}, first-shown answer wins {:.2}",
+                    o.consistency, o.first_slot_rate
+                )),
             if rule.chosen_against_humans {
                 " (chosen against the human preferences; see `assize vet --pairs`)"
             } else {

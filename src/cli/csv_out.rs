@@ -22,7 +22,8 @@ fn write_rows(path: &Path, header: &[&str], rows: Vec<Vec<String>>) -> anyhow::R
 }
 
 fn opt(v: Option<f64>) -> String {
-    v.filter(|x| x.is_finite()).map_or_else(String::new, |x| format!("{x}"))
+    v.filter(|x| x.is_finite())
+        .map_or_else(String::new, |x| format!("{x}"))
 }
 
 /// One row per grade: the answer, the criterion, the scores and the judge's whole
@@ -51,8 +52,15 @@ pub fn write_grades(path: &Path, records: &[GradeRecord]) -> anyhow::Result<()> 
         })
         .collect();
     let header = [
-        "question_id", "system", "criterion", "expected", "argmax", "spread", "captured_mass",
-        "low_mass", "distribution",
+        "question_id",
+        "system",
+        "criterion",
+        "expected",
+        "argmax",
+        "spread",
+        "captured_mass",
+        "low_mass",
+        "distribution",
     ];
     write_rows(path, &header, rows)
 }
@@ -81,8 +89,17 @@ pub fn write_vet(path: &Path, report: &VetReport) -> anyhow::Result<()> {
         }
     }
     let header = [
-        "criterion", "variant", "n_items", "kappa_quadratic", "kappa_ci_low", "kappa_ci_high",
-        "spearman", "mae", "typical_rater_kappa_quadratic", "trust_verdict", "thin_evidence",
+        "criterion",
+        "variant",
+        "n_items",
+        "kappa_quadratic",
+        "kappa_ci_low",
+        "kappa_ci_high",
+        "spearman",
+        "mae",
+        "typical_rater_kappa_quadratic",
+        "trust_verdict",
+        "thin_evidence",
     ];
     write_rows(path, &header, rows)
 }

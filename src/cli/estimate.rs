@@ -53,7 +53,12 @@ pub struct EstimateArgs {
     #[arg(long)]
     pub calibrate: bool,
     /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)
-    #[arg(long = "answers", short = 'a', value_name = "FILE", requires = "calibrate")]
+    #[arg(
+        long = "answers",
+        short = 'a',
+        value_name = "FILE",
+        requires = "calibrate"
+    )]
     pub baselines: Option<PathBuf>,
     #[command(flatten)]
     pub panel: PanelArgs,

@@ -9,7 +9,9 @@ use anyhow::Context as _;
 use clap::Args;
 use serde::Serialize;
 
-use super::common::{default_run_dir, file_sha256, load_judge, resolve_model, ModelArgs, RubricArg};
+use super::common::{
+    default_run_dir, file_sha256, load_judge, resolve_model, ModelArgs, RubricArg,
+};
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, AnswerRecord, OtherCriteria};

@@ -13,9 +13,9 @@ use anyhow::Context as _;
 use clap::Args;
 
 use super::common::RubricArg;
-use super::OutputArgs;
 use super::errors::usage;
-use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences};
+use super::OutputArgs;
+use crate::data::{read_answers, read_labels_checked, read_preferences, OtherCriteria};
 use crate::judge::{GradeRecord, PairRecord};
 use crate::report::{self, CompareInput, GradeSet, Inputs, Report, RunInput};
 use crate::store::{read_records, Manifest, MANIFEST};
@@ -201,7 +201,14 @@ pub fn build_report(args: &ReportArgs, extra: &[GradeSet]) -> anyhow::Result<Rep
     let labels = args
         .labels
         .as_deref()
-        .map(|p| read_labels_checked(p, &rubric.scales(), answers.as_deref(), OtherCriteria::Refuse))
+        .map(|p| {
+            read_labels_checked(
+                p,
+                &rubric.scales(),
+                answers.as_deref(),
+                OtherCriteria::Refuse,
+            )
+        })
         .transpose()?;
     let preferences = args
         .preferences

@@ -194,7 +194,10 @@ fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
     let c = match one_criterion(&args.criterion, "rubric show")? {
         Some(k) => rubric.criterion(k).ok_or_else(|| {
             usage(
-                format!("rubric `{}` has no criterion `{k}`", args.rubric.named().display()),
+                format!(
+                    "rubric `{}` has no criterion `{k}`",
+                    args.rubric.named().display()
+                ),
                 format!(
                     "use one of: {}",
                     rubric

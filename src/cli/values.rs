@@ -18,7 +18,9 @@ pub fn probability(s: &str) -> Result<f64, String> {
     if (0.0..=1.0).contains(&v) {
         Ok(v)
     } else {
-        Err(format!("`{s}` is not a probability; use a value from 0 to 1"))
+        Err(format!(
+            "`{s}` is not a probability; use a value from 0 to 1"
+        ))
     }
 }
 
@@ -28,7 +30,9 @@ pub fn share(s: &str) -> Result<f64, String> {
     if v > 0.0 && v <= 1.0 {
         Ok(v)
     } else {
-        Err(format!("`{s}` is not a share; use a value above 0 and at most 1, such as 0.3"))
+        Err(format!(
+            "`{s}` is not a share; use a value above 0 and at most 1, such as 0.3"
+        ))
     }
 }
 
@@ -38,7 +42,9 @@ pub fn level(s: &str) -> Result<f64, String> {
     if v > 0.0 && v < 1.0 {
         Ok(v)
     } else {
-        Err(format!("`{s}` is not a coverage; use a value between 0 and 1, such as 0.95"))
+        Err(format!(
+            "`{s}` is not a coverage; use a value between 0 and 1, such as 0.95"
+        ))
     }
 }
 

@@ -13,12 +13,14 @@ use super::common::RubricArg;
 use super::errors::{usage, GateFailed};
 use super::evidence::{Evidence, PanelArgs, PRIMARY};
 use super::{print_json, OutputArgs};
-use crate::data::{read_answers, read_labels_checked, OtherCriteria, read_preferences, AnswerRecord};
 use crate::calibrate::{FeatureTable, MappingFile, MAPPING_FORMAT};
+use crate::data::{
+    read_answers, read_labels_checked, read_preferences, AnswerRecord, OtherCriteria,
+};
 use crate::judge::panel::Panel;
 use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
-use crate::report::{GradeSet, SourceKind};
 use crate::overlap::{score_pair, OverlapOptions};
+use crate::report::{GradeSet, SourceKind};
 use crate::rubric::Rubric;
 use crate::store::read_records;
 use crate::vet::{
@@ -196,7 +198,12 @@ pub fn load_comparisons(
 pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
     let rubric = args.rubric.load_for_run(&args.grades)?;
     let answers = args.baselines.as_deref().map(read_answers).transpose()?;
-    let labels = read_labels_checked(&args.labels, &rubric.scales(), answers.as_deref(), OtherCriteria::Refuse)?;
+    let labels = read_labels_checked(
+        &args.labels,
+        &rubric.scales(),
+        answers.as_deref(),
+        OtherCriteria::Refuse,
+    )?;
     let evidence = Evidence::load(&args.grades, &args.panel, args.baselines.as_deref())?;
     let primary = &evidence.runs[0].records;
     let mut extra = Vec::new();

@@ -263,7 +263,9 @@ impl<'a> LabelChecker<'a> {
         ];
         if key.iter().all(|k| !k.is_empty()) {
             if let Some(first) = self.seen.insert(key, l.line) {
-                msgs.push(format!("the same rater already scored this on line {first}"));
+                msgs.push(format!(
+                    "the same rater already scored this on line {first}"
+                ));
             }
         }
         msgs

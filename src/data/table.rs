@@ -128,7 +128,9 @@ pub fn decode_text(bytes: &[u8]) -> (std::borrow::Cow<'_, str>, Vec<LineProblem>
     if bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF") {
         let problem = LineProblem {
             line: 1,
-            message: "the file is UTF-16 (it starts with a UTF-16 byte-order mark); save it as UTF-8".into(),
+            message:
+                "the file is UTF-16 (it starts with a UTF-16 byte-order mark); save it as UTF-8"
+                    .into(),
         };
         return (std::borrow::Cow::Borrowed(""), vec![problem]);
     }

@@ -5,7 +5,7 @@
 //! projection. Never reads weights, and never lets a row's result depend on the other
 //! rows of the call, on how heads are split over threads, or on the thread count.
 
-use super::kernels::{self, KeyValues, Kernels};
+use super::kernels::{self, Kernels, KeyValues};
 use super::linear::SharedOut;
 
 /// Keys and values of the tokens seen so far; cloning forks it. One buffer per layer and

@@ -268,14 +268,22 @@ fn fill(skeleton: &str, msgs: &[ChatMessage], trimmed: bool) -> Result<Vec<Segme
 fn quote_role_lines(content: &str) -> String {
     let forged = |line: &str| {
         let l = line.trim_start().to_ascii_lowercase();
-        ["system:", "user:", "assistant:"].iter().any(|r| l.starts_with(r))
+        ["system:", "user:", "assistant:"]
+            .iter()
+            .any(|r| l.starts_with(r))
     };
     if !content.lines().any(forged) {
         return content.to_string();
     }
     content
         .split('\n')
-        .map(|line| if forged(line) { format!("| {line}") } else { line.to_string() })
+        .map(|line| {
+            if forged(line) {
+                format!("| {line}")
+            } else {
+                line.to_string()
+            }
+        })
         .collect::<Vec<_>>()
         .join("\n")
 }

@@ -16,9 +16,9 @@ use std::sync::OnceLock;
 use super::arch::{self, Block, Part, Plan};
 use super::attention::{attend_block, AttnShape};
 use super::gguf::GgufFile;
-use super::linear::{Embedding, Linear, Loader, MatmulPolicy};
 use super::kernels::{self, Kernels};
-use super::ops::{add_bias, add_into, rms_norm, rope, rope_freqs, scale_rope_freqs};
+use super::linear::{Embedding, Linear, Loader, MatmulPolicy};
+use super::ops::{add_bias, add_into, rope_freqs, scale_rope_freqs, RopeTable};
 use super::EngineError;
 
 pub use super::attention::KvCache;
@@ -475,32 +475,43 @@ impl Decoder {
         if let Some(s) = c.embed_scale {
             x.iter_mut().for_each(|v| *v *= s);
         }
+        let rows = Kernels::for_rows();
+        let norm = |x: &[f32], w: &[f32]| kernels::rms_norm(rows, x, w, eps);
+        // One table of rotary angles per distinct frequency set (two in Gemma 3).
+        let mut tables: Vec<RopeTable> = Vec::new();
         for (li, l) in self.layers.iter().enumerate() {
-            let h = rms_norm(&x, &l.attn_norm, eps);
+            let h = norm(&x, &l.attn_norm);
             let [mut q, mut k, mut v] = fused(&[&l.wq, &l.wk, &l.wv], &h, m)?;
             add_bias(&mut q, l.bq.as_deref());
             add_bias(&mut k, l.bk.as_deref());
             add_bias(&mut v, l.bv.as_deref());
             if let Some([qn, kn]) = &l.qk_norm {
-                q = rms_norm(&q, qn, eps);
-                k = rms_norm(&k, kn, eps);
+                q = norm(&q, qn);
+                k = norm(&k, kn);
             }
             let freqs = &l.rope_freqs;
             let (q_dim, kv_dim) = (c.heads * c.head_dim, c.kv_heads * c.head_dim);
-            rope(&mut q, q_dim, c.head_dim, pos0, freqs, c.rope_pairs);
-            rope(&mut k, kv_dim, c.head_dim, pos0, freqs, c.rope_pairs);
+            let t = match tables.iter().position(|t| t.serves(freqs)) {
+                Some(t) => t,
+                None => {
+                    tables.push(RopeTable::new(freqs, pos0, m));
+                    tables.len() - 1
+                }
+            };
+            kernels::rope(rows, &mut q, q_dim, c.head_dim, &tables[t], c.rope_pairs);
+            kernels::rope(rows, &mut k, kv_dim, c.head_dim, &tables[t], c.rope_pairs);
             let att = attend_block(cache, li, [&q, &k, &v], &shape, m, l.window);
             let mut o = l.wo.forward(&att, m)?;
             if let Some(w) = &l.post_attn_norm {
-                o = rms_norm(&o, w, eps);
+                o = norm(&o, w);
             }
             add_into(&mut x, &o);
-            let h = rms_norm(&x, &l.ffn_norm, eps);
+            let h = norm(&x, &l.ffn_norm);
             let [mut a, u] = fused(&[&l.gate, &l.up], &h, m)?;
-            kernels::gate(Kernels::for_rows(), c.activation, &mut a, &u);
+            kernels::gate(rows, c.activation, &mut a, &u);
             let mut d = l.down.forward(&a, m)?;
             if let Some(w) = &l.post_ffn_norm {
-                d = rms_norm(&d, w, eps);
+                d = norm(&d, w);
             }
             add_into(&mut x, &d);
         }
@@ -508,7 +519,12 @@ impl Decoder {
         if from >= m {
             return Ok(Vec::new());
         }
-        let last = rms_norm(&x[from * c.hidden..], &self.out_norm, eps);
+        let last = kernels::rms_norm(
+            Kernels::for_rows(),
+            &x[from * c.hidden..],
+            &self.out_norm,
+            eps,
+        );
         let logits = self.output.forward(&last, m - from)?;
         Ok(logits.chunks(c.vocab).map(<[f32]>::to_vec).collect())
     }

@@ -61,13 +61,21 @@ pub fn check_file(path: &Path, file_size: u64) -> Result<(), EngineError> {
 
 /// Validate a GGUF header read from `r`, a file of `len` bytes.
 pub fn check(r: impl Read, len: u64) -> Result<(), Damage> {
-    let mut h = Header { r, pos: 0, len, wide: true };
+    let mut h = Header {
+        r,
+        pos: 0,
+        len,
+        wide: true,
+    };
     if h.bytes(4, "magic")? != b"GGUF" {
         return Err(damage("magic", "the file does not start with `GGUF`"));
     }
     let version = h.u32("version")?;
     if !(1..=3).contains(&version) {
-        return Err(damage("version", format!("{version} is not a GGUF version (1 to 3)")));
+        return Err(damage(
+            "version",
+            format!("{version} is not a GGUF version (1 to 3)"),
+        ));
     }
     h.wide = version >= 2;
     let tensors = h.count("tensor count", 8 + 4 + 4 + 8)?;
@@ -79,8 +87,18 @@ pub fn check(r: impl Read, len: u64) -> Result<(), Damage> {
         if key == "general.alignment" {
             alignment = match (ty, h.value(ty, &key, 0)?) {
                 (4, Some(a)) if a > 0 && a.is_power_of_two() => a,
-                (4, Some(a)) => return Err(damage("general.alignment", format!("{a} is not a power of two above 0"))),
-                _ => return Err(damage("general.alignment", "is not a 32-bit unsigned integer")),
+                (4, Some(a)) => {
+                    return Err(damage(
+                        "general.alignment",
+                        format!("{a} is not a power of two above 0"),
+                    ))
+                }
+                _ => {
+                    return Err(damage(
+                        "general.alignment",
+                        "is not a 32-bit unsigned integer",
+                    ))
+                }
             };
         } else {
             h.value(ty, &key, 0)?;
@@ -111,14 +129,23 @@ impl TensorEntry {
     fn check_extent(&self, start: u64, alignment: u64, len: u64) -> Result<(), Damage> {
         let field = |what: &str| format!("tensor `{}` {what}", self.name);
         if self.offset % alignment != 0 {
-            return Err(damage(field("offset"), format!("{} is not a multiple of the alignment {alignment}", self.offset)));
+            return Err(damage(
+                field("offset"),
+                format!(
+                    "{} is not a multiple of the alignment {alignment}",
+                    self.offset
+                ),
+            ));
         }
         let end = start
             .checked_add(self.offset)
             .and_then(|s| s.checked_add(self.bytes))
             .ok_or_else(|| damage(field("offset"), "overflows"))?;
         if end > len {
-            let mut d = damage(field("data"), format!("ends at byte {end}, past the end of the file ({len} bytes)"));
+            let mut d = damage(
+                field("data"),
+                format!("ends at byte {end}, past the end of the file ({len} bytes)"),
+            );
             d.past_end = Some((self.name.clone(), end));
             return Err(d);
         }
@@ -129,15 +156,15 @@ impl TensorEntry {
 /// (elements per block, bytes per block) of the ggml types candle reads.
 fn block_layout(ty: u32) -> Option<(u64, u64)> {
     Some(match ty {
-        0 => (1, 4),     // F32
+        0 => (1, 4),      // F32
         1 | 30 => (1, 2), // F16, BF16
-        2 => (32, 18),   // Q4_0
-        3 => (32, 20),   // Q4_1
-        6 => (32, 22),   // Q5_0
-        7 => (32, 24),   // Q5_1
-        8 => (32, 34),   // Q8_0
-        9 => (32, 36),   // Q8_1
-        10 => (256, 84), // Q2_K
+        2 => (32, 18),    // Q4_0
+        3 => (32, 20),    // Q4_1
+        6 => (32, 22),    // Q5_0
+        7 => (32, 24),    // Q5_1
+        8 => (32, 34),    // Q8_0
+        9 => (32, 36),    // Q8_1
+        10 => (256, 84),  // Q2_K
         11 => (256, 110), // Q3_K
         12 => (256, 144), // Q4_K
         13 => (256, 176), // Q5_K
@@ -163,7 +190,10 @@ impl<R: Read> Header<R> {
 
     fn bytes(&mut self, n: u64, field: &str) -> Result<Vec<u8>, Damage> {
         if n > self.left() {
-            return Err(damage(field, format!("needs {n} bytes, {} are left in the file", self.left())));
+            return Err(damage(
+                field,
+                format!("needs {n} bytes, {} are left in the file", self.left()),
+            ));
         }
         let mut buf = vec![0u8; n as usize];
         self.r
@@ -175,7 +205,10 @@ impl<R: Read> Header<R> {
 
     fn skip(&mut self, n: u64, field: &str) -> Result<(), Damage> {
         if n > self.left() {
-            return Err(damage(field, format!("needs {n} bytes, {} are left in the file", self.left())));
+            return Err(damage(
+                field,
+                format!("needs {n} bytes, {} are left in the file", self.left()),
+            ));
         }
         let copied = std::io::copy(&mut (&mut self.r).take(n), &mut std::io::sink())
             .map_err(|e| damage(field, format!("cannot be read ({e})")))?;
@@ -209,7 +242,10 @@ impl<R: Read> Header<R> {
     fn count(&mut self, field: &str, min_entry: u64) -> Result<u64, Damage> {
         let n = self.length(field)?;
         if n > self.left() / min_entry {
-            return Err(damage(field, format!("{n} entries cannot fit in the {} bytes left", self.left())));
+            return Err(damage(
+                field,
+                format!("{n} entries cannot fit in the {} bytes left", self.left()),
+            ));
         }
         Ok(n)
     }
@@ -237,7 +273,8 @@ impl<R: Read> Header<R> {
             8 => {
                 let n = self.length(&field)?;
                 let b = self.bytes(n, &field)?;
-                std::str::from_utf8(&b).map_err(|e| damage(&field, format!("is not UTF-8 ({e})")))?;
+                std::str::from_utf8(&b)
+                    .map_err(|e| damage(&field, format!("is not UTF-8 ({e})")))?;
             }
             9 => {
                 if depth >= MAX_ARRAY_DEPTH {
@@ -251,10 +288,18 @@ impl<R: Read> Header<R> {
                     4 | 5 | 6 => 4,
                     8 | 10 | 11 | 12 => 8,
                     9 => 12,
-                    t => return Err(damage(&field, format!("array element type {t} does not exist"))),
+                    t => {
+                        return Err(damage(
+                            &field,
+                            format!("array element type {t} does not exist"),
+                        ))
+                    }
                 };
                 if n > self.left() / min {
-                    return Err(damage(&field, format!("array of {n} cannot fit in the {} bytes left", self.left())));
+                    return Err(damage(
+                        &field,
+                        format!("array of {n} cannot fit in the {} bytes left", self.left()),
+                    ));
                 }
                 if elem == 8 || elem == 9 {
                     for _ in 0..n {
@@ -274,7 +319,10 @@ impl<R: Read> Header<R> {
         let field = |what: &str| format!("tensor `{name}` {what}");
         let n_dims = self.u32(&field("dimension count"))?;
         if n_dims == 0 || n_dims > MAX_DIMS {
-            return Err(damage(field("dimension count"), format!("{n_dims} is not between 1 and {MAX_DIMS}")));
+            return Err(damage(
+                field("dimension count"),
+                format!("{n_dims} is not between 1 and {MAX_DIMS}"),
+            ));
         }
         let mut dims = Vec::with_capacity(n_dims as usize);
         for _ in 0..n_dims {
@@ -282,22 +330,44 @@ impl<R: Read> Header<R> {
         }
         let ty = self.u32(&field("type"))?;
         let offset = self.u64(&field("offset"))?;
-        let (block, size) = block_layout(ty)
-            .ok_or_else(|| damage(field("type"), format!("type id {ty} is not a tensor type assize can read")))?;
+        let (block, size) = block_layout(ty).ok_or_else(|| {
+            damage(
+                field("type"),
+                format!("type id {ty} is not a tensor type assize can read"),
+            )
+        })?;
         let elems = dims
             .iter()
             .try_fold(1u64, |acc, &d| acc.checked_mul(d))
             .ok_or_else(|| damage(field("dimensions"), format!("{dims:?} multiply past 2^64")))?;
         if elems == 0 {
-            return Err(damage(field("dimensions"), format!("{dims:?} hold no elements")));
+            return Err(damage(
+                field("dimensions"),
+                format!("{dims:?} hold no elements"),
+            ));
         }
         if dims[0] % block != 0 {
-            return Err(damage(field("dimensions"), format!("first dimension {} is not a multiple of the block size {block}", dims[0])));
+            return Err(damage(
+                field("dimensions"),
+                format!(
+                    "first dimension {} is not a multiple of the block size {block}",
+                    dims[0]
+                ),
+            ));
         }
         let bytes = (elems / block)
             .checked_mul(size)
             .filter(|&b| usize::try_from(b).is_ok())
-            .ok_or_else(|| damage(field("dimensions"), format!("{dims:?} give a size past 2^64 bytes")))?;
-        Ok(TensorEntry { name, bytes, offset })
+            .ok_or_else(|| {
+                damage(
+                    field("dimensions"),
+                    format!("{dims:?} give a size past 2^64 bytes"),
+                )
+            })?;
+        Ok(TensorEntry {
+            name,
+            bytes,
+            offset,
+        })
     }
 }

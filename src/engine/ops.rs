@@ -22,13 +22,27 @@ pub enum RopePairs {
     Halves,
 }
 
+/// Lanes of the sum of squares in `rms_norm`: one AVX-512 register, two AVX2 ones.
+const NORM_LANES: usize = 16;
+
 /// RMS norm of each `w.len()`-wide row of `x` (Zhang & Sennrich 2019), as
-/// candle's `rms_norm`: x / sqrt(mean(x²) + eps) · w.
+/// candle's `rms_norm`: x / sqrt(mean(x²) + eps) · w. The sum of squares runs in
+/// `NORM_LANES` independent lanes added in a fixed order, so the loop vectorises
+/// under every family's `target_feature` and gives the same bits on all of them.
+#[inline(always)]
 pub(crate) fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
     let dim = w.len();
     let mut out = Vec::with_capacity(x.len());
     for row in x.chunks_exact(dim) {
-        let sum2: f32 = row.iter().map(|v| v * v).sum();
+        let mut lanes = [0f32; NORM_LANES];
+        let chunks = row.chunks_exact(NORM_LANES);
+        let tail = chunks.remainder();
+        for c in chunks {
+            for (l, v) in lanes.iter_mut().zip(c) {
+                *l += v * v;
+            }
+        }
+        let sum2 = lanes.iter().sum::<f32>() + tail.iter().map(|v| v * v).sum::<f32>();
         let scale = (sum2 / dim as f32 + eps).sqrt();
         out.extend(row.iter().zip(w).map(|(v, w)| v / scale * w));
     }
@@ -89,34 +103,73 @@ pub(crate) fn rope_freqs(head_dim: usize, base: f32) -> Vec<f32> {
         .collect()
 }
 
-/// Rotate every head of each `width`-wide row of `x` in place; row `r` sits at
-/// position `pos0 + r`, angles in f32 as candle computes them.
-pub(crate) fn rope(
-    x: &mut [f32],
-    width: usize,
-    d: usize,
-    pos0: usize,
-    freqs: &[f32],
-    pairs: RopePairs,
-) {
-    let half = d / 2;
-    let (mut cos, mut sin) = (vec![0f32; half], vec![0f32; half]);
-    for (r, row) in x.chunks_exact_mut(width).enumerate() {
-        let pos = (pos0 + r) as f32;
-        for i in 0..half {
-            let angle = pos * freqs[i];
-            cos[i] = angle.cos();
-            sin[i] = angle.sin();
+/// Cosines and sines of the rotary angles of `rows` consecutive positions from
+/// `pos0`, computed once per forward pass and shared by every layer with the same
+/// frequencies (angles in f32 as candle computes them).
+pub(crate) struct RopeTable {
+    freqs: Vec<f32>,
+    cos: Vec<f32>,
+    sin: Vec<f32>,
+}
+
+impl RopeTable {
+    pub(crate) fn new(freqs: &[f32], pos0: usize, rows: usize) -> RopeTable {
+        let n = rows * freqs.len();
+        let (mut cos, mut sin) = (Vec::with_capacity(n), Vec::with_capacity(n));
+        for r in 0..rows {
+            let pos = (pos0 + r) as f32;
+            for f in freqs {
+                let angle = pos * f;
+                cos.push(angle.cos());
+                sin.push(angle.sin());
+            }
         }
+        RopeTable {
+            freqs: freqs.to_vec(),
+            cos,
+            sin,
+        }
+    }
+
+    /// Whether this table was built for `freqs`.
+    pub(crate) fn serves(&self, freqs: &[f32]) -> bool {
+        self.freqs == freqs
+    }
+}
+
+/// Rotate every `d`-wide head of each `width`-wide row of `x` in place; row `r` sits
+/// at the table's position `r`.
+#[inline(always)]
+pub(crate) fn rope(x: &mut [f32], width: usize, d: usize, table: &RopeTable, pairs: RopePairs) {
+    let half = d / 2;
+    assert_eq!(
+        table.freqs.len(),
+        half,
+        "rotary table of another head width"
+    );
+    let rows = x.chunks_exact_mut(width);
+    let angles = table
+        .cos
+        .chunks_exact(half)
+        .zip(table.sin.chunks_exact(half));
+    for (row, (cos, sin)) in rows.zip(angles) {
         for head in row.chunks_exact_mut(d) {
-            for i in 0..half {
-                let (a, b) = match pairs {
-                    RopePairs::Adjacent => (2 * i, 2 * i + 1),
-                    RopePairs::Halves => (i, i + half),
-                };
-                let (x0, x1) = (head[a], head[b]);
-                head[a] = x0 * cos[i] - x1 * sin[i];
-                head[b] = x0 * sin[i] + x1 * cos[i];
+            match pairs {
+                RopePairs::Adjacent => {
+                    for (i, (c, s)) in cos.iter().zip(sin).enumerate() {
+                        let (x0, x1) = (head[2 * i], head[2 * i + 1]);
+                        head[2 * i] = x0 * c - x1 * s;
+                        head[2 * i + 1] = x0 * s + x1 * c;
+                    }
+                }
+                RopePairs::Halves => {
+                    let (lo, hi) = head.split_at_mut(half);
+                    for (((a, b), c), s) in lo.iter_mut().zip(hi).zip(cos).zip(sin) {
+                        let (x0, x1) = (*a, *b);
+                        *a = x0 * c - x1 * s;
+                        *b = x0 * s + x1 * c;
+                    }
+                }
             }
         }
     }
@@ -196,9 +249,9 @@ mod tests {
                 let mut scaled = base.clone();
                 scale_rope_freqs(&mut scaled, 1.0 / factor, None);
                 let (mut a, mut b) = (x.clone(), x.clone());
-                rope(&mut a, 2 * d, d, p, &scaled, pairs);
+                rope(&mut a, 2 * d, d, &RopeTable::new(&scaled, p, 1), pairs);
                 let q = (p as f32 / factor) as usize;
-                rope(&mut b, 2 * d, d, q, &base, pairs);
+                rope(&mut b, 2 * d, d, &RopeTable::new(&base, q, 1), pairs);
                 for (u, v) in a.iter().zip(&b) {
                     assert!((u - v).abs() < 1e-5, "factor {factor}: {u} vs {v}");
                 }
@@ -212,5 +265,58 @@ mod tests {
         let mut f = vec![1.0, 0.5, 0.25];
         scale_rope_freqs(&mut f, 1.0, Some(&[1.0, 2.0, 8.0]));
         assert_eq!(f, vec![1.0, 0.25, 0.031_25]);
+    }
+
+    /// The lane-summed RMS norm against the textbook formula in f64 (Zhang & Sennrich
+    /// 2019), on widths with and without a partial last group of lanes.
+    #[test]
+    fn rms_norm_matches_the_formula_in_f64() {
+        for dim in [7, 16, 64, 1000] {
+            let x: Vec<f32> = (0..3 * dim)
+                .map(|i| ((i * 29 % 23) as f32 - 11.0) / 3.0)
+                .collect();
+            let w: Vec<f32> = (0..dim).map(|i| 0.5 + (i % 5) as f32 / 4.0).collect();
+            let got = rms_norm(&x, &w, 1e-6);
+            for (r, row) in x.chunks(dim).enumerate() {
+                let ms = row.iter().map(|&v| (v as f64).powi(2)).sum::<f64>() / dim as f64;
+                for (j, v) in row.iter().enumerate() {
+                    let want = *v as f64 / (ms + 1e-6).sqrt() * w[j] as f64;
+                    let g = got[r * dim + j] as f64;
+                    assert!(
+                        (g - want).abs() <= 1e-5 * (1.0 + want.abs()),
+                        "{dim}: {g} vs {want}"
+                    );
+                }
+            }
+        }
+    }
+
+    /// A rotation by the table of positions `p..p+3` equals rotating each row alone
+    /// by the angle `p·f` (the definition, Su et al. 2021), for both pair layouts.
+    #[test]
+    fn rope_table_rows_rotate_by_their_own_position() {
+        let d = 8;
+        let freqs = rope_freqs(d, 10_000.0);
+        let x: Vec<f32> = (0..3 * 2 * d).map(|i| (i as f32 * 0.37).sin()).collect();
+        for pairs in [RopePairs::Halves, RopePairs::Adjacent] {
+            let mut all = x.clone();
+            rope(&mut all, 2 * d, d, &RopeTable::new(&freqs, 5, 3), pairs);
+            for r in 0..3 {
+                let row = &x[r * 2 * d..(r + 1) * 2 * d];
+                for (h, head) in row.chunks(d).enumerate() {
+                    for i in 0..d / 2 {
+                        let (a, b) = match pairs {
+                            RopePairs::Adjacent => (2 * i, 2 * i + 1),
+                            RopePairs::Halves => (i, i + d / 2),
+                        };
+                        let t = (5 + r) as f64 * freqs[i] as f64;
+                        let (x0, x1) = (head[a] as f64, head[b] as f64);
+                        let at = r * 2 * d + h * d;
+                        assert!((all[at + a] as f64 - (x0 * t.cos() - x1 * t.sin())).abs() < 1e-5);
+                        assert!((all[at + b] as f64 - (x0 * t.sin() + x1 * t.cos())).abs() < 1e-5);
+                    }
+                }
+            }
+        }
     }
 }

@@ -11,9 +11,9 @@ use crate::guard::screen;
 use crate::judge::anchors::consensus_index;
 use crate::judge::grade::summarize;
 use crate::probes::length::length_probe;
-use crate::probes::{pair_outcomes, set_verdicts};
 use crate::probes::ranking::rank;
 use crate::probes::selfpref::self_preference;
+use crate::probes::{pair_outcomes, set_verdicts};
 use crate::stats::bootstrap::{bootstrap_interval, IntervalMethod};
 use crate::stats::pairwise::position_bias;
 use crate::vet::{
@@ -375,25 +375,27 @@ fn pairwise(
     });
     let (mut human, mut human_pairs) = (Vec::new(), 0);
     if let Some(v) = &vetted_rules {
-                if let Some(k) = v.criteria.iter().find(|k| k.criterion == criterion) {
-                    human_pairs = k.n_pairs;
-                    human = k
-                        .methods
-                        .iter()
-                        .map(|m| HumanAgreement {
-                            method: if m.out_of_sample {
-                                format!("{} (tie band scored out of sample)", m.method)
-                            } else {
-                                m.method.clone()
-                            },
-                            accuracy: m.accuracy,
-                            accuracy_ci: m.accuracy_ci.as_ref().map(|i| (i.lower, i.upper)),
-                            kappa: m.kappa,
-                        })
-                        .collect();
-                }
+        if let Some(k) = v.criteria.iter().find(|k| k.criterion == criterion) {
+            human_pairs = k.n_pairs;
+            human = k
+                .methods
+                .iter()
+                .map(|m| HumanAgreement {
+                    method: if m.out_of_sample {
+                        format!("{} (tie band scored out of sample)", m.method)
+                    } else {
+                        m.method.clone()
+                    },
+                    accuracy: m.accuracy,
+                    accuracy_ci: m.accuracy_ci.as_ref().map(|i| (i.lower, i.upper)),
+                    kappa: m.kappa,
+                })
+                .collect();
+        }
     } else if inp.preferences.is_some() {
-        notes.push("no judged pair was compared by humans: the ranking uses the calibrated rule".into());
+        notes.push(
+            "no judged pair was compared by humans: the ranking uses the calibrated rule".into(),
+        );
     }
     Ok(PairwiseSection {
         dir: c.dir.clone(),
@@ -563,7 +565,9 @@ fn items(inp: &Inputs, criteria: &[CriterionInfo]) -> Vec<ItemView> {
         .collect();
     let mut grades: BTreeMap<(String, String), BTreeMap<String, Vec<ItemGrade>>> = BTreeMap::new();
     for r in inp.runs.iter().flat_map(|run| &run.records) {
-        grades.entry((r.question_id.clone(), r.system.clone())).or_default();
+        grades
+            .entry((r.question_id.clone(), r.system.clone()))
+            .or_default();
     }
     let labels = human_scores(inp);
     for (name, kind, records) in sources {
@@ -575,16 +579,19 @@ fn items(inp: &Inputs, criteria: &[CriterionInfo]) -> Vec<ItemView> {
                 continue;
             };
             let human = labels.get(&item_key(r)).map_or(&[][..], Vec::as_slice);
-            per_item.entry(r.criterion.clone()).or_default().push(ItemGrade {
-                source: name.to_string(),
-                kind,
-                expected: r.expected,
-                argmax: r.argmax.clone(),
-                probabilities: r.probabilities.clone(),
-                captured_mass: (kind != SourceKind::Calibrated).then_some(r.captured_mass),
-                low_mass: r.low_mass,
-                disputed: is_disputed(r, c, consensus_label(c, human)),
-            });
+            per_item
+                .entry(r.criterion.clone())
+                .or_default()
+                .push(ItemGrade {
+                    source: name.to_string(),
+                    kind,
+                    expected: r.expected,
+                    argmax: r.argmax.clone(),
+                    probabilities: r.probabilities.clone(),
+                    captured_mass: (kind != SourceKind::Calibrated).then_some(r.captured_mass),
+                    low_mass: r.low_mass,
+                    disputed: is_disputed(r, c, consensus_label(c, human)),
+                });
         }
     }
     let answers = answers_by_item(inp);
@@ -800,7 +807,12 @@ mod tests {
             vec![
                 ("before", SourceKind::Run, Some(0.9), false),
                 ("after", SourceKind::Run, Some(0.9), true),
-                ("calibrated judge (out of fold)", SourceKind::Calibrated, None, false),
+                (
+                    "calibrated judge (out of fold)",
+                    SourceKind::Calibrated,
+                    None,
+                    false
+                ),
             ]
         );
         assert_eq!(q1.human_consensus.as_deref(), Some("5"));

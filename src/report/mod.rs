@@ -20,12 +20,12 @@ use serde::Serialize;
 use crate::data::{AnswerRecord, LabelRow, PreferenceRow};
 use crate::judge::grade::SummaryRow;
 use crate::judge::{GradeRecord, PairRecord, ProbeRecord};
-use crate::vet::RankingRule;
 use crate::probes::length::LengthProbe;
 use crate::probes::ranking::Ranking;
 use crate::probes::selfpref::SelfPreference;
 use crate::rubric::Rubric;
 use crate::stats::calibration::ReliabilityBin;
+use crate::vet::RankingRule;
 
 /// Name and version of the JSON format; bumped on any incompatible change.
 pub const SCHEMA: &str = "assize.report/2";

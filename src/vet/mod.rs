@@ -56,8 +56,8 @@ pub use ceiling::{HumanCeiling, RaterCeiling};
 #[cfg(test)]
 pub(crate) use items::nearest_position;
 pub use pairwise::{
-    judged_pairs, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs, MethodAgreement,
-    PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule, ranking_rule,
+    judged_pairs, ranking_rule, rule_verdicts, vet_pair_inputs, vet_pairs, ChosenRule, JudgedPairs,
+    MethodAgreement, PairCriterionReport, PairInputs, PairKey, PairVetReport, RankingRule,
 };
 pub use text::{choice_text, report_text};
 pub use variants::{

@@ -38,7 +38,9 @@ use crate::stats::StatsError;
 /// Cross-validation folds (fewer when there are fewer questions).
 pub const FOLDS: usize = 5;
 /// Tie bands tried: 0 and the |strength| quantiles of the training pairs at these shares.
-const BAND_SHARES: [f64; 12] = [0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.5, 0.55, 0.6];
+const BAND_SHARES: [f64; 12] = [
+    0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.5, 0.55, 0.6,
+];
 
 /// A way of turning judge outputs into one verdict per pair.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
@@ -217,7 +219,10 @@ impl Prepared {
         p.scales = [
             rms((0..p.evidence.len()).map(|i| p.strength(i, None, false))),
             rms((0..p.evidence.len()).map(|i| p.strength(i, None, true))),
-            rms(p.evidence.iter().filter_map(|e| e.points.map(|(a, b)| a - b))),
+            rms(p
+                .evidence
+                .iter()
+                .filter_map(|e| e.points.map(|(a, b)| a - b))),
         ];
         Ok(p)
     }
@@ -268,7 +273,9 @@ impl Prepared {
         match rule {
             PairRule::Pointwise => points(),
             PairRule::CalibratedTieBand => self.strength(i, order, false),
-            PairRule::CalibratedPointwise => self.strength(i, order, false) / self.scales[0] + points(),
+            PairRule::CalibratedPointwise => {
+                self.strength(i, order, false) / self.scales[0] + points()
+            }
             PairRule::PanelPointwise => self.strength(i, order, true) / self.scales[1] + points(),
             _ => unreachable!("only tie-band rules have a strength"),
         }
@@ -312,7 +319,8 @@ impl Prepared {
         mags.sort_by(f64::total_cmp);
         let mut candidates = vec![0.0];
         for q in BAND_SHARES {
-            candidates.push(mags[((q * mags.len() as f64).ceil() as usize).clamp(1, mags.len()) - 1]);
+            candidates
+                .push(mags[((q * mags.len() as f64).ceil() as usize).clamp(1, mags.len()) - 1]);
         }
         let hits = |band: f64| {
             train
@@ -331,7 +339,13 @@ impl Prepared {
     }
 
     /// Verdicts of `rule` on `test`, its band (if any) fitted on `train` only.
-    fn held_out(&self, rule: PairRule, train: &[usize], test: &[usize], human: &[usize]) -> Vec<(usize, usize)> {
+    fn held_out(
+        &self,
+        rule: PairRule,
+        train: &[usize],
+        test: &[usize],
+        human: &[usize],
+    ) -> Vec<(usize, usize)> {
         let band = self.fit_band(rule, train, human);
         test.iter()
             .map(|&i| (i, category(self.verdict(rule, i, band, None))))
@@ -412,7 +426,13 @@ pub fn choose(
         .iter()
         .filter_map(|&r| {
             let v = out_of_sample(p, r, pairs, human, seed)?;
-            Some((r, pairs.iter().map(|i| f64::from(u8::from(v[i] == human[*i]))).collect()))
+            Some((
+                r,
+                pairs
+                    .iter()
+                    .map(|i| f64::from(u8::from(v[i] == human[*i])))
+                    .collect(),
+            ))
         })
         .collect();
     let n = pairs.len() as f64;
@@ -426,7 +446,10 @@ pub fn choose(
     };
     let mut ordered: Vec<&(PairRule, Vec<f64>)> = hits.iter().collect();
     ordered.sort_by_key(|(r, _)| *r);
-    ordered.into_iter().find(|(_, h)| within(h)).map(|(r, _)| *r)
+    ordered
+        .into_iter()
+        .find(|(_, h)| within(h))
+        .map(|(r, _)| *r)
 }
 
 /// The choice procedure scored by nested cross-validation: per outer question fold,

@@ -108,7 +108,10 @@ fn noise_only_judge_stays_at_chance_out_of_sample() {
             .filter(|r| p.supports(**r))
             .map(|&r| {
                 let band = p.fit_band(r, &all, &human);
-                let v = all.iter().map(|&i| (i, category(p.verdict(r, i, band, None)))).collect();
+                let v = all
+                    .iter()
+                    .map(|&i| (i, category(p.verdict(r, i, band, None))))
+                    .collect();
                 accuracy(&v, &human)
             })
             .fold(0.0, f64::max);
@@ -135,7 +138,12 @@ fn calibration_beats_raw_reading_of_a_slot_biased_judge() {
     };
     let (p, human) = synth(&s, 150, 3);
     let all: Vec<usize> = (0..human.len()).collect();
-    let acc = |r| accuracy(&out_of_sample(&p, r, &all, &human, 1).expect("folds"), &human);
+    let acc = |r| {
+        accuracy(
+            &out_of_sample(&p, r, &all, &human, 1).expect("folds"),
+            &human,
+        )
+    };
     let consistency = |r| {
         all.iter()
             .filter(|&&i| p.verdict(r, i, 0.0, Some(0)) == p.verdict(r, i, 0.0, Some(1)))
@@ -147,8 +155,14 @@ fn calibration_beats_raw_reading_of_a_slot_biased_judge() {
         acc(PairRule::SingleOrder),
         acc(PairRule::Debiased),
     );
-    assert!(cal > single + 0.2 && cal >= deb - 0.03, "{cal} {single} {deb}");
-    let (after, before) = (consistency(PairRule::Calibrated), consistency(PairRule::Debiased));
+    assert!(
+        cal > single + 0.2 && cal >= deb - 0.03,
+        "{cal} {single} {deb}"
+    );
+    let (after, before) = (
+        consistency(PairRule::Calibrated),
+        consistency(PairRule::Debiased),
+    );
     assert!(after > before + 0.5, "{after} {before}");
     assert!((p.priors[0].first / p.priors[0].second / 16.0 - 1.0).abs() < 0.15);
 }
@@ -202,7 +216,9 @@ fn tie_band_is_the_smallest_best_candidate() {
     let band = p.fit_band(PairRule::Pointwise, &[0, 1, 2, 3], &human);
     let r = rms(diffs.iter().copied());
     assert!((band - 0.05 / r).abs() < 1e-12, "{band}");
-    let v: Vec<usize> = (0..4).map(|i| category(p.verdict(PairRule::Pointwise, i, band, None))).collect();
+    let v: Vec<usize> = (0..4)
+        .map(|i| category(p.verdict(PairRule::Pointwise, i, band, None)))
+        .collect();
     assert_eq!(v, human);
     assert!(!p.supports(PairRule::Panel));
 }

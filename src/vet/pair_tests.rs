@@ -165,7 +165,11 @@ fn grades_and_a_panel_add_rules_and_the_choice_reads_the_grades() {
         recs.push(pair(&q, "y", "x", Winner::A));
         let x_better = i % 3 != 0;
         for (sys, good) in [("x", x_better), ("y", !x_better)] {
-            let probs = if good { [0.0, 0.0, 0.0, 0.0, 1.0] } else { [1.0, 0.0, 0.0, 0.0, 0.0] };
+            let probs = if good {
+                [0.0, 0.0, 0.0, 0.0, 1.0]
+            } else {
+                [1.0, 0.0, 0.0, 0.0, 0.0]
+            };
             let mut g = record(&q, "c", Scale::points(1, 5), &probs);
             g.system = sys.into();
             grades.push(g);
@@ -196,15 +200,24 @@ fn grades_and_a_panel_add_rules_and_the_choice_reads_the_grades() {
             "panel + pointwise"
         ]
     );
-    assert!(c.methods.iter().all(|m| m.out_of_sample == m.rule.is_some_and(|r| r.fitted())));
+    assert!(c
+        .methods
+        .iter()
+        .all(|m| m.out_of_sample == m.rule.is_some_and(|r| r.fitted())));
     close(c.calibration.before.consistency, 0.0, 1e-12);
     close(c.calibration.before.first_slot_rate, 1.0, 1e-12);
     let point = &c.methods[5];
     close(point.accuracy, 1.0, 1e-12);
-    assert!(point.order.is_none(), "order cannot enter pointwise verdicts");
+    assert!(
+        point.order.is_none(),
+        "order cannot enter pointwise verdicts"
+    );
     let chosen = c.chosen.as_ref().expect("a rule is chosen");
     assert!(chosen.name.contains("pointwise"), "{}", chosen.name);
     assert!(chosen.nested_accuracy.expect("several questions") > 0.9);
     let text = report_text(&dummy_report(), Some(&r));
-    assert!(text.contains("chosen rule") && text.contains("slot prior"), "{text}");
+    assert!(
+        text.contains("chosen rule") && text.contains("slot prior"),
+        "{text}"
+    );
 }

@@ -236,10 +236,16 @@ fn group(pairs: &[PairRecord]) -> Result<BTreeMap<(String, PairKey), Vec<&PairRe
             continue;
         }
         let list = grouped
-            .entry((r.criterion.clone(), key(&r.question_id, &r.first, &r.second)))
+            .entry((
+                r.criterion.clone(),
+                key(&r.question_id, &r.first, &r.second),
+            ))
             .or_default();
         if list.iter().any(|o| o.first == r.first) {
-            problems.push(format!("`{}`: judged more than once in this order", r.key()));
+            problems.push(format!(
+                "`{}`: judged more than once in this order",
+                r.key()
+            ));
             continue;
         }
         list.push(r);
@@ -269,17 +275,23 @@ fn pointwise_scores(
         if criterion != "overall" && g.criterion != criterion {
             continue;
         }
-        let Some(c) = rubric.criterion(&g.criterion) else { continue };
+        let Some(c) = rubric.criterion(&g.criterion) else {
+            continue;
+        };
         let v = c.scale.values();
         let (lo, hi) = (v[0], v[v.len() - 1]);
         if !g.expected.is_finite() || hi <= lo {
             continue;
         }
-        let e = sums.entry((g.question_id.clone(), g.system.clone())).or_default();
+        let e = sums
+            .entry((g.question_id.clone(), g.system.clone()))
+            .or_default();
         e.0 += (g.expected - lo) / (hi - lo);
         e.1 += 1;
     }
-    sums.into_iter().map(|(k, (s, n))| (k, s / n as f64)).collect()
+    sums.into_iter()
+        .map(|(k, (s, n))| (k, s / n as f64))
+        .collect()
 }
 
 /// Joins every judge's records (and grades) into evidence per criterion. Pairs the
@@ -303,7 +315,10 @@ pub fn judged_pairs(inputs: &PairInputs) -> Result<Vec<JudgedPairs>, VetError> {
         };
         let mut judges = vec![first];
         for g in &groups[1..] {
-            match g.get(&(criterion.clone(), k.clone())).and_then(|r| both_orders(r, k)) {
+            match g
+                .get(&(criterion.clone(), k.clone()))
+                .and_then(|r| both_orders(r, k))
+            {
                 Some(o) => judges.push(o),
                 None => break,
             }
@@ -401,7 +416,11 @@ pub fn vet_pair_inputs(
 }
 
 /// The raw judge's position bias on the labelled pairs (A = the alphabetically first system).
-fn raw_position_bias(p: &Prepared, labelled: &[usize], criterion: &str) -> Result<PositionBias, VetError> {
+fn raw_position_bias(
+    p: &Prepared,
+    labelled: &[usize],
+    criterion: &str,
+) -> Result<PositionBias, VetError> {
     let judged: Vec<JudgedPair> = labelled
         .iter()
         .map(|&i| {
@@ -429,9 +448,16 @@ fn criterion_report(
     let p = &jp.prepared;
     let criterion = &jp.criterion;
     // Human category per evidence index (2 = tie where unlabelled; never read there).
-    let human: Vec<usize> = jp.keys.iter().map(|k| majority.get(k).copied().unwrap_or(2)).collect();
+    let human: Vec<usize> = jp
+        .keys
+        .iter()
+        .map(|k| majority.get(k).copied().unwrap_or(2))
+        .collect();
     let calibration = primary_calibration(p, criterion)?;
-    let rules: Vec<PairRule> = PairRule::DISPLAY.into_iter().filter(|r| p.supports(*r)).collect();
+    let rules: Vec<PairRule> = PairRule::DISPLAY
+        .into_iter()
+        .filter(|r| p.supports(*r))
+        .collect();
     let mut notes = Vec::new();
     let graded = p.evidence.iter().filter(|e| e.points.is_some()).count();
     if graded < p.evidence.len() {
@@ -469,7 +495,10 @@ fn criterion_report(
                 (
                     m.as_ref().map(|m| m.accuracy),
                     m.and_then(|m| m.accuracy_ci),
-                    picks.into_iter().map(|(r, n)| (r.name().to_string(), n)).collect(),
+                    picks
+                        .into_iter()
+                        .map(|(r, n)| (r.name().to_string(), n))
+                        .collect(),
                 )
             }
             None => (None, None, Vec::new()),
@@ -515,7 +544,12 @@ fn primary_calibration(p: &Prepared, criterion: &str) -> Result<SlotCalibration,
 
 /// Consistency and first-slot rate of a rule's verdicts read from one order at a time;
 /// `None` for the pointwise rule, where order cannot enter.
-fn rule_order_effect(p: &Prepared, rule: PairRule, band: f64, idx: &[usize]) -> Option<OrderEffect> {
+fn rule_order_effect(
+    p: &Prepared,
+    rule: PairRule,
+    band: f64,
+    idx: &[usize],
+) -> Option<OrderEffect> {
     if rule == PairRule::Pointwise {
         return None;
     }
@@ -619,7 +653,10 @@ pub fn ranking_rule(
     criterion: &str,
     vetted: Option<&PairVetReport>,
 ) -> Result<Option<RankingRule>, VetError> {
-    let Some(jp) = judged_pairs(inputs)?.into_iter().find(|j| j.criterion == criterion) else {
+    let Some(jp) = judged_pairs(inputs)?
+        .into_iter()
+        .find(|j| j.criterion == criterion)
+    else {
         return Ok(None);
     };
     let chosen = vetted
@@ -635,6 +672,8 @@ pub fn ranking_rule(
         tie_band: band,
         chosen_against_humans: chosen.is_some(),
         calibration,
-        verdicts: rule_verdicts(&jp, rule, band.unwrap_or(0.0)).into_iter().collect(),
+        verdicts: rule_verdicts(&jp, rule, band.unwrap_or(0.0))
+            .into_iter()
+            .collect(),
     }))
 }

@@ -350,7 +350,11 @@ fn pairs(s: &mut String, p: &PairVetReport) {
                 String::new()
             }
         );
-        let _ = writeln!(s, "    position (raw judge): {}", c.position_bias.verdict_line);
+        let _ = writeln!(
+            s,
+            "    position (raw judge): {}",
+            c.position_bias.verdict_line
+        );
         slot_prior(s, c);
         let _ = writeln!(
             s,
@@ -358,9 +362,14 @@ fn pairs(s: &mut String, p: &PairVetReport) {
             "rule", "agreement", "95% CI", "kappa", "95% CI", "consistency", "first slot"
         );
         for m in &c.methods {
-            let (cons, first) = m.order.map_or(("order-free".to_string(), "-".to_string()), |o| {
-                (format!("{:.2}", o.consistency), format!("{:.2}", o.first_slot_rate))
-            });
+            let (cons, first) = m
+                .order
+                .map_or(("order-free".to_string(), "-".to_string()), |o| {
+                    (
+                        format!("{:.2}", o.consistency),
+                        format!("{:.2}", o.first_slot_rate),
+                    )
+                });
             let _ = writeln!(
                 s,
                 "    {:<24} {:>9.3} {:<18} {:>7} {:<18} {:>11} {:>10}{}",
@@ -371,7 +380,11 @@ fn pairs(s: &mut String, p: &PairVetReport) {
                 ci(m.kappa_ci.as_ref()),
                 cons,
                 first,
-                if m.out_of_sample { "  (tie band fitted, scored out of sample)" } else { "" }
+                if m.out_of_sample {
+                    "  (tie band fitted, scored out of sample)"
+                } else {
+                    ""
+                }
             );
         }
         for n in &c.notes {

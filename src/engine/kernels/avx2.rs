@@ -7,8 +7,8 @@
 //! integer sums are exact. Reached only through a `Kernels` value for `Isa::Avx2` or
 //! `Isa::AvxVnni`; never called on a processor without those instructions.
 
+use super::super::ops::{Activation, RopePairs, RopeTable};
 use super::{softmax, Acts, KeyValues, ATTN_TILE, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK};
-use super::super::ops::Activation;
 use std::arch::x86_64::*;
 
 /// Bytes ahead of each weight load that are requested early (as in `avx512.rs`).
@@ -313,10 +313,8 @@ unsafe fn q6k_body<const R: usize, const VNNI: bool>(
                             (top2::<0>(h), top2::<-2>(h))
                         };
                         let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), tl);
-                        let hi = _mm256_or_si256(
-                            _mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask),
-                            th,
-                        );
+                        let hi =
+                            _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), th);
                         let off = b * QK + s * 32 + g * 8;
                         let dst = if gp == 0 { &mut ia } else { &mut ib };
                         for i in 0..R {
@@ -406,10 +404,8 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
                             _ => (fifth::<-2>(h), fifth::<-3>(h)),
                         };
                         let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), fl);
-                        let hi = _mm256_or_si256(
-                            _mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask),
-                            fh,
-                        );
+                        let hi =
+                            _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), fh);
                         let off = blk * 32 + g * 8;
                         for i in 0..R {
                             let x = xq[i].add(off);
@@ -614,4 +610,28 @@ unsafe fn weighted<const U: usize>(op: *mut f32, vp: *const f32, stride: usize, 
 #[target_feature(enable = "avx2,fma")]
 pub(super) unsafe fn gate(act: Activation, g: &mut [f32], u: &[f32]) {
     super::scalar::gate(act, g, u)
+}
+
+/// `super::rms_norm` compiled for this family's registers.
+///
+/// # Safety
+/// The processor has AVX2 and FMA.
+#[target_feature(enable = "avx2,fma")]
+pub(super) unsafe fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+    super::scalar::rms_norm(x, w, eps)
+}
+
+/// `super::rope` compiled for this family's registers.
+///
+/// # Safety
+/// The processor has AVX2 and FMA.
+#[target_feature(enable = "avx2,fma")]
+pub(super) unsafe fn rope(
+    x: &mut [f32],
+    width: usize,
+    d: usize,
+    table: &RopeTable,
+    pairs: RopePairs,
+) {
+    super::scalar::rope(x, width, d, table, pairs)
 }

@@ -4,8 +4,8 @@
 //! a `Kernels` value for `Isa::Avx512`; never called on a processor without those
 //! instructions.
 
+use super::super::ops::{Activation, RopePairs, RopeTable};
 use super::{softmax, Acts, KeyValues, ATTN_TILE, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK};
-use super::super::ops::Activation;
 use std::arch::x86_64::*;
 
 /// Broadcast 4 activation quants (one i32) to all lanes.
@@ -106,8 +106,7 @@ pub(super) unsafe fn q4k<const R: usize>(
                 }
             }
             let sa = _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32) as *const _));
-            let sbv =
-                _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32 + 16) as *const _));
+            let sbv = _mm512_cvtepu8_epi32(_mm_load_si128(sb.add(2048 + sp * 32 + 16) as *const _));
             for i in 0..R {
                 let t = _mm512_add_epi32(
                     _mm512_mullo_epi32(ia[i], sa),
@@ -205,8 +204,7 @@ pub(super) unsafe fn q6k<const R: usize>(
                 }
             }
             let sa = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32) as *const _));
-            let sbv =
-                _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32 + 16) as *const _));
+            let sbv = _mm512_cvtepi8_epi32(_mm_load_si128(sb.add(3072 + s * 32 + 16) as *const _));
             for i in 0..R {
                 let t = _mm512_add_epi32(
                     _mm512_mullo_epi32(ia[i], sa),
@@ -328,9 +326,8 @@ pub(super) unsafe fn q8_0<const R: usize>(
 ) {
     let kb = a.kb;
     let xq: [*const i8; R] = std::array::from_fn(|i| a.q.as_ptr().add((r0 + i) * kb * QK));
-    let c = |i: usize, blk: usize| {
-        _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk))
-    };
+    let c =
+        |i: usize, blk: usize| _mm512_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk));
     let mut acc = [_mm512_setzero_ps(); R];
     for b in 0..kb {
         let end = nb.min(b * 8 + 8);
@@ -500,4 +497,28 @@ unsafe fn heads<const C: usize>(args: Args<'_, '_>) {
 #[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
 pub(super) unsafe fn gate(act: Activation, g: &mut [f32], u: &[f32]) {
     super::scalar::gate(act, g, u)
+}
+
+/// `super::rms_norm` compiled for this family's registers.
+///
+/// # Safety
+/// The processor has AVX-512 F/BW/VL, AVX2 and FMA.
+#[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
+pub(super) unsafe fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+    super::scalar::rms_norm(x, w, eps)
+}
+
+/// `super::rope` compiled for this family's registers.
+///
+/// # Safety
+/// The processor has AVX-512 F/BW/VL, AVX2 and FMA.
+#[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
+pub(super) unsafe fn rope(
+    x: &mut [f32],
+    width: usize,
+    d: usize,
+    table: &RopeTable,
+    pairs: RopePairs,
+) {
+    super::scalar::rope(x, width, d, table, pairs)
 }

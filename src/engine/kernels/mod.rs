@@ -52,7 +52,7 @@ mod scalar;
 use candle_core::quantized::{GgmlDType, QTensor};
 use candle_core::Device;
 
-use super::ops::{exp, Activation};
+use super::ops::{exp, Activation, RopePairs, RopeTable};
 
 /// Output columns of one tile (one 512-bit register of f32 / i32 lanes).
 const TILE_N: usize = 16;
@@ -369,6 +369,40 @@ pub fn gate(kernels: Kernels, act: Activation, g: &mut [f32], u: &[f32]) {
         #[cfg(target_arch = "x86_64")]
         Isa::Avx2 | Isa::AvxVnni => unsafe { avx2::gate(act, g, u) },
         _ => scalar::gate(act, g, u),
+    }
+}
+
+/// RMS norm of each `w.len()`-wide row (`ops::rms_norm`), compiled for each family's
+/// vector width; the same bits on every family (lanes added in a fixed order, no
+/// fused steps).
+pub fn rms_norm(kernels: Kernels, x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+    // SAFETY: `kernels` proves the features.
+    match kernels.isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 => unsafe { avx512::rms_norm(x, w, eps) },
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx2 | Isa::AvxVnni => unsafe { avx2::rms_norm(x, w, eps) },
+        _ => scalar::rms_norm(x, w, eps),
+    }
+}
+
+/// Rotary embedding of every head of each row (`ops::rope`), compiled for each family's
+/// vector width; the same bits on every family.
+pub(crate) fn rope(
+    kernels: Kernels,
+    x: &mut [f32],
+    width: usize,
+    d: usize,
+    table: &RopeTable,
+    pairs: RopePairs,
+) {
+    // SAFETY: `kernels` proves the features.
+    match kernels.isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 => unsafe { avx512::rope(x, width, d, table, pairs) },
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx2 | Isa::AvxVnni => unsafe { avx2::rope(x, width, d, table, pairs) },
+        _ => scalar::rope(x, width, d, table, pairs),
     }
 }
 
@@ -1155,7 +1189,9 @@ mod tests {
     #[test]
     fn uncovered_shapes_and_types_are_declined() {
         let odd_n = quantised(GgmlDType::Q4K, 24, 256, 1);
-        assert!(Packed::new(&odd_n, Kernels::best()).expect("pack").is_none());
+        assert!(Packed::new(&odd_n, Kernels::best())
+            .expect("pack")
+            .is_none());
         let q4_1 = quantised(GgmlDType::Q4_1, 16, 256, 1);
         assert!(Packed::new(&q4_1, Kernels::best()).expect("pack").is_none());
     }
@@ -1187,7 +1223,8 @@ mod tests {
 
     /// Every weight format, with inner widths that end in partial activation
     /// super-blocks and odd block counts, and row counts that use the four-row and
-    /// the one-row kernels: `isa`'s products, activation quants and gated activations
+    /// the one-row kernels: `isa`'s products, activation quants, gated activations, RMS
+    /// norms and rotary embeddings
     /// equal the scalar kernels' bit for bit.
     fn products_equal_scalar(isa: Isa, test: &str) {
         let Some(kernels) = family(isa, test) else {
@@ -1200,6 +1237,19 @@ mod tests {
             gate(kernels, act, &mut ours, &up);
             gate(scalar, act, &mut reference, &up);
             assert_eq!(bits(&ours), bits(&reference), "{isa} {act:?}");
+        }
+        let (x, w) = (values(5, 999, 3), values(1, 999, 4));
+        assert_eq!(
+            bits(&rms_norm(kernels, &x, &w, 1e-6)),
+            bits(&rms_norm(scalar, &x, &w, 1e-6)),
+            "{isa} RMS norm"
+        );
+        let table = RopeTable::new(&crate::engine::ops::rope_freqs(64, 1e4), 7, 5);
+        for pairs in [RopePairs::Halves, RopePairs::Adjacent] {
+            let (mut ours, mut reference) = (values(5, 256, 6), values(5, 256, 6));
+            rope(kernels, &mut ours, 256, 64, &table, pairs);
+            rope(scalar, &mut reference, 256, 64, &table, pairs);
+            assert_eq!(bits(&ours), bits(&reference), "{isa} RoPE {pairs:?}");
         }
         for (dtype, n, k) in [
             (GgmlDType::Q4K, 48, 768),
@@ -1257,13 +1307,23 @@ mod tests {
     /// softmax(q·k · scale) · v over positions `lo..=p` of rows at `stride`.
     fn textbook(q: &[f32], kv: &KeyValues<'_>, d: usize, scale: f64) -> Vec<f64> {
         let s: Vec<f64> = (kv.lo..=kv.p)
-            .map(|j| (0..d).map(|i| q[i] as f64 * kv.keys[j * kv.stride + i] as f64).sum::<f64>() * scale)
+            .map(|j| {
+                (0..d)
+                    .map(|i| q[i] as f64 * kv.keys[j * kv.stride + i] as f64)
+                    .sum::<f64>()
+                    * scale
+            })
             .collect();
         let max = s.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
         let w: Vec<f64> = s.iter().map(|x| (x - max).exp()).collect();
         let z: f64 = w.iter().sum();
         (0..d)
-            .map(|i| (kv.lo..=kv.p).zip(&w).map(|(j, w)| w / z * kv.vals[j * kv.stride + i] as f64).sum())
+            .map(|i| {
+                (kv.lo..=kv.p)
+                    .zip(&w)
+                    .map(|(j, w)| w / z * kv.vals[j * kv.stride + i] as f64)
+                    .sum()
+            })
             .collect()
     }
 
@@ -1275,11 +1335,24 @@ mod tests {
         let Some(kernels) = family(isa, test) else {
             return;
         };
-        for (d, lo, p) in [(64, 0, 40), (128, 3, 37), (256, 0, 9), (48, 5, 70), (40, 0, 33), (36, 2, 20)] {
+        for (d, lo, p) in [
+            (64, 0, 40),
+            (128, 3, 37),
+            (256, 0, 9),
+            (48, 5, 70),
+            (40, 0, 33),
+            (36, 2, 20),
+        ] {
             let stride = d + 8;
             let keys = values(p + 1, stride, 3);
             let vals = values(p + 1, stride, 4);
-            let kv = KeyValues { keys: &keys, vals: &vals, stride, lo, p };
+            let kv = KeyValues {
+                keys: &keys,
+                vals: &vals,
+                stride,
+                lo,
+                p,
+            };
             let q = values(3, d, 5);
             let scale = 1.0 / (d as f32).sqrt();
             let (mut out, mut scratch) = (vec![0f32; q.len()], Vec::new());
@@ -1287,7 +1360,10 @@ mod tests {
             for (h, (qh, oh)) in q.chunks(d).zip(out.chunks(d)).enumerate() {
                 let want = textbook(qh, &kv, d, scale as f64);
                 for (got, want) in oh.iter().zip(&want) {
-                    assert!((*got as f64 - want).abs() < 1e-5, "{isa} d {d} head {h}: {got} vs {want}");
+                    assert!(
+                        (*got as f64 - want).abs() < 1e-5,
+                        "{isa} d {d} head {h}: {got} vs {want}"
+                    );
                 }
                 let mut alone = vec![0f32; d];
                 attend(kernels, qh, &kv, d, scale, &mut alone, &mut scratch);

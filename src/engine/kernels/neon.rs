@@ -187,7 +187,8 @@ unsafe fn q4k_body<const R: usize, const DOT: bool>(
                         .map(|p| {
                             let s = a.sum32_pairs[(r * kb + b) * 4 + p];
                             let mn = &tile[2176 + p * 32 + (4 * qq + c) * 2..];
-                            mn[0] as i32 * (s as i16 as i32) + mn[1] as i32 * ((s >> 16) as i16 as i32)
+                            mn[0] as i32 * (s as i16 as i32)
+                                + mn[1] as i32 * ((s >> 16) as i16 as i32)
                         })
                         .sum::<i32>()
                 });
@@ -225,7 +226,8 @@ unsafe fn q6k_body<const R: usize, const DOT: bool>(
             let c0 = qq * 16;
             let mut sumi = [vdupq_n_s32(0); R];
             for s in 0..8 {
-                let c = |i: usize, sub: usize| vdupq_n_s32(a.corr16[((r0 + i) * kb + b) * 16 + sub]);
+                let c =
+                    |i: usize, sub: usize| vdupq_n_s32(a.corr16[((r0 + i) * kb + b) * 16 + sub]);
                 let mut ia: [int32x4_t; R] = std::array::from_fn(|i| c(i, 2 * s));
                 let mut ib: [int32x4_t; R] = std::array::from_fn(|i| c(i, 2 * s + 1));
                 for gp in 0..2 {
@@ -246,7 +248,8 @@ unsafe fn q6k_body<const R: usize, const DOT: bool>(
                         let dst = if gp == 0 { &mut ia } else { &mut ib };
                         for i in 0..R {
                             let x = xq[i].add(off);
-                            dst[i] = dot4::<DOT>(dot4::<DOT>(dst[i], lo, bcast(x)), hi, bcast(x.add(4)));
+                            dst[i] =
+                                dot4::<DOT>(dot4::<DOT>(dst[i], lo, bcast(x)), hi, bcast(x.add(4)));
                         }
                     }
                 }
@@ -308,7 +311,8 @@ unsafe fn q5_body<const R: usize, const DOT: bool>(
                         let off = blk * 32 + g * 8;
                         for i in 0..R {
                             let x = xq[i].add(off);
-                            ia[i] = dot4::<DOT>(dot4::<DOT>(ia[i], lo, bcast(x)), hi, bcast(x.add(4)));
+                            ia[i] =
+                                dot4::<DOT>(dot4::<DOT>(ia[i], lo, bcast(x)), hi, bcast(x.add(4)));
                         }
                     }
                     let d = lanes(|col| f16_at(tile, 640 + half * 32 + (4 * qq + col) * 2));
@@ -400,7 +404,11 @@ pub(super) unsafe fn attend(
             for j in t0..t1 {
                 let mut a = vdupq_n_f32(0.0);
                 for c in 0..c4 {
-                    a = vfmaq_f32(a, vld1q_f32(qp.add(4 * c)), vld1q_f32(kp.add(j * stride + 4 * c)));
+                    a = vfmaq_f32(
+                        a,
+                        vld1q_f32(qp.add(4 * c)),
+                        vld1q_f32(kp.add(j * stride + 4 * c)),
+                    );
                 }
                 row[j - lo] = vaddvq_f32(a) * scale;
             }
@@ -418,7 +426,11 @@ pub(super) unsafe fn attend(
             for c in 0..c4 {
                 let mut o = vld1q_f32(op.add(4 * c));
                 for (j, &wj) in w.iter().enumerate() {
-                    o = vfmaq_f32(o, vdupq_n_f32(wj), vld1q_f32(vp.add((t0 + j) * stride + 4 * c)));
+                    o = vfmaq_f32(
+                        o,
+                        vdupq_n_f32(wj),
+                        vld1q_f32(vp.add((t0 + j) * stride + 4 * c)),
+                    );
                 }
                 vst1q_f32(op.add(4 * c), o);
             }

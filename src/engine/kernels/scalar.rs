@@ -6,7 +6,7 @@
 //! steps as fused multiply-adds in the order a vector lane runs them, so every family
 //! gives these bits. Never reads outside the tile or rows it is given.
 
-use super::super::ops::{activate, Activation};
+use super::super::ops::{activate, Activation, RopePairs, RopeTable};
 use super::{f16_at, softmax, Acts, KeyValues, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK, TILE_N};
 
 /// ggml's Q8_K rule for up to 256 values (see `quantise_block`): returns `d`, writes
@@ -135,7 +135,8 @@ pub(super) unsafe fn q6k<const R: usize>(
                     for g in 0..4 {
                         let h = &sb[2048 + (s * 2 + g / 2) * 64 + col * 4..];
                         // Two top bits of value (j, half) at bit 4 (g % 2) + 2 half.
-                        let top = |j: usize, half: usize| ((h[j] >> (4 * (g % 2) + 2 * half)) & 3) << 4;
+                        let top =
+                            |j: usize, half: usize| ((h[j] >> (4 * (g % 2) + 2 * half)) & 3) << 4;
                         let x = &xq[b * QK + s * 32 + g * 8..];
                         sub[g / 2] += line_dot(&sb[(s * 4 + g) * 64..], col, x, top);
                     }
@@ -280,4 +281,16 @@ pub(super) fn gate(act: Activation, g: &mut [f32], u: &[f32]) {
     g.iter_mut()
         .zip(u)
         .for_each(|(g, u)| *g = activate(act, *g) * u);
+}
+
+/// RMS norm of each row: `ops::rms_norm`, inlined here and into each family's copy.
+#[inline(always)]
+pub(super) fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+    super::super::ops::rms_norm(x, w, eps)
+}
+
+/// Rotary embedding of each row: `ops::rope`, inlined here and into each family's copy.
+#[inline(always)]
+pub(super) fn rope(x: &mut [f32], width: usize, d: usize, table: &RopeTable, pairs: RopePairs) {
+    super::super::ops::rope(x, width, d, table, pairs)
 }
