@@ -297,3 +297,116 @@ fn answer_addressing_the_grader_is_flagged_then_stripped_or_skipped() {
         }
     }
 }
+
+/// Every file under `dir` with its length and modification time, for "wrote nothing".
+fn tree(dir: &std::path::Path) -> Vec<(PathBuf, u64, std::time::SystemTime)> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir).expect("read dir") {
+        let path = entry.expect("entry").path();
+        let meta = std::fs::metadata(&path).expect("metadata");
+        if meta.is_dir() {
+            out.extend(tree(&path));
+        }
+        out.push((path, meta.len(), meta.modified().expect("mtime")));
+    }
+    out.sort();
+    out
+}
+
+/// Two finished runs in one runs folder: `latest` names the second, whether given as
+/// `latest`, `DIR/latest` or the pointer file itself; reading through it (a report
+/// from the binary) changes no file in the runs folder and says which run it read.
+#[test]
+fn latest_names_the_run_that_finished_last_and_reading_it_writes_nothing() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let runs = dir.path().join("runs");
+    let judge = || ScriptedJudge {
+        rules: vec![("Criterion".into(), vec![-2.0, -1.5, -1.0, -0.5, -0.3])],
+        ..Default::default()
+    };
+    for name in ["first", "second"] {
+        let a = args(runs.join(name));
+        grade_run(&a, &prepare(&a).expect("inputs"), &judge()).expect("run");
+    }
+    let pointer = runs.join("latest-grade");
+    assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "second\n");
+    for value in [runs.join("latest"), pointer.clone()] {
+        assert_eq!(
+            assize::cli::latest_run(&value, "grade", true).expect("resolves"),
+            runs.join("second")
+        );
+    }
+    // A folder that is a run is itself, whatever its name.
+    assert_eq!(
+        assize::cli::latest_run(&runs.join("first"), "grade", true).expect("a run folder"),
+        runs.join("first")
+    );
+
+    let before = tree(&runs);
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_assize"))
+        .args(["report", "--grades", "latest", "--resamples", "50"])
+        .current_dir(dir.path())
+        .output()
+        .expect("run assize");
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{stderr}");
+    assert!(
+        stderr.contains("`latest` is `runs/second`, the last grade run finished in `runs`"),
+        "{stderr}"
+    );
+    assert!(String::from_utf8_lossy(&o.stdout).contains("second"));
+    assert_eq!(tree(&runs), before, "a reader changed the runs folder");
+}
+
+/// A shard, and a pass that left an item failed, do not move the pointer: `latest`
+/// names only runs whose writer ended with every item done.
+#[test]
+fn shards_and_unfinished_passes_leave_the_latest_pointer_alone() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let runs = dir.path().join("runs");
+    let judge = ScriptedJudge {
+        rules: vec![("Criterion".into(), vec![-2.0, -1.5, -1.0, -0.5, -0.3])],
+        ..Default::default()
+    };
+    let done = args(runs.join("done"));
+    grade_run(&done, &prepare(&done).expect("inputs"), &judge).expect("run");
+    let shard = GradeArgs {
+        shard: Some(assize::jobs::Shard::parse("0/2").expect("shard")),
+        ..args(runs.join("shard"))
+    };
+    grade_run(&shard, &prepare(&shard).expect("inputs"), &judge).expect("shard run");
+    let failing = ScriptedJudge {
+        rules: vec![("Criterion".into(), vec![-2.0, -1.5, -1.0, -0.5, -0.3])],
+        ..Default::default()
+    };
+    failing
+        .fail_on
+        .borrow_mut()
+        .insert("q01/assistant-v1".into(), "simulated failure".into());
+    let partial = args(runs.join("partial"));
+    let r = grade_run(&partial, &prepare(&partial).expect("inputs"), &failing).expect("run");
+    assert_eq!(r.failed.len(), 1);
+    let pointer = runs.join("latest-grade");
+    assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "done\n");
+    // Finishing the partial run moves it.
+    grade_run(&partial, &prepare(&partial).expect("inputs"), &judge).expect("resume");
+    assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "partial\n");
+}
+
+/// `latest` where no run has finished is an error naming the pointer, with a fix.
+#[test]
+fn latest_without_a_finished_run_says_so() {
+    let dir = tempfile::tempdir().expect("tmp");
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_assize"))
+        .args(["report", "--grades", "latest"])
+        .current_dir(dir.path())
+        .output()
+        .expect("run assize");
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{stderr}");
+    assert!(
+        stderr.contains("error: no grade run has finished in `runs` yet (`runs/latest-grade` does not exist)"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("fix: pass the run folder itself"), "{stderr}");
+}

@@ -31,7 +31,8 @@ fn sorted_lines(path: &Path) -> Vec<String> {
 }
 
 /// N shard processes plus merge give the records of one process, byte for byte,
-/// and grading the merged folder computes nothing and prints the same summary.
+/// and grading the merged folder computes nothing and prints the same summary. The
+/// shards leave the latest-run pointer on the whole run; the merged run takes it.
 #[test]
 fn merged_shards_equal_one_process_bit_for_bit() {
     let tmp = tempfile::tempdir().expect("tmp");
@@ -49,7 +50,10 @@ fn merged_shards_equal_one_process_bit_for_bit() {
     assert_eq!(sizes.iter().sum::<usize>(), whole.records);
     assert!(sizes.iter().all(|&n| n > 0), "{sizes:?}");
     let merged = tmp.path().join("merged");
-    merge(&merged, &parts).expect("merge");
+    let pointer = tmp.path().join("latest-grade");
+    assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "whole\n");
+    merge(&merged, &parts, &[("grades.jsonl", "grade")]).expect("merge");
+    assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "merged\n");
     assert_eq!(
         sorted_lines(&merged.join("grades.jsonl")),
         sorted_lines(&tmp.path().join("whole/grades.jsonl"))
@@ -73,7 +77,7 @@ fn merge_refuses_gaps_overlaps_and_different_runs_by_name() {
             d
         })
         .collect();
-    let err = merge(&tmp.path().join("m1"), &dirs[..2]).expect_err("gap");
+    let err = merge(&tmp.path().join("m1"), &dirs[..2], &[]).expect_err("gap");
     assert!(err.to_string().contains("shard 2/3 is missing"), "{err}");
     let twice = [
         dirs[0].clone(),
@@ -81,7 +85,7 @@ fn merge_refuses_gaps_overlaps_and_different_runs_by_name() {
         dirs[2].clone(),
         dirs[1].clone(),
     ];
-    let err = merge(&tmp.path().join("m2"), &twice).expect_err("overlap");
+    let err = merge(&tmp.path().join("m2"), &twice, &[]).expect_err("overlap");
     assert!(
         err.to_string().contains("shard 1/3 is given 2 times"),
         "{err}"
@@ -96,7 +100,7 @@ fn merge_refuses_gaps_overlaps_and_different_runs_by_name() {
     )
     .expect("grading");
     let mixed = [dirs[0].clone(), dirs[1].clone(), tmp.path().join("odd")];
-    let err = merge(&tmp.path().join("m3"), &mixed).expect_err("different seed");
+    let err = merge(&tmp.path().join("m3"), &mixed, &[]).expect_err("different seed");
     assert!(err.to_string().contains("seed `7` vs `8`"), "{err}");
     assert!(!tmp.path().join("m1").exists() && !tmp.path().join("m3").exists());
 }

@@ -22,7 +22,7 @@ pub struct CalibrateArgs {
     /// Calibration file written by `assize vet --save-calibration`
     #[arg(long, value_name = "FILE")]
     pub mapping: PathBuf,
-    /// Grading run folder (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`), or `latest` for the last one finished in `runs`
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
     /// Answers file (JSONL or CSV: question_id, system, question, answer, optional context, reference, written_by; `-` reads stdin)

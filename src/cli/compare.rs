@@ -34,6 +34,9 @@ use crate::vet::{ranking_rule, vet_pair_inputs, PairInputs, RankingRule, VetErro
 
 /// Results file of a comparison run.
 pub const PAIRS_FILE: &str = "pairs.jsonl";
+
+/// Kind of a comparison run: its default folder `runs/compare-HASH` and pointer `runs/latest-compare`.
+pub const KIND: &str = "compare";
 /// Slot probes of a comparison run (identical and blank answers, one order each).
 pub const PROBES_FILE: &str = "slot-probes.jsonl";
 
@@ -59,7 +62,7 @@ pub struct CompareArgs {
     /// Human pairwise preferences (question_id, system_a, system_b, rater, preferred)
     #[arg(long, value_name = "FILE")]
     pub preferences: Option<PathBuf>,
-    /// Grading run folder (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`), or `latest` for the last one finished in `runs`
     ///
     /// With `--labels`, adds the pointwise self-preference probe.
     #[arg(long, short = 'g', value_name = "DIR", requires = "labels")]
@@ -316,7 +319,7 @@ fn compare_spec(args: &CompareArgs, s: &CompareSetup, model: &ModelId) -> JobSpe
     };
     let dir = match &args.run_dir {
         Some(d) => d.clone(),
-        None => default_run_dir("compare", &shard_identity(&manifest, args.shard)),
+        None => default_run_dir(KIND, &shard_identity(&manifest, args.shard)),
     };
     JobSpec {
         dir,
@@ -326,6 +329,7 @@ fn compare_spec(args: &CompareArgs, s: &CompareSetup, model: &ModelId) -> JobSpe
         quiet: args.output.quiet,
         shard: args.shard,
         slow_append: None,
+        latest: Some(KIND),
     }
 }
 

@@ -28,7 +28,7 @@ use crate::store::read_records;
 /// Arguments of `assize estimate`.
 #[derive(Debug, Clone, Args)]
 pub struct EstimateArgs {
-    /// Grading run folder (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`), or `latest` for the last one finished in `runs`
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
     /// Human labels in long form (question_id, system, criterion, rater, score)

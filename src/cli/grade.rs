@@ -27,6 +27,9 @@ use crate::store::Manifest;
 /// Results file of a grading run.
 pub const GRADES_FILE: &str = "grades.jsonl";
 
+/// Kind of a grading run: its default folder `runs/grade-HASH` and pointer `runs/latest-grade`.
+pub const KIND: &str = "grade";
+
 /// Arguments of `assize grade`.
 #[derive(Debug, Clone, Args)]
 pub struct GradeArgs {
@@ -315,7 +318,7 @@ pub fn open_job(
     let manifest = manifest(args, p, model)?;
     let dir = match &args.run_dir {
         Some(d) => d.clone(),
-        None => default_run_dir("grade", &shard_identity(&manifest, args.shard)),
+        None => default_run_dir(KIND, &shard_identity(&manifest, args.shard)),
     };
     let units = p
         .answers
@@ -352,6 +355,7 @@ pub fn open_job(
         quiet: args.output.quiet,
         shard: args.shard,
         slow_append: None,
+        latest: Some(KIND),
     };
     Job::open(spec, units).with_context(|| format!("cannot use run folder `{}`", dir.display()))
 }

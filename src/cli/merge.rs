@@ -25,7 +25,11 @@ pub struct MergeArgs {
 
 /// Run `assize merge`.
 pub fn run(args: MergeArgs) -> anyhow::Result<ExitCode> {
-    let report = merge(&args.into, &args.shards)?;
+    let kinds = [
+        (super::grade::GRADES_FILE, super::grade::KIND),
+        (super::compare::PAIRS_FILE, super::compare::KIND),
+    ];
+    let report = merge(&args.into, &args.shards, &kinds)?;
     if args.output.json {
         print_json(&report)?;
     } else {

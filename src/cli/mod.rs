@@ -96,18 +96,67 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Command::Model(cmd) => model::run(cmd),
         Command::Grade(args) => grade::run(args),
-        Command::Compare(args) => compare::run(args),
+        Command::Compare(mut args) => {
+            let q = args.output.quiet;
+            args.grades = args.grades.map(|g| latest_run(&g, grade::KIND, q)).transpose()?;
+            compare::run(args)
+        }
         Command::Rubric(cmd) => rubric::run(cmd),
-        Command::Vet(args) => vet::run(args),
+        Command::Vet(mut args) => {
+            let q = args.output.quiet;
+            args.grades = latest_run(&args.grades, grade::KIND, q)?;
+            for p in &mut args.pairs {
+                *p = latest_run(p, compare::KIND, q)?;
+            }
+            vet::run(args)
+        }
         Command::Screen(args) => screen::run(args),
-        Command::Calibrate(args) => calibrate::run(args),
+        Command::Calibrate(mut args) => {
+            let q = args.output.quiet;
+            args.grades = latest_run(&args.grades, grade::KIND, q)?;
+            calibrate::run(args)
+        }
         Command::Answer(args) => answer::run(args),
         Command::Injection(args) => injection::run(args),
         Command::Merge(args) => merge::run(args),
-        Command::Estimate(args) => estimate::run(args),
+        Command::Estimate(mut args) => {
+            let q = args.output.quiet;
+            args.grades = latest_run(&args.grades, grade::KIND, q)?;
+            estimate::run(args)
+        }
         Command::Overlap(args) => overlap::run(args),
-        Command::Report(args) => report::run(args),
+        Command::Report(mut args) => {
+            let q = args.output.quiet;
+            for g in &mut args.grades {
+                *g = latest_run(g, grade::KIND, q)?;
+            }
+            args.compare = args.compare.map(|c| latest_run(&c, compare::KIND, q)).transpose()?;
+            report::run(args)
+        }
     }
+}
+
+/// A run folder argument with `latest` (or `DIR/latest`, `DIR/latest-KIND`) replaced by
+/// the run folder it names; says on stderr which one unless `quiet`. Reads only.
+pub fn latest_run(
+    value: &std::path::Path,
+    kind: &str,
+    quiet: bool,
+) -> anyhow::Result<std::path::PathBuf> {
+    let Some(pointer) = crate::store::latest::pointer_for(value, kind) else {
+        return Ok(value.to_path_buf());
+    };
+    let dir = crate::store::latest::read_pointer(&pointer, kind)?;
+    if quiet {
+        return Ok(dir);
+    }
+    eprintln!(
+        "`{}` is `{}`, the last {kind} run finished in `{}`",
+        value.display(),
+        dir.display(),
+        pointer.parent().map_or_else(String::new, |p| p.display().to_string())
+    );
+    Ok(dir)
 }
 
 /// Print a serialisable value as pretty JSON on stdout.

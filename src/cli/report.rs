@@ -27,12 +27,12 @@ use crate::store::{read_records, Manifest, MANIFEST};
 /// byte-identical reports.
 #[derive(Debug, Clone, Args)]
 pub struct ReportArgs {
-    /// Grading run folder (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`), or `latest` for the last one finished in `runs`
     ///
     /// Repeat to show runs side by side, the first being the baseline ("before").
     #[arg(long, short = 'g', value_name = "DIR", required = true)]
     pub grades: Vec<PathBuf>,
-    /// Comparison run folder (holds `pairs.jsonl`)
+    /// Comparison run folder (holds `pairs.jsonl`), or `latest` for the last one finished in `runs`
     ///
     /// Adds position bias, the ranking, length and self-preference.
     #[arg(long = "pairs", value_name = "DIR")]

@@ -32,7 +32,7 @@ use crate::vet::{
 /// Arguments of `assize vet`.
 #[derive(Debug, Clone, Args)]
 pub struct VetArgs {
-    /// Grading run folder (holds `grades.jsonl`)
+    /// Grading run folder (holds `grades.jsonl`), or `latest` for the last one finished in `runs`
     #[arg(long, short = 'g', value_name = "DIR")]
     pub grades: PathBuf,
     /// Human labels in long form (question_id, system, criterion, rater, score)
@@ -48,7 +48,7 @@ pub struct VetArgs {
     /// Adds reference-based metrics (ROUGE-L, BLEU, chrF, token F1) as baselines.
     #[arg(long = "answers", short = 'a', value_name = "FILE")]
     pub baselines: Option<PathBuf>,
-    /// Comparison run folder (holds `pairs.jsonl`)
+    /// Comparison run folder (holds `pairs.jsonl`), or `latest` for the last one finished in `runs`
     ///
     /// Its verdicts are vetted against `--preferences`. Repeat it with the comparison
     /// runs of other judges on the same pairs to vet them as a panel (the first is the

@@ -61,7 +61,11 @@ pub struct MergeReport {
 }
 
 /// Join `parts` into the new run folder `into`.
-pub fn merge(into: &Path, parts: &[PathBuf]) -> Result<MergeReport, MergeError> {
+pub fn merge(
+    into: &Path,
+    parts: &[PathBuf],
+    kinds: &[(&str, &str)],
+) -> Result<MergeReport, MergeError> {
     let manifest = check_manifests(parts)?;
     if store::read_manifest(into)?.is_some() {
         return Err(MergeError::TargetUsed {
@@ -89,6 +93,11 @@ pub fn merge(into: &Path, parts: &[PathBuf]) -> Result<MergeReport, MergeError> 
     }
     let text = serde_json::to_string_pretty(&manifest).expect("manifest serialises");
     store::write_atomic(&into.join(store::MANIFEST), text.as_bytes())?;
+    for (file, kind) in kinds {
+        if counts.contains_key(*file) {
+            super::record_latest(&lock, kind);
+        }
+    }
     Ok(MergeReport {
         run_dir: into.display().to_string(),
         shards: parts.len(),

@@ -4,7 +4,7 @@
 //! one unit is, which records it produces, and a hash of the inputs that decide
 //! them). Output: every record of those units, computed now or found in the folder.
 //! It owns the manifest check, the lock, the done set, the shard filter, progress,
-//! appending and the failure list. It never holds the lock or writes when nothing is
+//! appending, the failure list and the latest-run pointer. It never holds the lock or writes when nothing is
 //! left to compute, and it never rewrites or reorders a finished record.
 //!
 //! ```text
@@ -61,6 +61,9 @@ pub struct JobSpec {
     pub shard: Option<Shard>,
     /// Pause inside every appended line (fault tests only).
     pub slow_append: Option<Duration>,
+    /// Kind of run (`grade`, `compare`) to record as the latest of its kind beside the
+    /// run folder when a pass ends with every unit done; never recorded for a shard.
+    pub latest: Option<&'static str>,
 }
 
 /// A unit that could not be computed; the rest of the job went on.
@@ -239,6 +242,9 @@ impl<U> Job<U> {
                 bar.inc();
             }
             bar.finish();
+            if let (true, None, Some(kind)) = (failed.is_empty(), self.spec.shard, self.spec.latest) {
+                record_latest(lock, kind);
+            }
         }
         let records = self.collect(&key)?;
         Ok(Outcome {
@@ -267,6 +273,17 @@ impl<U> Job<U> {
                 wanted.contains(k.as_str()) && seen.insert(k)
             })
             .collect())
+    }
+}
+
+/// Record a finished run as the latest of its kind; a pointer that cannot be written
+/// is a warning, never a failure of the run it points to.
+pub(crate) fn record_latest(lock: &RunLock, kind: &str) {
+    if let Err(e) = store::latest::record(lock, kind) {
+        eprintln!(
+            "warning: `{}` is not recorded as the latest {kind} run: {e}\n  fix: make the folder above it writable, or name the run folder itself instead of `latest`",
+            lock.dir().display()
+        );
     }
 }
 

@@ -5,6 +5,7 @@
 //! folder opens nothing for writing, so a read-only folder can be read and reported.
 //! Never rewrites or reorders a finished record.
 
+pub mod latest;
 mod lock;
 mod results;
 
@@ -137,6 +138,9 @@ pub enum StoreError {
 
 /// The fix line for a store error, when one is known.
 pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
+    if let Some(e) = err.downcast_ref::<latest::LatestError>() {
+        return latest::fix_for(e);
+    }
     Some(match err.downcast_ref::<StoreError>()? {
         StoreError::Io { .. } => return None,
         StoreError::Mismatch { .. } => {
@@ -221,12 +225,16 @@ pub fn check_manifest(dir: &Path, manifest: &Manifest) -> Result<bool, StoreErro
 
 /// Write a file through a temporary sibling, a sync and a rename.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
+    write_atomic_via(&path.with_extension("tmp"), path, bytes)
+}
+
+/// [`write_atomic`] through a given temporary file (in the same folder as `path`).
+pub fn write_atomic_via(tmp: &Path, path: &Path, bytes: &[u8]) -> Result<(), StoreError> {
     use std::io::Write as _;
-    let tmp = path.with_extension("tmp");
-    let mut f = std::fs::File::create(&tmp).map_err(io(&tmp))?;
-    f.write_all(bytes).map_err(io(&tmp))?;
-    f.sync_all().map_err(io(&tmp))?;
-    std::fs::rename(&tmp, path).map_err(io(path))
+    let mut f = std::fs::File::create(tmp).map_err(io(tmp))?;
+    f.write_all(bytes).map_err(io(tmp))?;
+    f.sync_all().map_err(io(tmp))?;
+    std::fs::rename(tmp, path).map_err(io(path))
 }
 
 #[cfg(test)]
