@@ -34,6 +34,27 @@ fn fetch_default_judge(root: &Path) {
     std::os::unix::fs::symlink(common::real_model(file), models.join(file)).expect("link");
 }
 
+/// Running a freshly copied binary while another test thread forks can fail with
+/// "text file busy": the forked child holds the copy's write handle until it execs.
+/// That is a property of the test process, not of assize; wait and try again.
+trait RunInstalled {
+    fn run_installed(&mut self) -> Output;
+}
+
+impl RunInstalled for Command {
+    fn run_installed(&mut self) -> Output {
+        for _ in 0..50 {
+            match self.output() {
+                Err(e) if e.kind() == std::io::ErrorKind::ExecutableFileBusy => {
+                    std::thread::sleep(std::time::Duration::from_millis(100));
+                }
+                other => return other.expect("runs"),
+            }
+        }
+        panic!("the copied binary stayed busy for 5 s")
+    }
+}
+
 fn stderr(o: &Output) -> String {
     String::from_utf8_lossy(&o.stderr).into_owned()
 }
@@ -59,8 +80,7 @@ fn installed_binary_grades_from_a_folder_outside_the_repository() {
             "helpfulness",
         ])
         .args(["--csv", "grades.csv", "--json", "--quiet"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("one JSON document");
     assert_eq!(v["rubric"], "support");
@@ -84,8 +104,7 @@ fn missing_judge_names_the_folders_looked_in() {
     std::fs::write(root.path().join("work/answers.jsonl"), ANSWER).expect("answers");
     let o = installed(root.path())
         .args(["grade", "--answers", "answers.jsonl"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert_eq!(o.status.code(), Some(2), "{}", stderr(&o));
     let e = stderr(&o);
     assert!(e.contains("judge `default` is not fetched yet"), "{e}");
@@ -106,14 +125,12 @@ fn bundled_rubrics_work_by_name_outside_the_repository() {
     let root = tempfile::tempdir().expect("tmp");
     let o = installed(root.path())
         .args(["rubric", "check", "quick"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert!(o.status.success(), "{}", stderr(&o));
     assert!(String::from_utf8_lossy(&o.stdout).contains("rubric `quick` is valid"));
     let o = installed(root.path())
         .args(["rubric", "list", "--json"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert!(o.status.success(), "{}", stderr(&o));
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     let names: Vec<&str> = v
@@ -126,13 +143,11 @@ fn bundled_rubrics_work_by_name_outside_the_repository() {
     // `rubric print` gives the TOML a user can start their own rubric from.
     let o = installed(root.path())
         .args(["rubric", "print", "support"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert!(o.status.success(), "{}", stderr(&o));
     std::fs::write(root.path().join("work/mine.toml"), &o.stdout).expect("write");
     let o = installed(root.path())
         .args(["rubric", "check", "mine.toml"])
-        .output()
-        .expect("runs");
+        .run_installed();
     assert!(o.status.success(), "{}", stderr(&o));
 }
