@@ -170,3 +170,44 @@ fn answers_come_from_standard_input() {
     let v: serde_json::Value = serde_json::from_slice(&o.stdout).expect("json");
     assert!(v.to_string().contains("\"a\""), "{v}");
 }
+
+/// Two TOML syntax errors (line 4: a key without `=`; line 11: an unclosed string) and
+/// one semantic error (line 14: a 12-point scale): `rubric check` and `grade --rubric`
+/// both list all three with their lines, before any judge.
+const BROKEN_RUBRIC: &str = r#"name = "t"
+[[criterion]]
+key = "a"
+question "Is it right?"
+scale = "yes-no"
+[criterion.points]
+"yes" = "right"
+"no" = "wrong"
+
+[[criterion]]
+key = "b
+question = "Q"
+title = "B"
+scale = "1-12"
+"#;
+
+#[test]
+fn every_rubric_problem_syntax_included_is_reported_in_one_pass() {
+    let tmp = tempfile::tempdir().expect("tmp");
+    let rubric = write(tmp.path(), "broken.toml", BROKEN_RUBRIC);
+    let answers = write(tmp.path(), "a.jsonl", ANSWERS);
+    let expected = [
+        "broken.toml",
+        "has 3 problem(s)",
+        "line 4: TOML syntax",
+        "line 11: TOML syntax",
+        "line 14: criterion: unknown scale `1-12`",
+        "fix:",
+    ];
+    for args in [
+        vec!["rubric", "check", rubric.as_str()],
+        vec!["grade", "--answers", answers.as_str(), "--rubric", rubric.as_str()],
+    ] {
+        let o = run_without_judges(&args, tmp.path());
+        assert_refused_before_judge(&o, &expected);
+    }
+}

@@ -3,12 +3,12 @@
 //! `judge-templates/forms/`. Input: a rubric path and records. Output: `Rubric`,
 //! `Form`s. Never runs the model and never reads human labels.
 
+mod check;
 pub mod forms;
 
-use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use serde::{Deserialize, Serialize};
+use serde::Serialize;
 
 /// A score scale a criterion can use.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -255,35 +255,6 @@ pub fn fix_for(err: &(dyn std::error::Error + 'static)) -> Option<String> {
     })
 }
 
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct RawRubric {
-    name: String,
-    #[serde(default)]
-    description: String,
-    #[serde(default)]
-    criterion: Vec<toml::Spanned<RawCriterion>>,
-}
-
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct RawCriterion {
-    key: String,
-    title: Option<String>,
-    question: String,
-    scale: toml::Spanned<String>,
-    #[serde(default)]
-    needs: Vec<toml::Spanned<String>>,
-    #[serde(default)]
-    steps: Vec<String>,
-    #[serde(default)]
-    points: BTreeMap<String, String>,
-}
-
-fn line_of(text: &str, offset: usize) -> usize {
-    text[..offset.min(text.len())].matches('\n').count() + 1
-}
-
 /// Rubrics built into the binary: (name, TOML text). Their sources are
 /// `judge-templates/rubrics/NAME.toml`.
 pub const BUNDLED: &[(&str, &str)] = &[
@@ -346,123 +317,18 @@ pub fn parse_rubric_bytes(path: &Path, bytes: &[u8]) -> Result<Rubric, RubricErr
     parse_rubric(path, &text)
 }
 
-/// Parse rubric text (the path is only used in messages).
+/// Parse rubric text (the path is only used in messages); every problem is
+/// reported at once, TOML syntax errors included (see `check`).
 pub fn parse_rubric(path: &Path, text: &str) -> Result<Rubric, RubricError> {
     use sha2::Digest;
-    let invalid = |problems| RubricError::Invalid {
+    let checked = check::check(text).map_err(|problems| RubricError::Invalid {
         path: path.to_path_buf(),
         problems,
-    };
-    let raw: RawRubric = toml::from_str(text).map_err(|e| {
-        let line = e.span().map_or(0, |s| line_of(text, s.start));
-        invalid(vec![RubricProblem {
-            line,
-            message: e.message().trim().to_string(),
-        }])
     })?;
-    let mut problems = Vec::new();
-    let mut criteria = Vec::new();
-    let mut keys = std::collections::HashSet::new();
-    if raw.criterion.is_empty() {
-        problems.push(RubricProblem {
-            line: 1,
-            message: "no `[[criterion]]` tables".into(),
-        });
-    }
-    for spanned in raw.criterion {
-        let line = line_of(text, spanned.span().start);
-        let c = spanned.into_inner();
-        let mut bad =
-            |message: String, at: usize| problems.push(RubricProblem { line: at, message });
-        if c.key.trim().is_empty()
-            || !c
-                .key
-                .chars()
-                .all(|ch| ch.is_ascii_alphanumeric() || ch == '-' || ch == '_')
-        {
-            bad(
-                format!(
-                    "criterion key `{}` must be letters, digits, `-` or `_`",
-                    c.key
-                ),
-                line,
-            );
-        }
-        if !keys.insert(c.key.clone()) {
-            bad(format!("criterion key `{}` appears twice", c.key), line);
-        }
-        let scale_line = line_of(text, c.scale.span().start);
-        let Some(scale) = Scale::parse(c.scale.get_ref()) else {
-            bad(
-                format!(
-                    "criterion `{}`: unknown scale `{}` (use `A-B` with whole numbers and 2 to 11 points, such as `1-5` or `0-10`, or `yes-no`)",
-                    c.key,
-                    c.scale.get_ref()
-                ),
-                scale_line,
-            );
-            continue;
-        };
-        let mut needs = Vec::new();
-        for n in &c.needs {
-            match n.get_ref().as_str() {
-                "reference" => needs.push(Need::Reference),
-                "context" => needs.push(Need::Context),
-                other => bad(
-                    format!(
-                        "criterion `{}`: unknown need `{other}` (use `reference` or `context`)",
-                        c.key
-                    ),
-                    line_of(text, n.span().start),
-                ),
-            }
-        }
-        let labels = scale.labels();
-        let mut points = Vec::new();
-        for l in &labels {
-            match c.points.get(l) {
-                Some(t) => points.push((l.clone(), t.clone())),
-                None => bad(
-                    format!(
-                        "criterion `{}`: no description for scale point `{l}`",
-                        c.key
-                    ),
-                    line,
-                ),
-            }
-        }
-        for k in c.points.keys() {
-            if !labels.contains(k) {
-                bad(
-                    format!(
-                        "criterion `{}`: point `{k}` is not on scale `{}`",
-                        c.key,
-                        scale.name()
-                    ),
-                    line,
-                );
-            }
-        }
-        if c.question.trim().is_empty() {
-            bad(format!("criterion `{}`: empty `question`", c.key), line);
-        }
-        criteria.push(Criterion {
-            title: c.title.unwrap_or_else(|| c.key.clone()),
-            key: c.key,
-            question: c.question,
-            scale,
-            needs,
-            steps: c.steps,
-            points,
-        });
-    }
-    if !problems.is_empty() {
-        return Err(invalid(problems));
-    }
     Ok(Rubric {
-        name: raw.name,
-        description: raw.description,
-        criteria,
+        name: checked.name,
+        description: checked.description,
+        criteria: checked.criteria,
         path: path.to_path_buf(),
         sha256: format!("{:x}", sha2::Sha256::digest(text.as_bytes())),
         text: text.to_string(),
@@ -515,10 +381,86 @@ needs = ["sources"]
         assert_eq!(problems.len(), 3, "{err}");
         assert_eq!(problems[0].line, 5);
         assert!(problems[0].message.contains("unknown scale `1-12`"));
-        assert_eq!(problems[1].line, 11);
-        assert!(problems[2]
+        assert_eq!(problems[1].line, 7);
+        assert!(problems[1]
             .message
             .contains("no description for scale point `3`"));
+        assert_eq!(problems[2].line, 11);
+        assert!(problems[2].message.contains("unknown need `sources`"));
+    }
+
+    fn problems_of(text: &str) -> Vec<(usize, String)> {
+        match parse_rubric(Path::new("r.toml"), text) {
+            Err(RubricError::Invalid { problems, .. }) => {
+                problems.into_iter().map(|p| (p.line, p.message)).collect()
+            }
+            other => panic!("expected problems, got {other:?}"),
+        }
+    }
+
+    /// Two TOML syntax errors (a key without `=` on line 4, an unclosed string on
+    /// line 11) and one semantic error (scale `1-12` on line 14) are all reported, in
+    /// line order; the text after each syntax error is still checked.
+    #[test]
+    fn syntax_errors_and_semantic_errors_are_reported_together() {
+        let text = r#"name = "t"
+[[criterion]]
+key = "a"
+question "Is it right?"
+scale = "yes-no"
+[criterion.points]
+"yes" = "right"
+"no" = "wrong"
+
+[[criterion]]
+key = "b
+question = "Q"
+title = "B"
+scale = "1-12"
+"#;
+        let got = problems_of(text);
+        let lines: Vec<usize> = got.iter().map(|p| p.0).collect();
+        assert_eq!(lines, vec![4, 11, 14], "{got:?}");
+        assert!(got[0].1.starts_with("TOML syntax"), "{got:?}");
+        assert!(got[1].1.starts_with("TOML syntax"), "{got:?}");
+        assert!(got[2].1.contains("unknown scale `1-12`"), "{got:?}");
+    }
+
+    /// What a strict reader stops at after the first problem (an unknown key, a
+    /// missing field, a wrong type, a repeated key) is all listed in one pass.
+    #[test]
+    fn unknown_keys_missing_fields_and_repeats_are_listed_at_once() {
+        let text = r#"name = "t"
+colour = 3
+[[criterion]]
+key = "a"
+scale = "yes-no"
+points = { "yes" = "y", "no" = 0 }
+[[criterion]]
+key = "a"
+question = "Q"
+scale = "yes-no"
+shade = "x"
+points = { "yes" = "y", "no" = "n" }
+"#;
+        let got = problems_of(text);
+        let lines: Vec<usize> = got.iter().map(|p| p.0).collect();
+        assert_eq!(lines, vec![2, 3, 6, 8, 11], "{got:?}");
+        assert!(got[0].1.contains("unknown key `colour`"), "{got:?}");
+        assert!(got[1].1.contains("has no `question`"), "{got:?}");
+        assert!(got[2].1.contains("point `no` must be text"), "{got:?}");
+        assert!(got[3].1.contains("appears twice"), "{got:?}");
+        assert!(got[4].1.contains("unknown key `shade`"), "{got:?}");
+    }
+
+    /// A broken table header leaves its whole table out of the check, so no field of
+    /// it is called missing; a later syntax error is still found.
+    #[test]
+    fn a_broken_table_header_blanks_its_table_only() {
+        let text = "name = \"t\"\n[[criterion]\nkey = \"a\"\nquestion = \"Q\"\n\n[[criterion]]\nkey = \"b\"\nquestion = = \"Q\"\nscale = \"yes-no\"\npoints = { \"yes\" = \"y\", \"no\" = \"n\" }\n";
+        let got = problems_of(text);
+        let lines: Vec<usize> = got.iter().map(|p| p.0).collect();
+        assert_eq!(lines, vec![2, 8], "{got:?}");
     }
 
     /// Four- and seven-point scales are common practice in annotation guidelines (from
