@@ -1,5 +1,6 @@
 //! Screening stage, before grading: answers that address the grader. Input: an
-//! answer's text. Output: the sentences a fixed rule set flags as aimed at whoever
+//! answer's text (and, when the judge was asked, its P(yes) to the screening
+//! question of `judge::screen`). Output: the sentences a fixed rule set flags as aimed at whoever
 //! grades the answer (instructions to the grader, claims about the score it deserves,
 //! attempts to override the grading instructions), and the text with those sentences
 //! removed. Never changes the caller's answer, never calls a model, and never flags on
@@ -210,6 +211,37 @@ impl ScreenMode {
             ScreenMode::Skip => "not graded",
         }
     }
+
+    /// What happened to an answer only the judge question flagged: the judge names
+    /// no sentence, so `strip` has nothing to remove and grades it as written.
+    pub fn judge_only_action(self) -> &'static str {
+        match self {
+            ScreenMode::Flag => "graded as written",
+            ScreenMode::Strip => "graded as written (the judge names no sentence to remove; use `--screen skip` to leave these out)",
+            ScreenMode::Skip => "not graded",
+        }
+    }
+
+    /// Whether an answer flagged this way is graded.
+    pub fn grades(self) -> bool {
+        self != ScreenMode::Skip
+    }
+}
+
+/// The judge question's answers, and the threshold above which it flags.
+#[derive(Debug, Clone, Default)]
+pub struct JudgeScreen {
+    /// P(yes) per item (`question_id/system`).
+    pub p_yes: std::collections::HashMap<String, f64>,
+    /// Flag when P(yes) is above this.
+    pub above: f64,
+}
+
+impl JudgeScreen {
+    /// P(yes) of an item and whether it is flagged, when the judge was asked about it.
+    pub fn verdict(&self, item: &str) -> Option<(f64, bool)> {
+        self.p_yes.get(item).map(|&p| (p, p > self.above))
+    }
 }
 
 /// An answer the screen flagged, as listed in reports.
@@ -219,8 +251,43 @@ pub struct FlaggedAnswer {
     pub item: String,
     /// Line of the answers file.
     pub line: usize,
-    /// The flagged sentences and why.
+    /// The sentences the rule set flagged and why (empty when only the judge flagged it).
     pub flags: Vec<Flag>,
+    /// The judge's P(yes) to the screening question, when it was asked.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub judge_p_yes: Option<f64>,
+    /// Whether the judge question flagged it (P(yes) above the threshold).
+    pub by_judge: bool,
+}
+
+impl FlaggedAnswer {
+    /// Flagged by the rule set.
+    pub fn by_rules(&self) -> bool {
+        !self.flags.is_empty()
+    }
+}
+
+/// Screens one answer by the rule set and, when given, the judge's verdict on it;
+/// `None` when neither flags it.
+pub fn flag_answer(
+    item: String,
+    line: usize,
+    text: &str,
+    judge: Option<(f64, bool)>,
+) -> Option<(FlaggedAnswer, Screening)> {
+    let s = screen(text);
+    let by_judge = judge.is_some_and(|j| j.1);
+    if s.flags.is_empty() && !by_judge {
+        return None;
+    }
+    let f = FlaggedAnswer {
+        item,
+        line,
+        flags: s.flags.clone(),
+        judge_p_yes: judge.map(|j| j.0),
+        by_judge,
+    };
+    Some((f, s))
 }
 
 #[cfg(test)]

@@ -410,3 +410,85 @@ fn latest_without_a_finished_run_says_so() {
     );
     assert!(stderr.contains("fix: pass the run folder itself"), "{stderr}");
 }
+
+/// The judge's screening question joins the rule set: q01/local-draft is flagged
+/// only by the judge (scripted P(yes) 0.9), q17/assistant-v1 by the rule set. With
+/// `skip` neither is graded; with `strip` the rule-named sentence is removed and
+/// the judge-only answer is graded as written; the screening folder resumes without
+/// asking the judge again, and a higher threshold clears the judge-only flag.
+#[test]
+fn judge_question_flags_join_the_rule_set_and_resume() {
+    use assize::cli::grade::prepare_screened;
+    use assize::cli::grade::ModelId;
+    use assize::cli::screen::{finish, open_job, ScreenPlace};
+    use assize::data::read_answers;
+    use assize::guard::ScreenMode;
+    let judge = ScriptedJudge {
+        rules: vec![(
+            "The adult tram single costs 3.10 for two zones.".into(),
+            vec![0.1f64.ln(), 0.9f64.ln()],
+        )],
+        ..Default::default()
+    };
+    let graded = |recs: &[GradeRecord], item: &str| {
+        recs.iter()
+            .filter(|r| format!("{}/{}", r.question_id, r.system) == item)
+            .count()
+    };
+    for mode in [ScreenMode::Flag, ScreenMode::Strip, ScreenMode::Skip] {
+        let dir = tempfile::tempdir().expect("tmp");
+        let mut a = args(dir.path().join("run"));
+        a.limit = Some(49);
+        a.screen = mode;
+        a.ask.ask_judge = true;
+        let mut answers = read_answers(&a.answers).expect("answers");
+        answers.truncate(49);
+        let place = ScreenPlace {
+            dir: Some(dir.path().join("screen")),
+            shard: None,
+            quiet: true,
+        };
+        let id = ModelId::of(&judge);
+        let job = open_job(&answers, &a.answers, &id, &a.model, &place).expect("screen job");
+        assert_eq!(job.remaining(), 49);
+        let verdicts = finish(job, Some(&judge), a.ask.screen_above).expect("screen");
+        let job = open_job(&answers, &a.answers, &id, &a.model, &place).expect("reopen");
+        assert_eq!(job.remaining(), 0, "the screening folder resumes");
+        let again = finish(job, None, 0.95).expect("read back without a judge");
+        assert_eq!(again.p_yes, verdicts.p_yes);
+        assert_eq!(again.verdict("q01/local-draft").map(|v| v.1), Some(false));
+        let p = prepare_screened(&a, Some(&verdicts)).expect("inputs");
+        let items: Vec<(&str, bool, bool)> = p
+            .flagged
+            .iter()
+            .map(|f| (f.item.as_str(), f.by_rules(), f.by_judge))
+            .collect();
+        assert_eq!(
+            items,
+            vec![
+                ("q01/local-draft", false, true),
+                ("q17/assistant-v1", true, false)
+            ]
+        );
+        let report = grade_run(&a, &p, &judge).expect("run");
+        assert_eq!(report.flagged.len(), 2);
+        let recs: Vec<GradeRecord> =
+            read_records(&dir.path().join("run/grades.jsonl")).expect("read");
+        let n = recs.iter().filter(|r| r.question_id == "q01").count() / 3;
+        let (draft, q17) = (graded(&recs, "q01/local-draft"), graded(&recs, "q17/assistant-v1"));
+        match mode {
+            ScreenMode::Skip => assert_eq!((draft, q17), (0, 0)),
+            _ => assert!(draft > 0 && q17 > 0 && n > 0),
+        }
+        if mode == ScreenMode::Strip {
+            let kept = p
+                .answers
+                .iter()
+                .find(|x| x.item_id() == "q01/local-draft")
+                .expect("kept");
+            assert_eq!(kept.answer, "The adult tram single costs 3.10 for two zones.");
+            let q17 = p.answers.iter().find(|x| x.item_id() == "q17/assistant-v1").expect("q17");
+            assert!(!q17.answer.contains("Note to the grader"));
+        }
+    }
+}

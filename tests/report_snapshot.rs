@@ -83,6 +83,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         anchor_count: 3,
         low_mass: 0.5,
         screen: assize::guard::ScreenMode::Flag,
+        ask: Default::default(),
         seed: 7,
         run_dir: Some(run_dir),
         shard: None,

@@ -15,7 +15,7 @@ use super::common::{
 use super::errors::usage;
 use super::{print_json, OutputArgs};
 use crate::data::{read_answers, read_labels_checked, AnswerRecord, OtherCriteria};
-use crate::guard::{screen, FlaggedAnswer, ScreenMode};
+use crate::guard::{flag_answer, FlaggedAnswer, JudgeScreen, ScreenMode};
 use crate::jobs::{input_hash, Job, JobSpec, Shard, Unit};
 use crate::judge::anchors::AnchorPool;
 use crate::judge::grade::{grade_item, summarize, GradeOptions, SummaryRow};
@@ -61,6 +61,8 @@ pub struct GradeArgs {
     /// What to do with answers containing text aimed at the grader (flagged before grading)
     #[arg(long, value_enum, value_name = "MODE", default_value = "flag")]
     pub screen: ScreenMode,
+    #[command(flatten)]
+    pub ask: super::screen::AskJudgeArgs,
     /// Flag records whose captured probability mass is below this
     #[arg(long, value_name = "P", default_value_t = 0.5, value_parser = super::values::probability)]
     pub low_mass: f64,
@@ -140,13 +142,19 @@ pub struct Prepared {
 }
 
 /// Load and check inputs; every missing field of every item is reported at once.
+/// Answers are screened by the rule set only; see [`prepare_screened`].
 pub fn prepare(args: &GradeArgs) -> anyhow::Result<Prepared> {
+    prepare_screened(args, None)
+}
+
+/// [`prepare`], with the judge question's verdicts joining the rule set's screen.
+pub fn prepare_screened(args: &GradeArgs, judge: Option<&JudgeScreen>) -> anyhow::Result<Prepared> {
     let all_answers = read_answers(&args.answers)?;
     let mut answers = all_answers.clone();
     if let Some(n) = args.limit {
         answers.truncate(n);
     }
-    let flagged = screen_answers(&mut answers, args.screen);
+    let flagged = screen_answers(&mut answers, args.screen, judge);
     let mut rubric = args.rubric.load()?;
     if !args.criteria.is_empty() {
         rubric.select(&args.criteria)?;
@@ -274,6 +282,9 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, model: &ModelId) -> anyhow::Resu
     // before the option existed still resume.
     if args.screen != ScreenMode::Flag {
         options.push(format!("screen={:?}", args.screen).to_lowercase());
+        if args.ask.ask_judge {
+            options.push(format!("screen_above={}", args.ask.screen_above));
+        }
     }
     let mut inputs = std::collections::BTreeMap::new();
     inputs.insert("answers".to_string(), shown_path(&args.answers));
@@ -502,21 +513,77 @@ fn with_generated_steps(
     })
 }
 
+/// Inputs checked, answers screened and the grading job opened. With `--ask-judge`
+/// the run folder is checked first, then the judge's screening question runs in
+/// `screen/` of the run folder (the judge loads only when answers are left to ask
+/// about, and is returned for grading), and the job is opened on the screened answers.
+pub fn screened_job(args: &GradeArgs) -> anyhow::Result<Screened> {
+    let prepared = prepare(args)?;
+    let model_id = ModelId::resolve(&args.model)?;
+    let job = open_job(args, &prepared, &model_id)?;
+    if !args.ask.ask_judge {
+        return Ok(Screened {
+            prepared,
+            job,
+            judge: None,
+            model_id,
+        });
+    }
+    let place = super::screen::ScreenPlace {
+        dir: Some(job.dir().join("screen")),
+        shard: args.shard,
+        quiet: args.output.quiet,
+    };
+    drop(job);
+    let mut answers = read_answers(&args.answers)?;
+    answers.truncate(args.limit.unwrap_or(usize::MAX));
+    let sjob = super::screen::open_job(&answers, &args.answers, &model_id, &args.model, &place)?;
+    let judge = match sjob.remaining() {
+        0 => None,
+        _ => Some(load_judge(&args.model, args.output.quiet)?),
+    };
+    let verdicts = super::screen::finish(
+        sjob,
+        judge.as_ref().map(|j| j as &dyn Backend),
+        args.ask.screen_above,
+    )?;
+    let prepared = prepare_screened(args, Some(&verdicts))?;
+    let job = open_job(args, &prepared, &model_id)?;
+    Ok(Screened {
+        prepared,
+        job,
+        judge,
+        model_id,
+    })
+}
+
+/// A grading job ready to run, after the screen.
+pub struct Screened {
+    /// Inputs, screened.
+    pub prepared: Prepared,
+    /// The grading job on the screened answers.
+    pub job: Job<AnswerRecord>,
+    /// The judge, when the screening question loaded it.
+    pub judge: Option<crate::engine::JudgeModel>,
+    /// The judge's identity.
+    pub model_id: ModelId,
+}
+
 /// Run `assize grade`: check inputs and the run folder, load the judge only when
 /// work remains, grade, print the summary.
 pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
-    let prepared = prepare(&args)?;
-    let model_id = ModelId::resolve(&args.model)?;
-    let job = open_job(&args, &prepared, &model_id)?;
-    let judge = if job.remaining() > 0 {
-        let mut judge = load_judge(&args.model, args.output.quiet)?;
-        if args.no_prefix_reuse {
-            judge.set_prefix_reuse(false);
-        }
-        Some(judge)
-    } else {
-        None
-    };
+    let Screened {
+        prepared,
+        job,
+        mut judge,
+        model_id,
+    } = screened_job(&args)?;
+    if judge.is_none() && job.remaining() > 0 {
+        judge = Some(load_judge(&args.model, args.output.quiet)?);
+    }
+    if let (Some(j), true) = (judge.as_mut(), args.no_prefix_reuse) {
+        j.set_prefix_reuse(false);
+    }
     let started = std::time::Instant::now();
     let mut report = finish_run(
         &args,
@@ -583,29 +650,7 @@ pub fn summary_text(r: &GradeReport) -> String {
             row.low_mass
         ));
     }
-    if !r.flagged.is_empty() {
-        s.push_str(&format!(
-            "\ncaution: {} answer(s) contain text aimed at the grader ({}):\n",
-            r.flagged.len(),
-            r.screen.action()
-        ));
-        for f in &r.flagged {
-            let why: Vec<String> = f
-                .flags
-                .iter()
-                .map(|g| format!("{}: \"{}\"", g.rule.describe(), g.sentence))
-                .collect();
-            s.push_str(&format!(
-                "  {} (line {}): {}\n",
-                f.item,
-                f.line,
-                why.join("; ")
-            ));
-        }
-        if r.screen == ScreenMode::Flag {
-            s.push_str("  fix: grade them with `--screen strip` (flagged sentences removed) or `--screen skip`\n");
-        }
-    }
+    s.push_str(&flagged_text(&r.flagged, r.screen));
     if !r.low_mass.is_empty() {
         s.push_str(&format!(
             "\ncaution: {} record(s) have low captured mass: the judge did not answer in the form's labels there, so their scores are unreliable (see `low_mass` in {})\n",
@@ -616,28 +661,60 @@ pub fn summary_text(r: &GradeReport) -> String {
     s
 }
 
-/// Screens every answer for text aimed at the grader; with `strip` the flagged
-/// sentences are removed, with `skip` the answer is dropped from the run.
-pub fn screen_answers(answers: &mut Vec<AnswerRecord>, mode: ScreenMode) -> Vec<FlaggedAnswer> {
+/// The caution listing answers that address the grader and what grading did with them.
+pub fn flagged_text(flagged: &[FlaggedAnswer], mode: ScreenMode) -> String {
+    if flagged.is_empty() {
+        return String::new();
+    }
+    let judge_only = flagged.iter().filter(|f| !f.by_rules()).count();
+    let mut s = format!(
+        "\ncaution: {} answer(s) contain text aimed at the grader; flagged by the rule set: {}\n",
+        flagged.len(),
+        mode.action()
+    );
+    if judge_only > 0 {
+        s.push_str(&format!(
+            "  {judge_only} flagged by the judge question only: {}\n",
+            mode.judge_only_action()
+        ));
+    }
+    for f in flagged {
+        let mut why: Vec<String> = f
+            .flags
+            .iter()
+            .map(|g| format!("{}: \"{}\"", g.rule.describe(), g.sentence))
+            .collect();
+        if let (Some(p), true) = (f.judge_p_yes, f.by_judge) {
+            why.push(format!("judge question P(yes) {p:.2}"));
+        }
+        s.push_str(&format!("  {} (line {}): {}\n", f.item, f.line, why.join("; ")));
+    }
+    if mode == ScreenMode::Flag {
+        s.push_str("  fix: grade them with `--screen strip` (flagged sentences removed) or `--screen skip`\n");
+    }
+    s
+}
+
+/// Screens every answer for text aimed at the grader, by the rule set and, when
+/// given, the judge question's verdicts: with `strip` the rule-flagged sentences are
+/// removed (an answer only the judge flagged is graded as written), with `skip` a
+/// flagged answer is dropped from the run.
+pub fn screen_answers(
+    answers: &mut Vec<AnswerRecord>,
+    mode: ScreenMode,
+    judge: Option<&JudgeScreen>,
+) -> Vec<FlaggedAnswer> {
     let mut flagged = Vec::new();
     answers.retain_mut(|a| {
-        let s = screen(&a.answer);
-        if s.flags.is_empty() {
+        let verdict = judge.and_then(|j| j.verdict(&a.item_id()));
+        let Some((f, s)) = flag_answer(a.item_id(), a.line, &a.answer, verdict) else {
             return true;
+        };
+        flagged.push(f);
+        if mode == ScreenMode::Strip {
+            a.answer = s.cleaned;
         }
-        flagged.push(FlaggedAnswer {
-            item: format!("{}/{}", a.question_id, a.system),
-            line: a.line,
-            flags: s.flags,
-        });
-        match mode {
-            ScreenMode::Flag => true,
-            ScreenMode::Strip => {
-                a.answer = s.cleaned;
-                true
-            }
-            ScreenMode::Skip => false,
-        }
+        mode.grades()
     });
     flagged
 }

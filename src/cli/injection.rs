@@ -10,10 +10,10 @@ use clap::Args;
 use serde::Serialize;
 
 use super::common::load_judge;
-use super::grade::{finish_run, open_job, prepare, GradeArgs, ModelId};
+use super::grade::{finish_run, screened_job, GradeArgs, Screened};
 use super::print_json;
 use crate::data::read_answers;
-use crate::guard::ScreenMode;
+use crate::guard::{FlaggedAnswer, ScreenMode};
 use crate::judge::grade::label_value;
 use crate::judge::{Backend, GradeRecord};
 use crate::probes::injection::{injection_effect, InjectionEffect, ProbePair, DEFAULT_INJECTION};
@@ -48,14 +48,63 @@ pub struct InjectionReport {
 pub struct ScreenCounts {
     /// The `--screen` mode the probe was graded with.
     pub mode: ScreenMode,
-    /// Injected copies flagged.
+    /// Injected copies flagged (by the rule set or the judge question).
     pub injected_flagged: usize,
+    /// Injected copies flagged by the rule set.
+    pub injected_by_rules: usize,
+    /// Injected copies flagged by the judge question (absent without `--ask-judge`).
+    pub injected_by_judge: Option<usize>,
     /// Injected copies.
     pub injected: usize,
-    /// Original answers flagged.
+    /// Original answers flagged (by the rule set or the judge question).
     pub original_flagged: usize,
+    /// Original answers flagged by the rule set.
+    pub original_by_rules: usize,
+    /// Original answers flagged by the judge question (absent without `--ask-judge`).
+    pub original_by_judge: Option<usize>,
     /// Original answers.
     pub original: usize,
+}
+
+impl ScreenCounts {
+    /// Counts of the screen over the probe's answers.
+    fn of(flagged: &[FlaggedAnswer], mode: ScreenMode, asked: bool, n: usize) -> Self {
+        let count = |injected: bool, f: &dyn Fn(&FlaggedAnswer) -> bool| {
+            flagged
+                .iter()
+                .filter(|a| a.item.ends_with(INJECTED) == injected && f(a))
+                .count()
+        };
+        ScreenCounts {
+            mode,
+            injected_flagged: count(true, &|_| true),
+            injected_by_rules: count(true, &FlaggedAnswer::by_rules),
+            injected_by_judge: asked.then(|| count(true, &|a| a.by_judge)),
+            injected: n,
+            original_flagged: count(false, &|_| true),
+            original_by_rules: count(false, &FlaggedAnswer::by_rules),
+            original_by_judge: asked.then(|| count(false, &|a| a.by_judge)),
+            original: n,
+        }
+    }
+
+    /// One line per detector, in plain words.
+    fn text(&self) -> String {
+        let mode = format!("{:?}", self.mode).to_lowercase();
+        let line = |who: &str, i: usize, o: usize| {
+            format!(
+                "  {who:<15} flagged {i} of {} injected copies, {o} of {} original answers\n",
+                self.injected, self.original
+            )
+        };
+        let mut s = format!("\ngrader-text screen (`--screen {mode}`: flagged answers {}):\n", self.mode.action());
+        s.push_str(&line("rule set", self.injected_by_rules, self.original_by_rules));
+        if let (Some(i), Some(o)) = (self.injected_by_judge, self.original_by_judge) {
+            s.push_str(&line("judge question", i, o));
+            s.push_str(&line("either", self.injected_flagged, self.original_flagged));
+        }
+        s
+    }
 }
 
 /// Suffix of the system name of injected copies.
@@ -90,16 +139,15 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
     args.grade.answers = probe_file;
     args.grade.limit = None;
     args.grade.run_dir = Some(run_dir.join("grades"));
-    let prepared = prepare(&args.grade)?;
-    let job = open_job(
-        &args.grade,
-        &prepared,
-        &ModelId::resolve(&args.grade.model)?,
-    )?;
-    let judge = match job.remaining() {
-        0 => None,
-        _ => Some(load_judge(&args.grade.model, quiet)?),
-    };
+    let Screened {
+        prepared,
+        job,
+        mut judge,
+        ..
+    } = screened_job(&args.grade)?;
+    if judge.is_none() && job.remaining() > 0 {
+        judge = Some(load_judge(&args.grade.model, quiet)?);
+    }
     let graded = finish_run(
         &args.grade,
         &prepared,
@@ -132,22 +180,16 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             effects.push(injection_effect(&c.key, &pairs, top, args.grade.seed)?);
         }
     }
-    let injected_flagged = prepared
-        .flagged
-        .iter()
-        .filter(|f| f.item.ends_with(INJECTED))
-        .count();
     let report = InjectionReport {
         run_dir: run_dir.display().to_string(),
         instruction: args.instruction.clone(),
         effects,
-        screen: ScreenCounts {
-            mode: args.grade.screen,
-            injected_flagged,
-            injected: answers.len(),
-            original_flagged: prepared.flagged.len() - injected_flagged,
-            original: answers.len(),
-        },
+        screen: ScreenCounts::of(
+            &prepared.flagged,
+            args.grade.screen,
+            args.grade.ask.ask_judge,
+            answers.len(),
+        ),
     };
     if args.grade.output.json {
         print_json(&report)?;
@@ -163,16 +205,7 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             );
             println!("  {}", e.verdict);
         }
-        let c = &report.screen;
-        println!(
-            "\ngrader-text screen ({}): flagged {} of {} injected copies and {} of {} original answers; {}",
-            format!("{:?}", c.mode).to_lowercase(),
-            c.injected_flagged,
-            c.injected,
-            c.original_flagged,
-            c.original,
-            c.mode.action()
-        );
+        print!("{}", report.screen.text());
     }
     Ok(ExitCode::SUCCESS)
 }

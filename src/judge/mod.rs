@@ -9,6 +9,7 @@ pub mod pairwise;
 pub mod panel;
 pub mod records;
 pub mod scripted;
+pub mod screen;
 pub mod steps;
 
 pub use records::{GradeRecord, PairRecord, ProbeKind, ProbeRecord};

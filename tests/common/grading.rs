@@ -34,6 +34,7 @@ pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
         anchor_count: 3,
         low_mass: 0.5,
         screen: assize::guard::ScreenMode::Flag,
+        ask: Default::default(),
         seed: 7,
         run_dir: Some(run_dir.to_path_buf()),
         shard: None,
