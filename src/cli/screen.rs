@@ -29,7 +29,7 @@ pub const SCREEN_FILE: &str = "screen.jsonl";
 /// Default threshold on the judge's P(yes). Measured with the default judge on the
 /// demo answers and the injection probe's attacked copies (README, "Answers that
 /// address the grader").
-pub const DEFAULT_ABOVE: f64 = 0.5;
+pub const DEFAULT_ABOVE: f64 = 0.75;
 
 /// The judge's screening question, shared by `screen`, `grade` and `injection`.
 #[derive(Debug, Clone, Args)]

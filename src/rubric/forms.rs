@@ -37,9 +37,9 @@ pub const VERDICT_PREFILL: &str = "Better: ";
 /// Pairwise verdict labels: second better, first better, tie (`0`).
 pub const VERDICT_LABELS: [&str; 3] = ["1", "2", "0"];
 /// The assistant text that opens the screening question's reply slot.
-pub const SCREEN_PREFILL: &str = "Reply: ";
-/// The screening question's labels, `no` first.
-pub const SCREEN_LABELS: [&str; 2] = ["no", "yes"];
+pub const SCREEN_PREFILL: &str = "";
+/// The screening question's labels, `No` first.
+pub const SCREEN_LABELS: [&str; 2] = ["No", "Yes"];
 
 /// SHA-256 over the screening question's form and system message, for screen manifests.
 pub fn screen_sha256() -> String {
