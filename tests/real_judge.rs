@@ -82,6 +82,7 @@ fn grade_args(answers: PathBuf, run_dir: PathBuf, criteria: &[&str]) -> GradeArg
         low_mass: 0.5,
         screen: assize::guard::ScreenMode::Flag,
         ask: Default::default(),
+        judges: vec![],
         seed: 7,
         run_dir: Some(run_dir),
         shard: None,

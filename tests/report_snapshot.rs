@@ -84,6 +84,7 @@ fn grade_args(run_dir: PathBuf, reasoning: bool) -> GradeArgs {
         low_mass: 0.5,
         screen: assize::guard::ScreenMode::Flag,
         ask: Default::default(),
+        judges: vec![],
         seed: 7,
         run_dir: Some(run_dir),
         shard: None,

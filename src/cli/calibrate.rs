@@ -53,7 +53,8 @@ pub struct CalibrateReport {
 }
 
 /// Run `assize calibrate`.
-pub fn run(args: CalibrateArgs) -> anyhow::Result<ExitCode> {
+pub fn run(mut args: CalibrateArgs) -> anyhow::Result<ExitCode> {
+    super::evidence::expand_panel_folder(&mut args.grades, &mut args.panel)?;
     let text = std::fs::read_to_string(&args.mapping)?;
     let mapping: MappingFile = serde_json::from_str(&text).map_err(|e| {
         usage(

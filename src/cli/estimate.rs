@@ -118,6 +118,9 @@ pub struct EstimateReport {
 
 /// Compute the estimates.
 pub fn estimate(args: &EstimateArgs) -> anyhow::Result<EstimateReport> {
+    let mut args = args.clone();
+    super::evidence::expand_panel_folder(&mut args.grades, &mut args.panel)?;
+    let args = &args;
     if !(0.5..1.0).contains(&args.level) {
         return Err(usage(
             format!("`--level {}` is not in [0.5, 1)", args.level),

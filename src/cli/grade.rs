@@ -43,6 +43,9 @@ pub struct GradeArgs {
     pub criteria: Vec<String>,
     #[command(flatten)]
     pub model: ModelArgs,
+    /// Grade with each of these judges in turn (comma-separated, each as `--model` takes it): one ordinary run folder per judge inside a panel folder (`--run-dir`, default `runs/panel-HASH`) that `vet`, `estimate`, `calibrate` and `report` read as a panel
+    #[arg(long, value_name = "MODELS", value_delimiter = ',', conflicts_with = "model")]
+    pub judges: Vec<String>,
     /// Reasoning first: the judge writes an assessment following the evaluation steps, then the score
     #[arg(long)]
     pub reasoning: bool,
@@ -418,6 +421,7 @@ pub fn finish_run(
         low_mass: args.low_mass,
         seed: args.seed,
     };
+    let (started, before) = (std::time::Instant::now(), backend.and_then(|b| b.counters()));
     let outcome = job.run(
         |a| {
             let b = backend.expect("a judge is loaded when work remains");
@@ -432,6 +436,10 @@ pub fn finish_run(
         },
         GradeRecord::key,
     )?;
+    if outcome.computed > 0 {
+        let after = backend.and_then(|b| b.counters());
+        record_cost(&job, outcome.computed, started.elapsed(), before, after)?;
+    }
     let records = outcome.records;
     let summary = if records.is_empty() {
         Vec::new()
@@ -461,6 +469,29 @@ pub fn finish_run(
             })
             .collect(),
     })
+}
+
+/// Adds this invocation's grading time and decoder work to `cost.json` in the run
+/// folder (the job holds the lock, since it computed records).
+fn record_cost(
+    job: &Job<AnswerRecord>,
+    computed: usize,
+    elapsed: std::time::Duration,
+    before: Option<crate::engine::WorkCounters>,
+    after: Option<crate::engine::WorkCounters>,
+) -> anyhow::Result<()> {
+    use crate::store::cost::{read_cost, Cost, COST_FILE};
+    let (b, a) = (before.unwrap_or_default(), after.unwrap_or_default());
+    let mut log = read_cost(job.dir())?.unwrap_or_default();
+    log.sessions.push(Cost {
+        records: computed as u64,
+        seconds: elapsed.as_secs_f64(),
+        prompt_tokens_computed: a.computed_tokens - b.computed_tokens,
+        prompt_tokens_reused: a.reused_tokens - b.reused_tokens,
+        generated_tokens: a.generated_tokens - b.generated_tokens,
+    });
+    job.save(COST_FILE, serde_json::to_string_pretty(&log)?.as_bytes())?;
+    Ok(())
 }
 
 /// The rubric with judge-written evaluation steps, from `steps.json` in the run
@@ -572,6 +603,9 @@ pub struct Screened {
 /// Run `assize grade`: check inputs and the run folder, load the judge only when
 /// work remains, grade, print the summary.
 pub fn run(args: GradeArgs) -> anyhow::Result<ExitCode> {
+    if !args.judges.is_empty() {
+        return super::grade_panel::run(args);
+    }
     let Screened {
         prepared,
         job,

@@ -112,6 +112,12 @@ pub const INJECTED: &str = "+injected";
 
 /// Run `assize injection`.
 pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
+    if !args.grade.judges.is_empty() {
+        return Err(super::errors::usage(
+            "`injection` probes one judge; it takes no `--judges`",
+            "run the probe once per judge with `--model`",
+        ));
+    }
     let quiet = args.grade.output.quiet;
     let mut answers = read_answers(&args.grade.answers)?;
     answers.truncate(args.grade.limit.unwrap_or(20));

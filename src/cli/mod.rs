@@ -17,6 +17,7 @@ pub mod errors;
 pub mod estimate;
 pub mod evidence;
 pub mod grade;
+pub mod grade_panel;
 pub mod injection;
 pub mod merge;
 pub mod model;

@@ -246,7 +246,8 @@ fn write(path: &Path, text: &str, what: &str) -> anyhow::Result<()> {
 }
 
 /// Run `assize report`.
-pub fn run(args: ReportArgs) -> anyhow::Result<ExitCode> {
+pub fn run(mut args: ReportArgs) -> anyhow::Result<ExitCode> {
+    super::evidence::expand_panel_folder(&mut args.grades[0], &mut args.panel)?;
     let (variants, extra) = match variant_section(&args)? {
         Some((section, sets)) => (Some(section), sets),
         None => (None, Vec::new()),
@@ -332,6 +333,7 @@ fn variant_section(
         panel_members: out.panel.map(|p| p.members).unwrap_or_default(),
         choice: out.variant_choice,
         notes: out.calibration_notes,
+        grading_cost: out.grading_cost,
     };
     Ok(Some((section, out.grade_sets)))
 }

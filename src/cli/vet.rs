@@ -103,6 +103,8 @@ pub struct VetOutput {
     /// report's per-item view (not printed).
     #[serde(skip)]
     pub grade_sets: Vec<GradeSet>,
+    /// What grading cost per judge run (`--grades` and each panel member) and together.
+    pub grading_cost: super::evidence::GradingCosts,
 }
 
 /// The panel as vetted.
@@ -196,6 +198,9 @@ pub fn load_comparisons(
 
 /// Compute the vetting reports.
 pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
+    let mut args = args.clone();
+    super::evidence::expand_panel_folder(&mut args.grades, &mut args.panel)?;
+    let args = &args;
     let rubric = args.rubric.load_for_run(&args.grades)?;
     let answers = args.baselines.as_deref().map(read_answers).transpose()?;
     let labels = read_labels_checked(
@@ -227,6 +232,7 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
         ..VetOptions::default()
     };
     let panel = evidence.panel()?;
+    let grading_cost = evidence.costs();
     let tables: Vec<(String, FeatureTable)> = if args.calibrate {
         let mut t = vec![(format!("calibrated {PRIMARY}"), evidence.table(false))];
         if panel.is_some() {
@@ -347,6 +353,7 @@ pub fn vet_run(args: &VetArgs) -> anyhow::Result<VetOutput> {
             incomplete: p.incomplete.into_iter().map(|i| i.key).collect(),
         }),
         calibration_notes,
+        grading_cost,
     })
 }
 
@@ -399,6 +406,7 @@ pub fn run(args: VetArgs) -> anyhow::Result<ExitCode> {
         for n in &out.calibration_notes {
             println!("calibration: {n}");
         }
+        print!("{}", out.grading_cost.text());
     }
     if !out.gate_failures.is_empty() {
         return Err(GateFailed(format!(

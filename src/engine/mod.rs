@@ -18,4 +18,4 @@ pub mod tokenizer;
 
 pub use error::EngineError;
 pub use gguf::{GgufFile, ModelInfo};
-pub use session::{JudgeModel, SlotRequest};
+pub use session::{JudgeModel, SlotRequest, WorkCounters};

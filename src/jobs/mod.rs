@@ -206,7 +206,7 @@ impl<U> Job<U> {
     /// Compute every remaining unit with `work`, appending each record as soon as it
     /// exists; a failing unit is listed and the rest go on. Returns all the job's
     /// records. `key` gives a record's key (as listed in [`Unit::records`]).
-    pub fn run<R, F, K>(self, mut work: F, key: K) -> Result<Outcome<R>, StoreError>
+    pub fn run<R, F, K>(&self, mut work: F, key: K) -> Result<Outcome<R>, StoreError>
     where
         R: Serialize + DeserializeOwned,
         F: FnMut(&U) -> anyhow::Result<Vec<R>>,

@@ -23,6 +23,10 @@ pub trait Backend {
     fn model_path(&self) -> String;
     /// SHA-256 of the model file.
     fn model_sha256(&self) -> String;
+    /// Decoder work so far, for cost records; `None` for a judge that runs no model.
+    fn counters(&self) -> Option<crate::engine::WorkCounters> {
+        None
+    }
     /// Unnormalised log-probability of each label at the slot after each form's
     /// prefill. Forms of one item are passed together so their shared prefix is
     /// computed once.
@@ -66,6 +70,10 @@ impl Backend for JudgeModel {
 
     fn model_sha256(&self) -> String {
         self.sha256.clone()
+    }
+
+    fn counters(&self) -> Option<crate::engine::WorkCounters> {
+        Some(JudgeModel::counters(self))
     }
 
     fn score_forms(

@@ -191,6 +191,8 @@ pub struct VariantSection {
     pub choice: crate::vet::VariantChoice,
     /// Methods chosen for calibrated variants, and what was left out.
     pub notes: Vec<String>,
+    /// What grading cost per judge run and together, as recorded in the run folders.
+    pub grading_cost: crate::cli::evidence::GradingCosts,
 }
 
 /// A rubric criterion as shown.

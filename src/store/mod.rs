@@ -6,6 +6,7 @@
 //! Never rewrites or reorders a finished record.
 
 pub mod latest;
+pub mod cost;
 mod lock;
 mod results;
 

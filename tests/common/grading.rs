@@ -35,6 +35,7 @@ pub fn grade_args(answers: &Path, run_dir: &Path) -> GradeArgs {
         low_mass: 0.5,
         screen: assize::guard::ScreenMode::Flag,
         ask: Default::default(),
+        judges: vec![],
         seed: 7,
         run_dir: Some(run_dir.to_path_buf()),
         shard: None,
