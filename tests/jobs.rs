@@ -54,6 +54,9 @@ fn merged_shards_equal_one_process_bit_for_bit() {
     assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "whole\n");
     merge(&merged, &parts, &[("grades.jsonl", "grade")]).expect("merge");
     assert_eq!(std::fs::read_to_string(&pointer).expect("pointer"), "merged\n");
+    let cost = assize::store::cost::read_cost(&merged).expect("cost").expect("recorded");
+    assert_eq!(cost.sessions.len(), 3, "one entry per shard");
+    assert_eq!(cost.total().records as usize, whole.records);
     assert_eq!(
         sorted_lines(&merged.join("grades.jsonl")),
         sorted_lines(&tmp.path().join("whole/grades.jsonl"))

@@ -79,7 +79,11 @@ pub fn merge(
     }
     let lock = RunLock::acquire(into)?;
     for name in &others {
-        if let Some(bytes) = same_everywhere(parts, name)? {
+        let bytes = match name.as_str() {
+            store::cost::COST_FILE => joined_costs(parts)?,
+            _ => same_everywhere(parts, name)?,
+        };
+        if let Some(bytes) = bytes {
             store::write_atomic(&into.join(name), &bytes)?;
         }
     }
@@ -230,6 +234,22 @@ fn join_results(parts: &[PathBuf], name: &str) -> Result<BTreeMap<String, String
             records: crate::data::list(&overlaps),
         })
     }
+}
+
+/// Every shard's grading cost entries in one log, shard by shard, so the merged run
+/// records what all its shards cost.
+fn joined_costs(parts: &[PathBuf]) -> Result<Option<Vec<u8>>, MergeError> {
+    let mut log = store::cost::CostLog::default();
+    for dir in parts {
+        if let Some(l) = store::cost::read_cost(dir)? {
+            log.sessions.extend(l.sessions);
+        }
+    }
+    Ok(Some(
+        serde_json::to_string_pretty(&log)
+            .expect("cost log serialises")
+            .into_bytes(),
+    ))
 }
 
 /// The bytes of a file every shard that has it holds alike (a cache such as
