@@ -474,11 +474,10 @@ fn judge_question_flags_join_the_rule_set_and_resume() {
         assert_eq!(report.flagged.len(), 2);
         let recs: Vec<GradeRecord> =
             read_records(&dir.path().join("run/grades.jsonl")).expect("read");
-        let n = recs.iter().filter(|r| r.question_id == "q01").count() / 3;
         let (draft, q17) = (graded(&recs, "q01/local-draft"), graded(&recs, "q17/assistant-v1"));
         match mode {
             ScreenMode::Skip => assert_eq!((draft, q17), (0, 0)),
-            _ => assert!(draft > 0 && q17 > 0 && n > 0),
+            _ => assert!(draft > 0 && q17 > 0),
         }
         if mode == ScreenMode::Strip {
             let kept = p

@@ -178,7 +178,7 @@ pub fn grade_panel(args: &GradeArgs, load: &mut LoadJudge) -> anyhow::Result<Pan
         a.run_dir = Some(panel_dir.join(&e.dir));
         jobs.push(open_job(a, &prepared, id)?);
     }
-    let mut members = Vec::new();
+    let mut reports = Vec::new();
     for (((a, id), e), job) in member_args.iter().zip(&entries).zip(jobs) {
         if !args.output.quiet {
             eprintln!("panel member `{}` ({})", e.name, id.path);
@@ -201,7 +201,7 @@ pub fn grade_panel(args: &GradeArgs, load: &mut LoadJudge) -> anyhow::Result<Pan
                 generated_tokens: c.generated_tokens - b.generated_tokens,
             }
         });
-        members.push(MemberReport {
+        reports.push(MemberReport {
             name: e.name.clone(),
             recorded: read_cost(Path::new(&grading.run_dir))?.map(|c| c.total()),
             grading,
@@ -210,7 +210,7 @@ pub fn grade_panel(args: &GradeArgs, load: &mut LoadJudge) -> anyhow::Result<Pan
     }
     Ok(PanelGradeReport {
         panel_dir: panel_dir.display().to_string(),
-        members,
+        members: reports,
     })
 }
 

@@ -211,6 +211,9 @@ pub fn run(mut args: InjectionArgs) -> anyhow::Result<ExitCode> {
             );
             println!("  {}", e.verdict);
         }
+        if report.effects.is_empty() && args.grade.screen == ScreenMode::Skip {
+            println!("no pair of original and injected answer was graded: the screen left out every injected copy (`--screen skip`)");
+        }
         print!("{}", report.screen.text());
     }
     Ok(ExitCode::SUCCESS)
