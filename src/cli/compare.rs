@@ -490,6 +490,8 @@ pub fn finish_compare(
         },
         PairRecord::key,
     )?;
+    // Release the folder lock before the slot probes open their job in the same folder.
+    drop(job);
     if !outcome.failed.is_empty() {
         return Err(usage(
             format!(
