@@ -208,6 +208,16 @@ pub fn file_sha256(path: &Path) -> anyhow::Result<String> {
     Ok(format!("{:x}", Sha256::digest(&bytes)))
 }
 
+/// The version a run folder records and must match on resume: the release and the
+/// engine's arithmetic revision (`engine::NUMERICS`).
+pub fn run_version() -> String {
+    format!(
+        "{}+numerics.{}",
+        env!("CARGO_PKG_VERSION"),
+        crate::engine::NUMERICS
+    )
+}
+
 /// A run folder name derived from what the run depends on, so the same command
 /// resumes and any change of model, rubric, data or options starts a fresh run.
 pub fn default_run_dir(kind: &str, manifest_json: &str) -> PathBuf {

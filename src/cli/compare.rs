@@ -303,7 +303,7 @@ fn compare_spec(args: &CompareArgs, s: &CompareSetup, model: &ModelId) -> JobSpe
     }
     let manifest = Manifest {
         kind: "compare".into(),
-        tool_version: env!("CARGO_PKG_VERSION").into(),
+        tool_version: super::common::run_version(),
         model_path: model.path.clone(),
         model_sha256: model.sha256.clone(),
         rubric_sha256: s.rubric.as_ref().map(|r| r.1.clone()).unwrap_or_default(),

@@ -299,7 +299,7 @@ pub fn manifest(args: &GradeArgs, p: &Prepared, model: &ModelId) -> anyhow::Resu
     }
     Ok(Manifest {
         kind: "grade".into(),
-        tool_version: env!("CARGO_PKG_VERSION").into(),
+        tool_version: super::common::run_version(),
         model_path: model.path.clone(),
         model_sha256: model.sha256.clone(),
         rubric_sha256: p.rubric.sha256.clone(),

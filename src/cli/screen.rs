@@ -109,7 +109,7 @@ pub fn open_job(
     inputs.insert("answers".to_string(), shown_path(answers_path));
     let manifest = Manifest {
         kind: "screen".into(),
-        tool_version: env!("CARGO_PKG_VERSION").into(),
+        tool_version: super::common::run_version(),
         model_path: model.path.clone(),
         model_sha256: model.sha256.clone(),
         rubric_sha256: String::new(),

@@ -17,5 +17,11 @@ pub mod session;
 pub mod tokenizer;
 
 pub use error::EngineError;
+
+/// Revision of the engine's arithmetic. Bump it with any change that can alter one
+/// bit of a judge's output (a reduction order, a norm, a rounding rule): run folders
+/// record it, so a run graded with other arithmetic is refused on resume instead of
+/// mixing records from two engines. 2: RMS norm summed in lanes.
+pub const NUMERICS: u32 = 2;
 pub use gguf::{GgufFile, ModelInfo};
 pub use session::{JudgeModel, SlotRequest, WorkCounters};
