@@ -7,7 +7,6 @@
 //! integer sums are exact. Reached only through a `Kernels` value for `Isa::Avx2` or
 //! `Isa::AvxVnni`; never called on a processor without those instructions.
 
-use super::super::ops::{Activation, RopePairs, RopeTable};
 use super::{softmax, Acts, KeyValues, ATTN_TILE, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK};
 use std::arch::x86_64::*;
 
@@ -603,35 +602,4 @@ unsafe fn weighted<const U: usize>(op: *mut f32, vp: *const f32, stride: usize, 
     }
 }
 
-/// `super::gate` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX2 and FMA.
-#[target_feature(enable = "avx2,fma")]
-pub(super) unsafe fn gate(act: Activation, g: &mut [f32], u: &[f32]) {
-    super::scalar::gate(act, g, u)
-}
-
-/// `super::rms_norm` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX2 and FMA.
-#[target_feature(enable = "avx2,fma")]
-pub(super) unsafe fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
-    super::scalar::rms_norm(x, w, eps)
-}
-
-/// `super::rope` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX2 and FMA.
-#[target_feature(enable = "avx2,fma")]
-pub(super) unsafe fn rope(
-    x: &mut [f32],
-    width: usize,
-    d: usize,
-    table: &RopeTable,
-    pairs: RopePairs,
-) {
-    super::scalar::rope(x, width, d, table, pairs)
-}
+row_operations!("avx2,fma", "The processor has AVX2 and FMA.");

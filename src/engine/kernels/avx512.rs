@@ -4,7 +4,6 @@
 //! a `Kernels` value for `Isa::Avx512`; never called on a processor without those
 //! instructions.
 
-use super::super::ops::{Activation, RopePairs, RopeTable};
 use super::{softmax, Acts, KeyValues, ATTN_TILE, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK};
 use std::arch::x86_64::*;
 
@@ -490,35 +489,7 @@ unsafe fn heads<const C: usize>(args: Args<'_, '_>) {
     }
 }
 
-/// `super::gate` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX-512 F/BW/VL, AVX2 and FMA.
-#[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
-pub(super) unsafe fn gate(act: Activation, g: &mut [f32], u: &[f32]) {
-    super::scalar::gate(act, g, u)
-}
-
-/// `super::rms_norm` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX-512 F/BW/VL, AVX2 and FMA.
-#[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
-pub(super) unsafe fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
-    super::scalar::rms_norm(x, w, eps)
-}
-
-/// `super::rope` compiled for this family's registers.
-///
-/// # Safety
-/// The processor has AVX-512 F/BW/VL, AVX2 and FMA.
-#[target_feature(enable = "avx512f,avx512bw,avx512vl,avx2,fma")]
-pub(super) unsafe fn rope(
-    x: &mut [f32],
-    width: usize,
-    d: usize,
-    table: &RopeTable,
-    pairs: RopePairs,
-) {
-    super::scalar::rope(x, width, d, table, pairs)
-}
+row_operations!(
+    "avx512f,avx512bw,avx512vl,avx2,fma",
+    "The processor has AVX-512 F/BW/VL, AVX2 and FMA."
+);

@@ -41,6 +41,48 @@
 
 use std::sync::OnceLock;
 
+/// The row operations (`gate`, `rms_norm`, `rope`) of one family: the scalar code
+/// compiled under the family's `#[target_feature]`, so its loops use the family's
+/// registers with the scalar arithmetic. `$features` are the features enabled, `$has`
+/// the `# Safety` condition the dispatcher checked.
+#[cfg(target_arch = "x86_64")]
+macro_rules! row_operations {
+    ($features:literal, $has:literal) => {
+        /// `super::gate` compiled for this family's registers.
+        ///
+        /// # Safety
+        #[doc = $has]
+        #[target_feature(enable = $features)]
+        pub(super) unsafe fn gate(act: crate::engine::ops::Activation, g: &mut [f32], u: &[f32]) {
+            super::scalar::gate(act, g, u)
+        }
+
+        /// `super::rms_norm` compiled for this family's registers.
+        ///
+        /// # Safety
+        #[doc = $has]
+        #[target_feature(enable = $features)]
+        pub(super) unsafe fn rms_norm(x: &[f32], w: &[f32], eps: f32) -> Vec<f32> {
+            super::scalar::rms_norm(x, w, eps)
+        }
+
+        /// `super::rope` compiled for this family's registers.
+        ///
+        /// # Safety
+        #[doc = $has]
+        #[target_feature(enable = $features)]
+        pub(super) unsafe fn rope(
+            x: &mut [f32],
+            width: usize,
+            d: usize,
+            table: &crate::engine::ops::RopeTable,
+            pairs: crate::engine::ops::RopePairs,
+        ) {
+            super::scalar::rope(x, width, d, table, pairs)
+        }
+    };
+}
+
 #[cfg(target_arch = "x86_64")]
 mod avx2;
 #[cfg(target_arch = "x86_64")]
