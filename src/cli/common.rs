@@ -14,7 +14,7 @@ use super::errors::usage;
 use super::models_dirs;
 use crate::engine::decoder::LoadOptions;
 use crate::engine::JudgeModel;
-use crate::rubric::{load_rubric, parse_rubric, Rubric};
+use crate::rubric::{load_rubric, parse_rubric, Criterion, Rubric};
 use crate::store::read_manifest;
 
 /// File name of the default judge inside the models folder.
@@ -49,6 +49,18 @@ impl RubricArg {
     /// For a command that starts a run: the named rubric, else `support`.
     pub fn load(&self) -> anyhow::Result<Rubric> {
         Ok(load_rubric(&self.named())?)
+    }
+
+    /// Criterion `key` of `rubric` (loaded from this option), or a usage error that
+    /// names the rubric and lists its criteria.
+    pub fn criterion<'r>(&self, rubric: &'r Rubric, key: &str) -> anyhow::Result<&'r Criterion> {
+        rubric.criterion(key).ok_or_else(|| {
+            let keys: Vec<&str> = rubric.criteria.iter().map(|c| c.key.as_str()).collect();
+            super::errors::usage(
+                format!("rubric `{}` has no criterion `{key}`", self.named().display()),
+                format!("use one of: {}", keys.join(", ")),
+            )
+        })
     }
 
     /// For a command that reads a run folder: the rubric text recorded in its

@@ -219,23 +219,7 @@ pub fn compare_setup(args: &CompareArgs) -> anyhow::Result<CompareSetup> {
         match one_criterion(&args.criterion, "compare")? {
             Some(k) => {
                 let rubric = args.rubric.load()?;
-                let c = rubric.criterion(k).ok_or_else(|| {
-                    usage(
-                        format!(
-                            "rubric `{}` has no criterion `{k}`",
-                            args.rubric.named().display()
-                        ),
-                        format!(
-                            "use one of: {}",
-                            rubric
-                                .criteria
-                                .iter()
-                                .map(|c| c.key.as_str())
-                                .collect::<Vec<_>>()
-                                .join(", ")
-                        ),
-                    )
-                })?;
+                let c = args.rubric.criterion(&rubric, k)?;
                 (
                     k.clone(),
                     format!("{} Which answer does better on this?", c.question),

@@ -192,23 +192,7 @@ fn show(args: &ShowArgs) -> anyhow::Result<ExitCode> {
             )
         })?;
     let c = match one_criterion(&args.criterion, "rubric show")? {
-        Some(k) => rubric.criterion(k).ok_or_else(|| {
-            usage(
-                format!(
-                    "rubric `{}` has no criterion `{k}`",
-                    args.rubric.named().display()
-                ),
-                format!(
-                    "use one of: {}",
-                    rubric
-                        .criteria
-                        .iter()
-                        .map(|c| c.key.as_str())
-                        .collect::<Vec<_>>()
-                        .join(", ")
-                ),
-            )
-        })?,
+        Some(k) => args.rubric.criterion(&rubric, k)?,
         None => &rubric.criteria[0],
     };
     let form = Forms::builtin()?.grade(&rubric, item, c, args.reasoning, &[])?;
