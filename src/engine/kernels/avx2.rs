@@ -6,6 +6,13 @@
 //! bit: every i16 partial sum stays below 2^15 (bounds beside each use), so the
 //! integer sums are exact. Reached only through a `Kernels` value for `Isa::Avx2` or
 //! `Isa::AvxVnni`; never called on a processor without those instructions.
+//!
+//! Register use decides the speed here: AVX2 has 16 vector registers, so each body
+//! runs the tile's two 8-column halves one after the other (all of `k` for columns
+//! 0-7, then for 8-15) rather than side by side, which halves the accumulators that
+//! must stay live. Without VNNI, the 4- and 5-bit formats add several `vpmaddubsw`
+//! results in i16 before one `vpmaddwd` widens them (bounds at `madd_sum`), and Q4_K
+//! multiplies by its sub-block scale in that same `vpmaddwd`.
 
 use super::{softmax, Acts, KeyValues, ATTN_TILE, Q4K_SB, Q5_PAIR, Q6K_SB, Q8_BLK, QK};
 use std::arch::x86_64::*;
@@ -83,16 +90,32 @@ unsafe fn i8x8(p: *const u8) -> __m256i {
     _mm256_cvtepi8_epi32(_mm_loadl_epi64(p as *const __m128i))
 }
 
-/// Store the two 8-column halves of each row's accumulators.
+/// Store one 8-column half of each row's accumulators, `hh` 0 or 1.
 ///
 /// # Safety
 /// `out` is valid for 16 columns in each of `R` rows of stride `n`.
 #[inline(always)]
-unsafe fn store<const R: usize>(acc: &[[__m256; 2]; R], n: usize, out: *mut f32) {
-    for (i, halves) in acc.iter().enumerate() {
-        _mm256_storeu_ps(out.add(i * n), halves[0]);
-        _mm256_storeu_ps(out.add(i * n + 8), halves[1]);
+unsafe fn store<const R: usize>(acc: &[__m256; R], hh: usize, n: usize, out: *mut f32) {
+    for (i, half) in acc.iter().enumerate() {
+        _mm256_storeu_ps(out.add(i * n + hh * 8), *half);
     }
+}
+
+/// `Σ w x` over four u8 × i8 pairs of each operand (two `vpmaddubsw` each), summed in
+/// i16: the low and high nibble values of one line against their activation bytes.
+/// Each `vpmaddubsw` lane is at most 2 · w_max · 127 in magnitude (activation quants
+/// lie in −127..=127, as `d = max / 127`), so a caller may add `N` such results in i16
+/// only while `N · 2 · w_max · 127 < 2^15`: 8 for 4-bit weights (30,480), 4 for 5-bit
+/// (31,496), 2 for 6-bit (32,004).
+///
+/// # Safety
+/// The caller runs with AVX2.
+#[inline(always)]
+unsafe fn madd_sum(lo: __m256i, x: *const i8, hi: __m256i) -> __m256i {
+    _mm256_add_epi16(
+        _mm256_maddubs_epi16(lo, bcast(x)),
+        _mm256_maddubs_epi16(hi, bcast(x.add(4))),
+    )
 }
 
 /// Activation quant pointers of rows `r0 .. r0 + R`.
@@ -187,7 +210,11 @@ entry!(
     q8_0 => q8_0_body(w: *const u8, a: &Acts, r0: usize, nb: usize, n: usize, out: *mut f32)
 );
 
-/// Body of `q4k`.
+/// Body of `q4k`. Per sub-block of 32 values: without VNNI the four lines' eight
+/// `vpmaddubsw` results are summed in i16 (at most 8 · 3,810 = 30,480) and one
+/// `vpmaddwd` against the column's 6-bit scale (both i16 halves of a lane) widens and
+/// scales them; with VNNI the i32 sums are multiplied by the scale. The integers
+/// equal the scalar kernel's either way.
 ///
 /// # Safety
 /// As `q4k`.
@@ -202,36 +229,42 @@ unsafe fn q4k_body<const R: usize, const VNNI: bool>(
     let mask = _mm256_set1_epi8(0x0f);
     let kb = a.kb;
     let xq = rows::<R>(a, r0);
-    let mut acc = [[_mm256_setzero_ps(); 2]; R];
-    for b in 0..kb {
-        let sb = w.add(b * Q4K_SB);
-        for hh in 0..2 {
-            let c0 = hh * 32;
+    for hh in 0..2 {
+        let c0 = hh * 32;
+        let mut acc = [_mm256_setzero_ps(); R];
+        for b in 0..kb {
+            let sb = w.add(b * Q4K_SB);
             let mut sumi = [_mm256_setzero_si256(); R];
-            for sp in 0..4 {
-                let mut ia = [_mm256_setzero_si256(); R];
-                let mut ib = [_mm256_setzero_si256(); R];
+            for s in 0..8 {
+                // Scale of each of this half's 8 columns, one per i32 lane.
+                let sc = u8x8(sb.add(2048 + s * 16 + hh * 8));
+                let mut part = [_mm256_setzero_si256(); R];
                 for g in 0..4 {
-                    let wa = load(sb.add((sp * 8 + g) * 64 + c0));
-                    let wb = load(sb.add((sp * 8 + 4 + g) * 64 + c0));
-                    let la = _mm256_and_si256(wa, mask);
-                    let ha = _mm256_and_si256(_mm256_srli_epi16::<4>(wa), mask);
-                    let lb = _mm256_and_si256(wb, mask);
-                    let hb = _mm256_and_si256(_mm256_srli_epi16::<4>(wb), mask);
-                    let off = b * QK + sp * 64 + g * 8;
+                    let wv = load(sb.add((s * 4 + g) * 64 + c0));
+                    let lo = _mm256_and_si256(wv, mask);
+                    let hi = _mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask);
+                    let off = b * QK + s * 32 + g * 8;
                     for i in 0..R {
                         let x = xq[i].add(off);
-                        ia[i] = dot2::<VNNI>(ia[i], la, bcast(x), ha, bcast(x.add(4)));
-                        ib[i] = dot2::<VNNI>(ib[i], lb, bcast(x.add(32)), hb, bcast(x.add(36)));
+                        part[i] = if VNNI {
+                            _mm256_dpbusd_avx_epi32(
+                                _mm256_dpbusd_avx_epi32(part[i], lo, bcast(x)),
+                                hi,
+                                bcast(x.add(4)),
+                            )
+                        } else {
+                            _mm256_add_epi16(part[i], madd_sum(lo, x, hi))
+                        };
                     }
                 }
-                let sa = u8x8(sb.add(2048 + sp * 32 + hh * 8));
-                let sbv = u8x8(sb.add(2048 + sp * 32 + 16 + hh * 8));
+                // The scale in both i16 halves of each lane, for `vpmaddwd`.
+                let sc16 = _mm256_or_si256(sc, _mm256_slli_epi32::<16>(sc));
                 for i in 0..R {
-                    let t = _mm256_add_epi32(
-                        _mm256_mullo_epi32(ia[i], sa),
-                        _mm256_mullo_epi32(ib[i], sbv),
-                    );
+                    let t = if VNNI {
+                        _mm256_mullo_epi32(part[i], sc)
+                    } else {
+                        _mm256_madd_epi16(part[i], sc16)
+                    };
                     sumi[i] = _mm256_add_epi32(sumi[i], t);
                 }
             }
@@ -250,13 +283,13 @@ unsafe fn q4k_body<const R: usize, const VNNI: bool>(
             for i in 0..R {
                 let dx = _mm256_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
                 let f = _mm256_cvtepi32_ps(sumi[i]);
-                let v = _mm256_fmadd_ps(f, _mm256_mul_ps(d, dx), acc[i][hh]);
+                let v = _mm256_fmadd_ps(f, _mm256_mul_ps(d, dx), acc[i]);
                 let fm = _mm256_cvtepi32_ps(mins[i]);
-                acc[i][hh] = _mm256_fnmadd_ps(fm, _mm256_mul_ps(dmin, dx), v);
+                acc[i] = _mm256_fnmadd_ps(fm, _mm256_mul_ps(dmin, dx), v);
             }
         }
+        store(&acc, hh, n, out);
     }
-    store(&acc, n, out);
 }
 
 /// Top bits of a Q6_K value moved to bits 4-5 of each byte (as in `avx512.rs`).
@@ -289,58 +322,50 @@ unsafe fn q6k_body<const R: usize, const VNNI: bool>(
     let mask = _mm256_set1_epi8(0x0f);
     let kb = a.kb;
     let xq = rows::<R>(a, r0);
-    let mut acc = [[_mm256_setzero_ps(); 2]; R];
-    for b in 0..kb {
-        let sb = w.add(b * Q6K_SB);
-        for hh in 0..2 {
-            let c0 = hh * 32;
+    for hh in 0..2 {
+        let c0 = hh * 32;
+        let mut acc = [_mm256_setzero_ps(); R];
+        for b in 0..kb {
+            let sb = w.add(b * Q6K_SB);
             let mut sumi = [_mm256_setzero_si256(); R];
-            for s in 0..8 {
-                let c = |i: usize, sub: usize| {
+            // Sub-block `sub` of 16 values: two lines and the line of their top bits.
+            for sub in 0..16 {
+                let (s, gp) = (sub / 2, sub % 2);
+                let mut part: [__m256i; R] = std::array::from_fn(|i| {
                     _mm256_set1_epi32(*a.corr16.get_unchecked(((r0 + i) * kb + b) * 16 + sub))
-                };
-                let mut ia: [__m256i; R] = std::array::from_fn(|i| c(i, 2 * s));
-                let mut ib: [__m256i; R] = std::array::from_fn(|i| c(i, 2 * s + 1));
-                for gp in 0..2 {
-                    let h = load(sb.add(2048 + (s * 2 + gp) * 64 + c0));
-                    for gg in 0..2 {
-                        let g = 2 * gp + gg;
-                        let wv = load(sb.add((s * 4 + g) * 64 + c0));
-                        let (tl, th) = if gg == 0 {
-                            (top2::<4>(h), top2::<2>(h))
-                        } else {
-                            (top2::<0>(h), top2::<-2>(h))
-                        };
-                        let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), tl);
-                        let hi =
-                            _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), th);
-                        let off = b * QK + s * 32 + g * 8;
-                        let dst = if gp == 0 { &mut ia } else { &mut ib };
-                        for i in 0..R {
-                            let x = xq[i].add(off);
-                            dst[i] = dot2::<VNNI>(dst[i], lo, bcast(x), hi, bcast(x.add(4)));
-                        }
+                });
+                let h = load(sb.add(2048 + sub * 64 + c0));
+                for gg in 0..2 {
+                    let g = 2 * gp + gg;
+                    let wv = load(sb.add((s * 4 + g) * 64 + c0));
+                    let (tl, th) = if gg == 0 {
+                        (top2::<4>(h), top2::<2>(h))
+                    } else {
+                        (top2::<0>(h), top2::<-2>(h))
+                    };
+                    let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), tl);
+                    let hi =
+                        _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), th);
+                    let off = b * QK + s * 32 + g * 8;
+                    for i in 0..R {
+                        let x = xq[i].add(off);
+                        part[i] = dot2::<VNNI>(part[i], lo, bcast(x), hi, bcast(x.add(4)));
                     }
                 }
-                let sa = i8x8(sb.add(3072 + s * 32 + hh * 8));
-                let sbv = i8x8(sb.add(3072 + s * 32 + 16 + hh * 8));
+                let sc = i8x8(sb.add(3072 + sub * 16 + hh * 8));
                 for i in 0..R {
-                    let t = _mm256_add_epi32(
-                        _mm256_mullo_epi32(ia[i], sa),
-                        _mm256_mullo_epi32(ib[i], sbv),
-                    );
-                    sumi[i] = _mm256_add_epi32(sumi[i], t);
+                    sumi[i] = _mm256_add_epi32(sumi[i], _mm256_mullo_epi32(part[i], sc));
                 }
             }
             let d = _mm256_load_ps(sb.add(3328 + hh * 32) as *const f32);
             for i in 0..R {
                 let dx = _mm256_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
                 let f = _mm256_cvtepi32_ps(sumi[i]);
-                acc[i][hh] = _mm256_fmadd_ps(f, _mm256_mul_ps(d, dx), acc[i][hh]);
+                acc[i] = _mm256_fmadd_ps(f, _mm256_mul_ps(d, dx), acc[i]);
             }
         }
+        store(&acc, hh, n, out);
     }
-    store(&acc, n, out);
 }
 
 /// Fifth bit of a Q5_0 value moved to bit 4 of each byte (as in `avx512.rs`).
@@ -383,10 +408,23 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
     let c = |i: usize, blk: usize| {
         _mm256_set1_epi32(*a.corr32.get_unchecked((r0 + i) * kb * 8 + blk) / 8)
     };
-    let mut acc = [[_mm256_setzero_ps(); 2]; R];
-    for b in 0..kb {
-        for hh in 0..2 {
-            let c0 = hh * 32;
+    // Line `g` of a block half: its low and high values, fifth bits or'ed in.
+    let line = |unit: *const u8, half: usize, g: usize, h: __m256i, c0: usize| {
+        let wv = load(unit.add((half * 4 + g) * 64 + c0));
+        let (fl, fh) = match g {
+            0 => (fifth::<4>(h), fifth::<3>(h)),
+            1 => (fifth::<2>(h), fifth::<1>(h)),
+            2 => (fifth::<0>(h), fifth::<-1>(h)),
+            _ => (fifth::<-2>(h), fifth::<-3>(h)),
+        };
+        let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), fl);
+        let hi = _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), fh);
+        (lo, hi)
+    };
+    for hh in 0..2 {
+        let c0 = hh * 32;
+        let mut acc = [_mm256_setzero_ps(); R];
+        for b in 0..kb {
             let mut f = [_mm256_setzero_ps(); R];
             for p in b * 4..pairs.min(b * 4 + 4) {
                 let unit = w.add(p * Q5_PAIR);
@@ -394,21 +432,28 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
                     let blk = 2 * p + half;
                     let h = load(unit.add(512 + half * 64 + c0));
                     let mut ia: [__m256i; R] = std::array::from_fn(|i| c(i, blk));
-                    for g in 0..4 {
-                        let wv = load(unit.add((half * 4 + g) * 64 + c0));
-                        let (fl, fh) = match g {
-                            0 => (fifth::<4>(h), fifth::<3>(h)),
-                            1 => (fifth::<2>(h), fifth::<1>(h)),
-                            2 => (fifth::<0>(h), fifth::<-1>(h)),
-                            _ => (fifth::<-2>(h), fifth::<-3>(h)),
-                        };
-                        let lo = _mm256_or_si256(_mm256_and_si256(wv, mask), fl);
-                        let hi =
-                            _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), fh);
-                        let off = blk * 32 + g * 8;
+                    // Two lines at a time: without VNNI their four `vpmaddubsw`
+                    // results add in i16 (5-bit weights: at most 4 · 7,874 = 31,496).
+                    for g in [0, 2] {
+                        let (lo0, hi0) = line(unit, half, g, h, c0);
+                        let (lo1, hi1) = line(unit, half, g + 1, h, c0);
                         for i in 0..R {
-                            let x = xq[i].add(off);
-                            ia[i] = dot2::<VNNI>(ia[i], lo, bcast(x), hi, bcast(x.add(4)));
+                            let x = xq[i].add(blk * 32 + g * 8);
+                            ia[i] = if VNNI {
+                                dot2::<true>(
+                                    dot2::<true>(ia[i], lo0, bcast(x), hi0, bcast(x.add(4))),
+                                    lo1,
+                                    bcast(x.add(8)),
+                                    hi1,
+                                    bcast(x.add(12)),
+                                )
+                            } else {
+                                let t = _mm256_add_epi16(
+                                    madd_sum(lo0, x, hi0),
+                                    madd_sum(lo1, x.add(8), hi1),
+                                );
+                                _mm256_add_epi32(ia[i], _mm256_madd_epi16(t, _mm256_set1_epi16(1)))
+                            };
                         }
                     }
                     let d = f16x8(unit.add(640 + half * 32 + hh * 16));
@@ -419,11 +464,11 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
             }
             for i in 0..R {
                 let dx = _mm256_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                acc[i][hh] = _mm256_fmadd_ps(f[i], dx, acc[i][hh]);
+                acc[i] = _mm256_fmadd_ps(f[i], dx, acc[i]);
             }
         }
+        store(&acc, hh, n, out);
     }
-    store(&acc, n, out);
 }
 
 /// Σ q_w q_x of one Q8_0 line half into `acc`, four products per i32 lane. The tile
@@ -468,10 +513,10 @@ unsafe fn q8_0_body<const R: usize, const VNNI: bool>(
             _mm256_setzero_si256()
         }
     };
-    let mut acc = [[_mm256_setzero_ps(); 2]; R];
-    for b in 0..kb {
-        for hh in 0..2 {
-            let c0 = hh * 32;
+    for hh in 0..2 {
+        let c0 = hh * 32;
+        let mut acc = [_mm256_setzero_ps(); R];
+        for b in 0..kb {
             let mut f = [_mm256_setzero_ps(); R];
             for j in b * 8..nb.min(b * 8 + 8) {
                 let pa = w.add(j * Q8_BLK);
@@ -489,11 +534,11 @@ unsafe fn q8_0_body<const R: usize, const VNNI: bool>(
             }
             for i in 0..R {
                 let dx = _mm256_set1_ps(*a.d.get_unchecked((r0 + i) * kb + b));
-                acc[i][hh] = _mm256_fmadd_ps(f[i], dx, acc[i][hh]);
+                acc[i] = _mm256_fmadd_ps(f[i], dx, acc[i]);
             }
         }
+        store(&acc, hh, n, out);
     }
-    store(&acc, n, out);
 }
 
 /// Sum of the 8 lanes, in one fixed order.

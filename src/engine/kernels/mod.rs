@@ -1318,6 +1318,45 @@ mod tests {
                 );
             }
         }
+        // Largest weight values against activation quants of ±127: the products that
+        // add several `vpmaddubsw` results in 16 bits (see `avx2.rs`) are at their
+        // bound here, and would wrap past it.
+        for (dtype, k) in [
+            (GgmlDType::Q4K, 512),
+            (GgmlDType::Q5_0, 512),
+            (GgmlDType::Q6K, 512),
+            (GgmlDType::Q8_0, 512),
+        ] {
+            let qt = extreme_weights(dtype, 32, k);
+            let ours = Packed::new(&qt, kernels).expect("pack").expect("covered");
+            let reference = Packed::new(&qt, scalar).expect("pack").expect("covered");
+            let x: Vec<f32> = (0..5 * k)
+                .map(|i| if (i / k) % 2 == 0 { 1.0 } else { -1.0 })
+                .collect();
+            assert_eq!(
+                bits(&ours.forward(&x, 5)),
+                bits(&reference.forward(&x, 5)),
+                "{isa} {dtype:?} at the largest weights"
+            );
+        }
+    }
+
+    /// Weights whose quantised values are the format's largest on almost every
+    /// position: per block one value sets the scale's sign or the minimum, the rest
+    /// quantise to 15 (Q4_K), 31 (Q5_0), about 63 (Q6_K) or 127 in magnitude (Q8_0).
+    fn extreme_weights(dtype: GgmlDType, n: usize, k: usize) -> QTensor {
+        // (period, the value that starts each period, every other value)
+        let (period, first, rest) = match dtype {
+            GgmlDType::Q4K => (32, 0.0, 1.0),
+            GgmlDType::Q5_0 => (32, 1.0, -0.9375),
+            GgmlDType::Q6K => (16, 1.0, -0.96875),
+            _ => (2, 1.0, -1.0),
+        };
+        let v: Vec<f32> = (0..n * k)
+            .map(|i| if i % period == 0 { first } else { rest })
+            .collect();
+        let t = Tensor::from_vec(v, (n, k), &Device::Cpu).expect("tensor");
+        QTensor::quantize(&t, dtype).expect("quantize")
     }
 
     #[test]
