@@ -101,6 +101,42 @@ unsafe fn store<const R: usize>(acc: &[__m256; R], hh: usize, n: usize, out: *mu
     }
 }
 
+/// Runs `half(hh, blocks, acc)` over the tile's two 8-column halves and all of `kb`
+/// super-blocks, then stores. With several rows, all of `k` for one half and then for
+/// the other, so only one half's accumulators stay live; with one row (generation,
+/// bound by memory bandwidth) both halves of each super-block in turn, so every
+/// weight line is used whole while it is in cache. Either way each column sees the
+/// same operations in the same order.
+///
+/// # Safety
+/// `out` is valid for 16 columns in each of `R` rows of stride `n`; the caller runs
+/// with AVX.
+#[inline(always)]
+unsafe fn halves<const R: usize>(
+    kb: usize,
+    n: usize,
+    out: *mut f32,
+    mut half: impl FnMut(usize, std::ops::Range<usize>, &mut [__m256; R]),
+) {
+    if R == 1 {
+        let mut acc = [[_mm256_setzero_ps(); R]; 2];
+        for b in 0..kb {
+            for (hh, acc) in acc.iter_mut().enumerate() {
+                half(hh, b..b + 1, acc);
+            }
+        }
+        for (hh, acc) in acc.iter().enumerate() {
+            store(acc, hh, n, out);
+        }
+    } else {
+        for hh in 0..2 {
+            let mut acc = [_mm256_setzero_ps(); R];
+            half(hh, 0..kb, &mut acc);
+            store(&acc, hh, n, out);
+        }
+    }
+}
+
 /// `Σ w x` over four u8 × i8 pairs of each operand (two `vpmaddubsw` each), summed in
 /// i16: the low and high nibble values of one line against their activation bytes.
 /// Each `vpmaddubsw` lane is at most 2 · w_max · 127 in magnitude (activation quants
@@ -229,10 +265,9 @@ unsafe fn q4k_body<const R: usize, const VNNI: bool>(
     let mask = _mm256_set1_epi8(0x0f);
     let kb = a.kb;
     let xq = rows::<R>(a, r0);
-    for hh in 0..2 {
+    halves::<R>(kb, n, out, |hh, blocks, acc| {
         let c0 = hh * 32;
-        let mut acc = [_mm256_setzero_ps(); R];
-        for b in 0..kb {
+        for b in blocks {
             let sb = w.add(b * Q4K_SB);
             let mut sumi = [_mm256_setzero_si256(); R];
             for s in 0..8 {
@@ -288,8 +323,7 @@ unsafe fn q4k_body<const R: usize, const VNNI: bool>(
                 acc[i] = _mm256_fnmadd_ps(fm, _mm256_mul_ps(dmin, dx), v);
             }
         }
-        store(&acc, hh, n, out);
-    }
+    });
 }
 
 /// Top bits of a Q6_K value moved to bits 4-5 of each byte (as in `avx512.rs`).
@@ -322,10 +356,9 @@ unsafe fn q6k_body<const R: usize, const VNNI: bool>(
     let mask = _mm256_set1_epi8(0x0f);
     let kb = a.kb;
     let xq = rows::<R>(a, r0);
-    for hh in 0..2 {
+    halves::<R>(kb, n, out, |hh, blocks, acc| {
         let c0 = hh * 32;
-        let mut acc = [_mm256_setzero_ps(); R];
-        for b in 0..kb {
+        for b in blocks {
             let sb = w.add(b * Q6K_SB);
             let mut sumi = [_mm256_setzero_si256(); R];
             // Sub-block `sub` of 16 values: two lines and the line of their top bits.
@@ -364,8 +397,7 @@ unsafe fn q6k_body<const R: usize, const VNNI: bool>(
                 acc[i] = _mm256_fmadd_ps(f, _mm256_mul_ps(d, dx), acc[i]);
             }
         }
-        store(&acc, hh, n, out);
-    }
+    });
 }
 
 /// Fifth bit of a Q5_0 value moved to bit 4 of each byte (as in `avx512.rs`).
@@ -421,10 +453,9 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
         let hi = _mm256_or_si256(_mm256_and_si256(_mm256_srli_epi16::<4>(wv), mask), fh);
         (lo, hi)
     };
-    for hh in 0..2 {
+    halves::<R>(kb, n, out, |hh, blocks, acc| {
         let c0 = hh * 32;
-        let mut acc = [_mm256_setzero_ps(); R];
-        for b in 0..kb {
+        for b in blocks {
             let mut f = [_mm256_setzero_ps(); R];
             for p in b * 4..pairs.min(b * 4 + 4) {
                 let unit = w.add(p * Q5_PAIR);
@@ -467,8 +498,7 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
                 acc[i] = _mm256_fmadd_ps(f[i], dx, acc[i]);
             }
         }
-        store(&acc, hh, n, out);
-    }
+    });
 }
 
 /// Σ q_w q_x of one Q8_0 line half into `acc`, four products per i32 lane. The tile
@@ -513,10 +543,9 @@ unsafe fn q8_0_body<const R: usize, const VNNI: bool>(
             _mm256_setzero_si256()
         }
     };
-    for hh in 0..2 {
+    halves::<R>(kb, n, out, |hh, blocks, acc| {
         let c0 = hh * 32;
-        let mut acc = [_mm256_setzero_ps(); R];
-        for b in 0..kb {
+        for b in blocks {
             let mut f = [_mm256_setzero_ps(); R];
             for j in b * 8..nb.min(b * 8 + 8) {
                 let pa = w.add(j * Q8_BLK);
@@ -537,8 +566,7 @@ unsafe fn q8_0_body<const R: usize, const VNNI: bool>(
                 acc[i] = _mm256_fmadd_ps(f[i], dx, acc[i]);
             }
         }
-        store(&acc, hh, n, out);
-    }
+    });
 }
 
 /// Sum of the 8 lanes, in one fixed order.
