@@ -7,10 +7,10 @@
 //! integer sums are exact. Reached only through a `Kernels` value for `Isa::Avx2` or
 //! `Isa::AvxVnni`; never called on a processor without those instructions.
 //!
-//! Register use decides the speed here: AVX2 has 16 vector registers, so each body
-//! runs the tile's two 8-column halves one after the other (all of `k` for columns
-//! 0-7, then for 8-15) rather than side by side, which halves the accumulators that
-//! must stay live. Without VNNI, the 4- and 5-bit formats add several `vpmaddubsw`
+//! Register use decides the speed here: AVX2 has 16 vector registers, so with several
+//! rows each body runs the tile's two 8-column halves one after the other (all of `k`
+//! for columns 0-7, then for 8-15), which halves the accumulators that must stay live
+//! (`halves`). Without VNNI, the 4- and 5-bit formats add several `vpmaddubsw`
 //! results in i16 before one `vpmaddwd` widens them (bounds at `madd_sum`), and Q4_K
 //! multiplies by its sub-block scale in that same `vpmaddwd`.
 
@@ -58,8 +58,10 @@ unsafe fn dot2<const VNNI: bool>(
     if VNNI {
         _mm256_dpbusd_avx_epi32(_mm256_dpbusd_avx_epi32(acc, w1, x1), w2, x2)
     } else {
-        let p = _mm256_add_epi16(_mm256_maddubs_epi16(w1, x1), _mm256_maddubs_epi16(w2, x2));
-        _mm256_add_epi32(acc, _mm256_madd_epi16(p, _mm256_set1_epi16(1)))
+        _mm256_add_epi32(
+            acc,
+            _mm256_madd_epi16(madd_sum(w1, x1, w2, x2), _mm256_set1_epi16(1)),
+        )
     }
 }
 
@@ -137,9 +139,7 @@ unsafe fn halves<const R: usize>(
     }
 }
 
-/// `Σ w x` over four u8 × i8 pairs of each operand (two `vpmaddubsw` each), summed in
-/// i16: the low and high nibble values of one line against their activation bytes.
-/// Each `vpmaddubsw` lane is at most 2 · w_max · 127 in magnitude (activation quants
+/// `w1 · x1 + w2 · x2` as two `vpmaddubsw` (pairs of u8 × i8) added in i16. Each `vpmaddubsw` lane is at most 2 · w_max · 127 in magnitude (activation quants
 /// lie in −127..=127, as `d = max / 127`), so a caller may add `N` such results in i16
 /// only while `N · 2 · w_max · 127 < 2^15`: 8 for 4-bit weights (30,480), 4 for 5-bit
 /// (31,496), 2 for 6-bit (32,004).
@@ -147,11 +147,8 @@ unsafe fn halves<const R: usize>(
 /// # Safety
 /// The caller runs with AVX2.
 #[inline(always)]
-unsafe fn madd_sum(lo: __m256i, x: *const i8, hi: __m256i) -> __m256i {
-    _mm256_add_epi16(
-        _mm256_maddubs_epi16(lo, bcast(x)),
-        _mm256_maddubs_epi16(hi, bcast(x.add(4))),
-    )
+unsafe fn madd_sum(w1: __m256i, x1: __m256i, w2: __m256i, x2: __m256i) -> __m256i {
+    _mm256_add_epi16(_mm256_maddubs_epi16(w1, x1), _mm256_maddubs_epi16(w2, x2))
 }
 
 /// Activation quant pointers of rows `r0 .. r0 + R`.
@@ -281,24 +278,26 @@ unsafe fn q4k_body<const R: usize, const VNNI: bool>(
                     let off = b * QK + s * 32 + g * 8;
                     for i in 0..R {
                         let x = xq[i].add(off);
+                        let (x1, x2) = (bcast(x), bcast(x.add(4)));
                         part[i] = if VNNI {
-                            _mm256_dpbusd_avx_epi32(
-                                _mm256_dpbusd_avx_epi32(part[i], lo, bcast(x)),
-                                hi,
-                                bcast(x.add(4)),
-                            )
+                            dot2::<true>(part[i], lo, x1, hi, x2)
                         } else {
-                            _mm256_add_epi16(part[i], madd_sum(lo, x, hi))
+                            _mm256_add_epi16(part[i], madd_sum(lo, x1, hi, x2))
                         };
                     }
                 }
-                // The scale in both i16 halves of each lane, for `vpmaddwd`.
-                let sc16 = _mm256_or_si256(sc, _mm256_slli_epi32::<16>(sc));
+                // Without VNNI the scale goes in both i16 halves of each lane, for
+                // `vpmaddwd`.
+                let sc = if VNNI {
+                    sc
+                } else {
+                    _mm256_or_si256(sc, _mm256_slli_epi32::<16>(sc))
+                };
                 for i in 0..R {
                     let t = if VNNI {
                         _mm256_mullo_epi32(part[i], sc)
                     } else {
-                        _mm256_madd_epi16(part[i], sc16)
+                        _mm256_madd_epi16(part[i], sc)
                     };
                     sumi[i] = _mm256_add_epi32(sumi[i], t);
                 }
@@ -480,8 +479,8 @@ unsafe fn q5_body<const R: usize, const VNNI: bool>(
                                 )
                             } else {
                                 let t = _mm256_add_epi16(
-                                    madd_sum(lo0, x, hi0),
-                                    madd_sum(lo1, x.add(8), hi1),
+                                    madd_sum(lo0, bcast(x), hi0, bcast(x.add(4))),
+                                    madd_sum(lo1, bcast(x.add(8)), hi1, bcast(x.add(12))),
                                 );
                                 _mm256_add_epi32(ia[i], _mm256_madd_epi16(t, _mm256_set1_epi16(1)))
                             };
